@@ -1,0 +1,3 @@
+from lapsewise.cli import main
+
+main()

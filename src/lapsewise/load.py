@@ -1,0 +1,316 @@
+"""Load and validate the input files: orders, mailings, suppression list, attributes.
+
+Each loader reads a CSV or Parquet file, checks it once, here at the edge, and
+returns a :class:`Loaded` holding a tidy DataFrame and a count of everything it
+repaired on the way (duplicate rows dropped, blank ids, returns and so on). A
+problem it cannot repair raises :class:`~lapsewise.errors.InputError` with one
+line naming the file, the row or column, and what to fix.
+
+Customer ids are always text: surrounding spaces are removed and ids are held
+as a pandas Categorical so that large files stay small in memory.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from lapsewise.errors import InputError
+
+ID_COLUMN = "customer_id"
+ORDER_DATE_COLUMN = "order_date"
+AMOUNT_COLUMN = "amount"
+MAIL_DATE_COLUMN = "mail_date"
+VERSION_COLUMN = "version"
+
+_SNIFF_BYTES = 64 * 1024
+
+
+@dataclass(frozen=True)
+class Loaded:
+    """A validated input file.
+
+    Attributes
+    ----------
+    name : str
+        The file name as the user gave it, for messages.
+    frame : pandas.DataFrame
+        The tidy rows: ``customer_id`` (Categorical of text ids) and the file's own columns.
+    repairs : dict
+        What was repaired or left out, as ``{description: count}``; only non-zero counts.
+    """
+
+    name: str
+    frame: pd.DataFrame
+    repairs: dict[str, int] = field(default_factory=dict)
+
+
+def _row_label(index: int, is_csv: bool) -> int:
+    """The row number a person sees: spreadsheet rows for CSV (header is row 1), 1-based for Parquet."""
+    return int(index) + (2 if is_csv else 1)
+
+
+def read_table(path: str | Path) -> tuple[pd.DataFrame, bool, dict[str, int]]:
+    """Read a CSV or Parquet file into a DataFrame with its columns as found.
+
+    CSV columns come back as text; Parquet columns keep their types.
+
+    Returns
+    -------
+    frame, is_csv, repairs
+    """
+    path = Path(path)
+    name = str(path)
+    if not path.exists():
+        raise InputError(f"{name}: file not found; check the path")
+    if path.is_dir():
+        raise InputError(f"{name}: is a folder, not a file; give the path of a CSV or Parquet file")
+    if path.stat().st_size == 0:
+        raise InputError(f"{name}: the file is empty; export it again with a header row and data")
+    with open(path, "rb") as handle:
+        head = handle.read(_SNIFF_BYTES)
+    if head[:4] == b"PAR1":
+        return _read_parquet(path), False, {}
+    return _read_csv(path, head)
+
+
+def _read_parquet(path: Path) -> pd.DataFrame:
+    import pyarrow.parquet as pq
+
+    try:
+        table = pq.read_table(path)
+    except Exception as exc:  # pyarrow raises several types for damaged files
+        raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]}); export it again") from None
+    frame = table.to_pandas()
+    if len(frame) == 0:
+        raise InputError(f"{path}: has columns but no rows; export it again with data")
+    frame.columns = [str(c).strip() for c in frame.columns]
+    return frame
+
+
+def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, int]]:
+    repairs: dict[str, int] = {}
+    if b"\x00" in head:
+        raise InputError(f"{path}: looks like a binary file, not CSV or Parquet; export the data as CSV or Parquet")
+    try:
+        head.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        # A cut in the middle of a multi-byte character at the end of the sniffed block is fine.
+        if exc.start < len(head) - 4:
+            raise InputError(
+                f"{path}: is not UTF-8 text (bad byte at position {exc.start}); save it as UTF-8 CSV or as Parquet"
+            ) from None
+    if head.startswith(b"\xef\xbb\xbf"):
+        repairs["byte-order mark at the start of the file removed"] = 1
+    if b"\r\n" in head:
+        repairs["Windows line endings read"] = 1
+    try:
+        frame = pd.read_csv(
+            path,
+            dtype=str,
+            keep_default_na=False,
+            encoding="utf-8-sig",
+            skip_blank_lines=True,
+        )
+    except pd.errors.EmptyDataError:
+        raise InputError(f"{path}: the file is empty; export it again with a header row and data") from None
+    except pd.errors.ParserError as exc:
+        detail = str(exc).strip().splitlines()[-1]
+        raise InputError(f"{path}: cannot be read as CSV ({detail}); check the quoting and the number of fields") from None
+    except UnicodeDecodeError as exc:
+        raise InputError(
+            f"{path}: is not UTF-8 text (bad byte at position {exc.start}); save it as UTF-8 CSV or as Parquet"
+        ) from None
+    frame.columns = [str(c).strip() for c in frame.columns]
+    if len(frame.columns) == 1:
+        header = frame.columns[0]
+        for sep, label in ((";", "semicolon"), ("\t", "tab"), ("|", "pipe")):
+            if sep in header:
+                raise InputError(
+                    f"{path}: looks {label}-delimited (header '{header[:60]}'); save it with commas between columns"
+                )
+    if len(frame) == 0:
+        raise InputError(f"{path}: has a header but no data rows; export it again with data")
+    return frame, True, repairs
+
+
+def _require_columns(name: str, frame: pd.DataFrame, wanted: dict[str, str]) -> None:
+    """Check that every wanted column exists. ``wanted`` maps column name to the option that renames it."""
+    for column, option in wanted.items():
+        if column not in frame.columns:
+            found = ", ".join(f"'{c}'" for c in list(frame.columns)[:8])
+            hint = f"; rename the column or pass {option}" if option else "; rename the column"
+            raise InputError(f"{name}: no column '{column}' (found {found}){hint}")
+
+
+def _clean_ids(name: str, column: pd.Series, repairs: dict[str, int]) -> pd.Categorical:
+    """Text ids with surrounding spaces removed, as a Categorical; blank ids become missing."""
+    codes, uniques = pd.factorize(column, use_na_sentinel=True)
+    text = pd.Index(uniques).astype(str)
+    stripped = text.str.strip()
+    padded_uniques = np.asarray(stripped != text)
+    if padded_uniques.any():
+        padded_rows = int(np.isin(codes, np.flatnonzero(padded_uniques)).sum())
+        repairs["ids with surrounding spaces trimmed"] = padded_rows
+    blank_uniques = np.asarray((stripped == "") | (stripped.str.lower().isin(["nan", "none", "null"])))
+    clean_codes, clean_uniques = pd.factorize(stripped)
+    row_codes = np.where(codes < 0, -1, clean_codes[np.maximum(codes, 0)])
+    blank_codes = np.unique(clean_codes[blank_uniques]) if blank_uniques.any() else np.empty(0, dtype=np.int64)
+    if len(blank_codes):
+        row_codes = np.where(np.isin(row_codes, blank_codes), -1, row_codes)
+    return pd.Categorical.from_codes(row_codes, categories=pd.Index(clean_uniques, dtype=object))
+
+
+def _parse_dates(name: str, column_name: str, column: pd.Series, is_csv: bool, keep: np.ndarray) -> np.ndarray:
+    """Dates as datetime64[ns] (time of day kept, zone dropped) for the kept rows.
+
+    An unreadable date in a kept row is an error naming its row; rows not kept are not checked.
+    """
+    if pd.api.types.is_datetime64_any_dtype(column):
+        values = pd.DatetimeIndex(column)
+        if values.tz is not None:
+            values = values.tz_convert(None)
+        missing = np.asarray(values.isna()) & keep
+        if missing.any():
+            row = _row_label(np.flatnonzero(missing)[0], is_csv)
+            raise InputError(f"{name}, row {row}, column {column_name}: the date is blank; fill it in or remove the row")
+        return values.values.astype("datetime64[ns]")
+    text = column.astype(str).str.strip().where(keep, "1970-01-01")
+    parsed = pd.to_datetime(text, format="ISO8601", errors="coerce", utc=True)
+    bad = np.asarray(parsed.isna())
+    if bad.any():
+        first = np.flatnonzero(bad)[0]
+        row = _row_label(first, is_csv)
+        shown = str(text.iloc[first])
+        if shown == "":
+            raise InputError(f"{name}, row {row}, column {column_name}: the date is blank; fill it in or remove the row")
+        raise InputError(
+            f"{name}, row {row}, column {column_name}: '{shown[:40]}' is not a date; write dates as YYYY-MM-DD"
+        )
+    return parsed.dt.tz_convert(None).values.astype("datetime64[ns]")
+
+
+def _parse_amounts(name: str, column_name: str, column: pd.Series, is_csv: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Amounts as float64 and a mask of blank cells; a non-numeric cell is an error naming its row."""
+    if pd.api.types.is_numeric_dtype(column) and not pd.api.types.is_bool_dtype(column):
+        values = column.to_numpy(dtype=np.float64, na_value=np.nan)
+        blank = np.isnan(values)
+    else:
+        text = column.astype(str).str.strip()
+        blank = np.asarray((text == "") | text.str.lower().isin(["nan", "none", "null", "na"]))
+        values = pd.to_numeric(text.where(~blank, "nan"), errors="coerce").to_numpy(dtype=np.float64)
+        bad = np.isnan(values) & ~blank
+        if bad.any():
+            first = np.flatnonzero(bad)[0]
+            raise InputError(
+                f"{name}, row {_row_label(first, is_csv)}, column {column_name}: '{str(text.iloc[first])[:40]}' "
+                "is not a number; write amounts like 42.50 with no currency sign or thousands separator"
+            )
+    infinite = np.isinf(values)
+    if infinite.any():
+        first = np.flatnonzero(infinite)[0]
+        raise InputError(
+            f"{name}, row {_row_label(first, is_csv)}, column {column_name}: the amount is infinite; fix or remove the row"
+        )
+    return values, blank
+
+
+def _drop_blank_ids(name: str, ids: pd.Categorical, keep: np.ndarray, repairs: dict[str, int]) -> np.ndarray:
+    blank = np.asarray(ids.codes) < 0
+    if blank.any():
+        repairs["rows with a blank customer id left out"] = int(blank.sum())
+    return keep & ~blank
+
+
+def _count_extra_columns(frame: pd.DataFrame, used: list[str], repairs: dict[str, int]) -> None:
+    extra = [c for c in frame.columns if c not in used]
+    if extra:
+        shown = ", ".join(extra[:5]) + (", ..." if len(extra) > 5 else "")
+        repairs[f"extra columns ignored ({shown})"] = len(extra)
+
+
+def load_orders(
+    path: str | Path,
+    id_column: str = ID_COLUMN,
+    date_column: str = ORDER_DATE_COLUMN,
+    amount_column: str = AMOUNT_COLUMN,
+) -> Loaded:
+    """Read the orders file: one row per order, negative amounts are returns.
+
+    Returns a :class:`Loaded` whose frame has ``customer_id`` (Categorical),
+    ``order_date`` (datetime64) and ``amount`` (float64). Exact duplicate rows,
+    rows with a blank id and rows with a blank amount are left out and counted.
+    """
+    name = str(path)
+    frame, is_csv, repairs = read_table(path)
+    _require_columns(name, frame, {id_column: "--id-column", date_column: "--date-column", amount_column: "--amount-column"})
+    _count_extra_columns(frame, [id_column, date_column, amount_column], repairs)
+    duplicated = np.asarray(frame.duplicated(keep="first"))
+    if duplicated.any():
+        repairs["exact duplicate rows dropped"] = int(duplicated.sum())
+    ids = _clean_ids(name, frame[id_column], repairs)
+    keep = _drop_blank_ids(name, ids, ~duplicated, repairs)
+    amounts, blank_amount = _parse_amounts(name, amount_column, frame[amount_column], is_csv)
+    dropped_blank = blank_amount & keep
+    if dropped_blank.any():
+        repairs["orders with a blank amount left out"] = int(dropped_blank.sum())
+    keep &= ~blank_amount
+    dates = _parse_dates(name, date_column, frame[date_column], is_csv, keep)
+    returns = (amounts < 0) & keep
+    if returns.any():
+        repairs["return rows (negative amounts) netted into their quarter"] = int(returns.sum())
+    if not keep.any():
+        raise InputError(f"{name}: no usable order rows (every row has a blank id or amount); check the file")
+    out = pd.DataFrame(
+        {
+            ID_COLUMN: ids[keep],
+            ORDER_DATE_COLUMN: dates[keep],
+            AMOUNT_COLUMN: amounts[keep],
+        }
+    )
+    return Loaded(name, out.reset_index(drop=True), repairs)
+
+
+def load_mailings(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
+    """Read the mailings file: one row per piece mailed (``customer_id``, ``mail_date``, optional ``version``)."""
+    name = str(path)
+    frame, is_csv, repairs = read_table(path)
+    _require_columns(name, frame, {id_column: "--id-column", MAIL_DATE_COLUMN: ""})
+    used = [id_column, MAIL_DATE_COLUMN] + ([VERSION_COLUMN] if VERSION_COLUMN in frame.columns else [])
+    _count_extra_columns(frame, used, repairs)
+    ids = _clean_ids(name, frame[id_column], repairs)
+    keep = _drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
+    dates = _parse_dates(name, MAIL_DATE_COLUMN, frame[MAIL_DATE_COLUMN], is_csv, keep)
+    columns = {ID_COLUMN: ids[keep], MAIL_DATE_COLUMN: dates[keep]}
+    if VERSION_COLUMN in frame.columns:
+        columns[VERSION_COLUMN] = frame[VERSION_COLUMN].astype(str).str.strip().to_numpy()[keep]
+    return Loaded(name, pd.DataFrame(columns).reset_index(drop=True), repairs)
+
+
+def load_id_list(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
+    """Read a list of customer ids, such as a suppression list (opt-outs, deceased, undeliverable)."""
+    name = str(path)
+    frame, is_csv, repairs = read_table(path)
+    _require_columns(name, frame, {id_column: "--id-column"})
+    _count_extra_columns(frame, [id_column], repairs)
+    ids = _clean_ids(name, frame[id_column], repairs)
+    keep = _drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
+    unique = pd.Index(np.asarray(ids[keep]).astype(str)).unique()
+    return Loaded(name, pd.DataFrame({ID_COLUMN: unique}), repairs)
+
+
+def load_attributes(path: str | Path, column: str, id_column: str = ID_COLUMN) -> Loaded:
+    """Read a customer attributes file and keep one text column of it, one row per customer."""
+    name = str(path)
+    frame, is_csv, repairs = read_table(path)
+    _require_columns(name, frame, {id_column: "--id-column", column: "--segment-column"})
+    ids = _clean_ids(name, frame[id_column], repairs)
+    keep = _drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
+    out = pd.DataFrame({ID_COLUMN: np.asarray(ids[keep]).astype(str), column: frame[column].astype(str).str.strip().to_numpy()[keep]})
+    duplicated = out.duplicated(subset=[ID_COLUMN], keep="first").to_numpy()
+    if duplicated.any():
+        repairs["attribute rows for an id already seen ignored"] = int(duplicated.sum())
+    return Loaded(name, out[~duplicated].reset_index(drop=True), repairs)

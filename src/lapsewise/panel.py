@@ -1,0 +1,480 @@
+"""The quarterly customer panel, per-customer summaries, and compression into distinct histories.
+
+A customer's quarter 0 is the quarter of their first purchase. For every later
+quarter up to the as-of quarter the panel holds whether they purchased (net
+spend above zero), their net spend, and whether they were mailed. The panel is
+held as dense customer-by-quarter arrays, aligned on each customer's quarter 0,
+so that every per-customer quantity is one numpy reduction along a row.
+
+Quarters are numbered on one absolute scale: quarter ``q`` starts in month
+``3 * q + fiscal_year_start - 1`` counted from January of year 0, so calendar
+quarters (``fiscal_year_start = 1``) start in January, April, July and October.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from lapsewise.errors import InputError
+from lapsewise.load import AMOUNT_COLUMN, ID_COLUMN, MAIL_DATE_COLUMN, ORDER_DATE_COLUMN, Loaded
+
+
+@dataclass(frozen=True)
+class Panel:
+    """Quarterly purchase and mailing histories, one row per customer.
+
+    Attributes
+    ----------
+    customer_ids : numpy.ndarray of str
+        Sorted customer ids.
+    first_quarter : numpy.ndarray of int64
+        Absolute index of each customer's quarter 0 (the first purchase).
+    end_quarter : int
+        Absolute index of the as-of quarter, the last complete quarter observed.
+    purchased : numpy.ndarray of uint8, shape (customers, width)
+        Column ``j`` is the customer's quarter ``j``; 1 when net spend was above zero.
+        Columns after the customer's last observed quarter are 0.
+    spend : numpy.ndarray of float32, shape (customers, width)
+        Net spend per quarter (returns netted), 0 where there was no purchase.
+    mailed : numpy.ndarray of uint8, shape (customers, width)
+        1 when at least one piece was mailed in that quarter; column 0 and columns
+        after the last observed quarter are 0. Without a mailings file every
+        quarter 1..n is 1.
+    mailing_history : bool
+        True when a mailings file was given.
+    fiscal_year_start : int
+        Month (1-12) in which the first quarter of the year starts.
+    counts : dict
+        What was left out or repaired while loading and building the panel, ``{description: count}``.
+    """
+
+    customer_ids: np.ndarray
+    first_quarter: np.ndarray
+    end_quarter: int
+    purchased: np.ndarray
+    spend: np.ndarray
+    mailed: np.ndarray
+    mailing_history: bool
+    fiscal_year_start: int = 1
+    counts: dict[str, int] = field(default_factory=dict)
+
+    @property
+    def n(self) -> np.ndarray:
+        """Quarters observed after quarter 0, per customer."""
+        return self.end_quarter - self.first_quarter
+
+    @property
+    def customers(self) -> int:
+        return len(self.customer_ids)
+
+    @property
+    def as_of(self) -> dt.date:
+        """The last day of the as-of quarter."""
+        return quarter_end(self.end_quarter, self.fiscal_year_start)
+
+
+# ---------------------------------------------------------------- quarters
+
+
+def quarter_index(dates: np.ndarray, fiscal_year_start: int = 1) -> np.ndarray:
+    """Absolute quarter index of each date (datetime64 array)."""
+    months = dates.astype("datetime64[M]").astype(np.int64) + 1970 * 12  # months since January of year 0
+    return (months - (fiscal_year_start - 1)) // 3
+
+
+def quarter_start(quarter: int, fiscal_year_start: int = 1) -> dt.date:
+    month = 3 * int(quarter) + fiscal_year_start - 1
+    return dt.date(month // 12, month % 12 + 1, 1)
+
+
+def quarter_end(quarter: int, fiscal_year_start: int = 1) -> dt.date:
+    return quarter_start(quarter + 1, fiscal_year_start) - dt.timedelta(days=1)
+
+
+def quarter_label(quarter: int, fiscal_year_start: int = 1) -> str:
+    """A quarter named by its dates, e.g. ``2024-04-01..2024-06-30``."""
+    return f"{quarter_start(quarter, fiscal_year_start)}..{quarter_end(quarter, fiscal_year_start)}"
+
+
+def parse_as_of(text: str | None) -> dt.date | None:
+    """Parse the ``--as-of`` option (YYYY-MM-DD)."""
+    if text is None:
+        return None
+    try:
+        return dt.date.fromisoformat(str(text).strip())
+    except ValueError:
+        raise InputError(f"--as-of: '{text}' is not a date; write it as YYYY-MM-DD") from None
+
+
+def _end_quarter(order_dates: np.ndarray, as_of: dt.date | None, fiscal_year_start: int) -> int:
+    """The last complete quarter on or before the as-of date (default: the last order date)."""
+    first = pd.Timestamp(order_dates.min()).date()
+    if as_of is None:
+        as_of = pd.Timestamp(order_dates.max()).date()
+    elif as_of < first:
+        raise InputError(f"--as-of {as_of} is before the first order ({first}); choose a later date")
+    quarter = int(quarter_index(np.array([np.datetime64(as_of, "D")]), fiscal_year_start)[0])
+    if quarter_end(quarter, fiscal_year_start) != as_of:
+        quarter -= 1
+    first_quarter = int(quarter_index(np.array([np.datetime64(first, "D")]), fiscal_year_start)[0])
+    if quarter < first_quarter:
+        raise InputError(
+            f"--as-of {as_of}: no complete quarter of orders ends by then (first order {first}); choose a later date"
+        )
+    return quarter
+
+
+# ---------------------------------------------------------------- building the panel
+
+
+def build_panel(
+    orders: Loaded,
+    mailings: Loaded | None = None,
+    as_of: dt.date | None = None,
+    fiscal_year_start: int = 1,
+) -> Panel:
+    """Build the quarterly panel from loaded orders and (optionally) mailings.
+
+    Orders are netted per customer and quarter; a quarter whose net spend is above
+    zero is one purchase occasion, however many orders it holds. Orders after the
+    as-of quarter, and customers whose first purchase comes after it, are left out
+    and counted. Mailings for customers not in the orders are left out and counted.
+    """
+    if not 1 <= fiscal_year_start <= 12:
+        raise InputError(f"--fiscal-year-start: {fiscal_year_start} is not a month; give 1 to 12")
+    counts = dict(orders.repairs)
+    frame = orders.frame
+    dates = frame[ORDER_DATE_COLUMN].to_numpy()
+    end_quarter = _end_quarter(dates, as_of, fiscal_year_start)
+    quarters = quarter_index(dates, fiscal_year_start)
+    ids = frame[ID_COLUMN].array
+    codes = np.asarray(ids.codes, dtype=np.int64)
+    late = quarters > end_quarter
+    if late.any():
+        counts["orders after the as-of quarter left out"] = int(late.sum())
+    early_customers = np.zeros(len(ids.categories), dtype=bool)
+    early_customers[codes[~late]] = True
+    all_customers = np.zeros(len(ids.categories), dtype=bool)
+    all_customers[codes] = True
+    new_after = int((all_customers & ~early_customers).sum())
+    if new_after:
+        counts["customers whose first order is after the as-of quarter left out"] = new_after
+
+    keep = ~late
+    codes, quarters, amounts = codes[keep], quarters[keep], frame[AMOUNT_COLUMN].to_numpy()[keep]
+    # Net spend per customer and quarter.
+    base = quarters.min()
+    span = end_quarter - base + 1
+    cell = codes * span + (quarters - base)
+    cells, inverse = np.unique(cell, return_inverse=True)
+    net = np.bincount(inverse, weights=amounts, minlength=len(cells))
+    cell_code = cells // span
+    cell_quarter = cells % span + base
+    bought = net > 0
+    netted_out = int((~bought).sum())
+    if netted_out:
+        counts["customer-quarters whose returns netted spend to zero or below (not purchases)"] = netted_out
+
+    # Quarter 0: the first quarter with a purchase.
+    first_by_code = np.full(len(ids.categories), np.iinfo(np.int64).max)
+    np.minimum.at(first_by_code, cell_code[bought], cell_quarter[bought])
+    has_purchase = first_by_code != np.iinfo(np.int64).max
+    never = int((early_customers & ~has_purchase).sum())
+    if never:
+        counts["customers with no quarter of positive net spend left out"] = never
+    if not has_purchase.any():
+        raise InputError(f"{orders.name}: no customer has a quarter with positive net spend by the as-of date; check the amounts")
+
+    category_text = np.asarray(ids.categories).astype(str)
+    kept_codes = np.flatnonzero(has_purchase)
+    order = np.argsort(category_text[kept_codes], kind="stable")
+    kept_codes = kept_codes[order]
+    new_code = np.full(len(ids.categories), -1, dtype=np.int64)
+    new_code[kept_codes] = np.arange(len(kept_codes))
+    customer_ids = category_text[kept_codes]
+    first_quarter = first_by_code[kept_codes]
+    width = int(end_quarter - first_quarter.min() + 1)
+
+    customers = len(customer_ids)
+    purchased = np.zeros((customers, width), dtype=np.uint8)
+    spend = np.zeros((customers, width), dtype=np.float32)
+    row = new_code[cell_code[bought]]
+    live = row >= 0
+    row = row[live]
+    column = cell_quarter[bought][live] - first_quarter[row]
+    purchased[row, column] = 1
+    spend[row, column] = net[bought][live]
+
+    n = end_quarter - first_quarter
+    if mailings is None:
+        mailed = (np.arange(width)[None, :] >= 1) & (np.arange(width)[None, :] <= n[:, None])
+        mailed = mailed.astype(np.uint8)
+    else:
+        mailed, mail_counts = _mailed_quarters(mailings, category_text, new_code, customer_ids, first_quarter, end_quarter, width, fiscal_year_start)
+        counts.update(mail_counts)
+    return Panel(
+        customer_ids=customer_ids,
+        first_quarter=first_quarter,
+        end_quarter=int(end_quarter),
+        purchased=purchased,
+        spend=spend,
+        mailed=mailed,
+        mailing_history=mailings is not None,
+        fiscal_year_start=fiscal_year_start,
+        counts=counts,
+    )
+
+
+def _mailed_quarters(
+    mailings: Loaded,
+    order_id_text: np.ndarray,
+    order_new_code: np.ndarray,
+    customer_ids: np.ndarray,
+    first_quarter: np.ndarray,
+    end_quarter: int,
+    width: int,
+    fiscal_year_start: int,
+) -> tuple[np.ndarray, dict[str, int]]:
+    """Mark each customer-quarter in which at least one piece was mailed."""
+    counts = {f"mailings file: {k}": v for k, v in mailings.repairs.items()}
+    frame = mailings.frame
+    ids = frame[ID_COLUMN].array
+    mail_codes = np.asarray(ids.codes, dtype=np.int64)
+    # Map the mailings' own id categories onto panel rows through the id text.
+    lookup = pd.Index(customer_ids).get_indexer(np.asarray(ids.categories).astype(str))
+    row = lookup[mail_codes]
+    unknown = row < 0
+    if unknown.any():
+        counts["mailing rows for customers not in the orders left out"] = int(unknown.sum())
+    quarters = quarter_index(frame[MAIL_DATE_COLUMN].to_numpy(), fiscal_year_start)
+    after = (quarters > end_quarter) & ~unknown
+    if after.any():
+        counts["mailing rows after the as-of quarter ignored"] = int(after.sum())
+    keep = ~unknown & ~after
+    row = row[keep]
+    column = quarters[keep] - first_quarter[row]
+    inside = column >= 1
+    mailed = np.zeros((len(customer_ids), width), dtype=np.uint8)
+    mailed[row[inside], column[inside]] = 1
+    return mailed, counts
+
+
+# ---------------------------------------------------------------- per-customer summary
+
+
+@dataclass(frozen=True)
+class CustomerSummary:
+    """Per-customer recency-frequency quantities at the panel's as-of quarter.
+
+    Attributes
+    ----------
+    x : repeat purchase quarters (purchases after quarter 0)
+    t_x : quarter of the last purchase (0 for one-time buyers)
+    n : quarters observed after quarter 0
+    silent_quarters : ``n - t_x``
+    mean_repeat_value : mean net spend over repeat purchase quarters (NaN when x = 0)
+    mean_order_value : mean net spend over all purchase quarters, quarter 0 included
+    mailed_since_last : mailed quarters after the last purchase
+    """
+
+    x: np.ndarray
+    t_x: np.ndarray
+    n: np.ndarray
+    silent_quarters: np.ndarray
+    mean_repeat_value: np.ndarray
+    mean_order_value: np.ndarray
+    mailed_since_last: np.ndarray
+
+
+def last_purchase_quarter(purchased: np.ndarray) -> np.ndarray:
+    """Index of the last 1 in each row (0 when the only purchase is quarter 0)."""
+    width = purchased.shape[1]
+    return (width - 1 - np.argmax(purchased[:, ::-1], axis=1)).astype(np.int64)
+
+
+def summarize(panel: Panel) -> CustomerSummary:
+    """Per-customer x, t_x, n, silent quarters, order values and mailed quarters since the last purchase."""
+    purchased = panel.purchased
+    x = purchased[:, 1:].sum(axis=1, dtype=np.int64)
+    t_x = last_purchase_quarter(purchased)
+    n = panel.n
+    total = panel.spend.sum(axis=1, dtype=np.float64)
+    first_spend = panel.spend[:, 0].astype(np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_repeat = np.where(x > 0, (total - first_spend) / np.maximum(x, 1), np.nan)
+        mean_order = total / (x + 1)
+    columns = np.arange(purchased.shape[1])[None, :]
+    after_last = (columns > t_x[:, None]) & (columns <= n[:, None])
+    mailed_since = (panel.mailed.astype(bool) & after_last).sum(axis=1)
+    return CustomerSummary(
+        x=x,
+        t_x=t_x,
+        n=n,
+        silent_quarters=n - t_x,
+        mean_repeat_value=mean_repeat,
+        mean_order_value=mean_order,
+        mailed_since_last=mailed_since.astype(np.int64),
+    )
+
+
+def truncate(panel: Panel, end_quarter: int) -> Panel:
+    """The panel as it stood at an earlier as-of quarter: later quarters blanked, later customers dropped."""
+    keep = panel.first_quarter <= end_quarter
+    first = panel.first_quarter[keep]
+    width = int(end_quarter - first.min() + 1)
+    columns = np.arange(width)[None, :]
+    inside = columns <= (end_quarter - first)[:, None]
+    return Panel(
+        customer_ids=panel.customer_ids[keep],
+        first_quarter=first,
+        end_quarter=int(end_quarter),
+        purchased=panel.purchased[keep, :width] * inside,
+        spend=panel.spend[keep, :width] * inside,
+        mailed=panel.mailed[keep, :width] * inside,
+        mailing_history=panel.mailing_history,
+        fiscal_year_start=panel.fiscal_year_start,
+        counts=dict(panel.counts),
+    )
+
+
+# ---------------------------------------------------------------- distinct histories
+
+
+@dataclass(frozen=True)
+class Histories:
+    """Customers compressed into distinct histories: everything the churn likelihood needs, once per pattern.
+
+    For each distinct history: ``x`` repeat purchases, ``x_unmailed`` of them in
+    unmailed quarters, ``t_x``, ``n``, ``mailed_silent`` and ``unmailed_silent``
+    (silent quarters up to ``t_x`` that were mailed / not mailed), and
+    ``after_last`` (mail flags of the quarters ``t_x + 1 .. n``, left-aligned,
+    padded with 0). ``count`` is how many customers share it and ``inverse`` maps
+    every customer to its history.
+    """
+
+    x: np.ndarray
+    x_unmailed: np.ndarray
+    t_x: np.ndarray
+    n: np.ndarray
+    mailed_silent: np.ndarray
+    unmailed_silent: np.ndarray
+    after_last: np.ndarray
+    count: np.ndarray
+    inverse: np.ndarray
+
+    @property
+    def size(self) -> int:
+        return len(self.x)
+
+    @property
+    def silent_quarters(self) -> np.ndarray:
+        return self.n - self.t_x
+
+
+def history_arrays(purchased: np.ndarray, mailed: np.ndarray, n: np.ndarray) -> dict[str, np.ndarray]:
+    """The likelihood's sufficient statistics of every row of aligned purchase and mail arrays."""
+    width = purchased.shape[1]
+    columns = np.arange(width)[None, :]
+    observed = (columns >= 1) & (columns <= n[:, None])
+    bought = purchased.astype(bool) & observed
+    was_mailed = mailed.astype(bool) & observed
+    t_x = last_purchase_quarter(bought | (columns == 0))
+    before_last = columns <= t_x[:, None]
+    silent = observed & ~bought
+    silent_quarters = n - t_x
+    after_width = max(int(silent_quarters.max()), 1) if len(n) else 1
+    gather = np.minimum(t_x[:, None] + 1 + np.arange(after_width)[None, :], width - 1)
+    after_last = np.take_along_axis(was_mailed, gather, axis=1) & (np.arange(after_width)[None, :] < silent_quarters[:, None])
+    return {
+        "x": bought.sum(axis=1, dtype=np.int64),
+        "x_unmailed": (bought & ~was_mailed).sum(axis=1, dtype=np.int64),
+        "t_x": t_x,
+        "n": n.astype(np.int64),
+        "mailed_silent": (silent & was_mailed & before_last).sum(axis=1, dtype=np.int64),
+        "unmailed_silent": (silent & ~was_mailed & before_last).sum(axis=1, dtype=np.int64),
+        "after_last": after_last.astype(np.uint8),
+    }
+
+
+def compress(panel: Panel) -> Histories:
+    """Group customers into distinct histories so that model work scales with patterns, not people."""
+    arrays = history_arrays(panel.purchased, panel.mailed, panel.n)
+    return compress_arrays(arrays)
+
+
+def compress_arrays(arrays: dict[str, np.ndarray]) -> Histories:
+    scalars = ["x", "x_unmailed", "t_x", "n", "mailed_silent", "unmailed_silent"]
+    packed = np.packbits(arrays["after_last"], axis=1)
+    key = np.concatenate([np.stack([arrays[s] for s in scalars], axis=1).astype(np.int16).view(np.uint8), packed], axis=1)
+    key = np.ascontiguousarray(key)
+    rows = key.view(np.dtype((np.void, key.shape[1]))).ravel()
+    _, first, inverse, count = np.unique(rows, return_index=True, return_inverse=True, return_counts=True)
+    return Histories(
+        **{s: arrays[s][first] for s in scalars},
+        after_last=arrays["after_last"][first],
+        count=count.astype(np.int64),
+        inverse=inverse.ravel().astype(np.int64),
+    )
+
+
+# ---------------------------------------------------------------- bands and the base table
+
+DEFAULT_FREQUENCY_BANDS = (0, 1, 2, 3, 5, 9)
+DEFAULT_SILENT_BANDS = (0, 1, 2, 3, 5, 9)
+
+
+def band_labels(lower_bounds: tuple[int, ...] | list[int]) -> list[str]:
+    """Labels for integer bands given their lower bounds: (0, 1, 3) -> ['0', '1-2', '3+']."""
+    labels = []
+    for i, low in enumerate(lower_bounds):
+        if i + 1 < len(lower_bounds):
+            high = lower_bounds[i + 1] - 1
+            labels.append(str(low) if high == low else f"{low}-{high}")
+        else:
+            labels.append(f"{low}+")
+    return labels
+
+
+def band_of(values: np.ndarray, lower_bounds: tuple[int, ...] | list[int]) -> np.ndarray:
+    """Index of the band each value falls in (values below the first bound go to band 0)."""
+    return np.maximum(np.searchsorted(np.asarray(lower_bounds), values, side="right") - 1, 0)
+
+
+def base_table(
+    summary: CustomerSummary,
+    frequency_bands: tuple[int, ...] = DEFAULT_FREQUENCY_BANDS,
+    silent_bands: tuple[int, ...] = DEFAULT_SILENT_BANDS,
+) -> pd.DataFrame:
+    """Customers and mean order value by frequency band and silent-quarter band (long format)."""
+    frequency = band_of(summary.x, frequency_bands)
+    silent = band_of(summary.silent_quarters, silent_bands)
+    frame = pd.DataFrame({"frequency": frequency, "silent": silent, "value": summary.mean_order_value})
+    grouped = frame.groupby(["frequency", "silent"]).agg(customers=("value", "size"), mean_order_value=("value", "mean"))
+    full = pd.MultiIndex.from_product([range(len(frequency_bands)), range(len(silent_bands))], names=["frequency", "silent"])
+    grouped = grouped.reindex(full).reset_index()
+    grouped["customers"] = grouped["customers"].fillna(0).astype(np.int64)
+    grouped["frequency_band"] = np.asarray(band_labels(frequency_bands))[grouped["frequency"]]
+    grouped["silent_band"] = np.asarray(band_labels(silent_bands))[grouped["silent"]]
+    return grouped[["frequency_band", "silent_band", "customers", "mean_order_value"]]
+
+
+def panel_from_files(
+    orders_path: str,
+    mailings_path: str | None = None,
+    as_of: str | None = None,
+    fiscal_year_start: int = 1,
+    id_column: str = ID_COLUMN,
+    date_column: str = ORDER_DATE_COLUMN,
+    amount_column: str = AMOUNT_COLUMN,
+) -> Panel:
+    """Load the orders (and mailings) files and build the panel: the first two stages in one call."""
+    from lapsewise.load import load_mailings, load_orders
+
+    as_of_date = parse_as_of(as_of)
+    orders = load_orders(orders_path, id_column, date_column, amount_column)
+    mailings = load_mailings(mailings_path, id_column) if mailings_path else None
+    return build_panel(orders, mailings, as_of_date, fiscal_year_start)
