@@ -1,0 +1,184 @@
+"""The mailing-aware hidden-churn model: exactness, equivalence to BG/BB, recovery of known parameters."""
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+from numpy.testing import assert_allclose
+from scipy import integrate, special
+
+from lapsewise.churn import (
+    ChurnFit,
+    expand,
+    fit_churn,
+    history_log_likelihood,
+    log_p_moments,
+    posterior,
+    return_curve,
+    total_gradient,
+    total_log_likelihood,
+)
+from lapsewise.panel import compress_arrays, history_arrays
+from simulate_histories import simulate, simulate_histories
+
+
+def one_history(purchased, mailed):
+    """Histories of one customer from explicit quarter-by-quarter sequences (quarter 0 first)."""
+    purchased = np.array([purchased], dtype=np.uint8)
+    mailed = np.array([mailed], dtype=np.uint8)
+    return compress_arrays(history_arrays(purchased, mailed, np.array([purchased.shape[1] - 1])))
+
+
+def direct_likelihood(purchases, mails, alpha, beta, gamma, delta, rho):
+    """The likelihood straight from the model's definition, integrated numerically over p and theta with SciPy.
+
+    Sums over the last quarter tau the customer was alive, multiplying quarter by quarter.
+    """
+    n = len(purchases) - 1
+    t_x = max(i for i, y in enumerate(purchases) if y or i == 0)
+
+    def integrand(p, theta):
+        total = 0.0
+        for tau in range(t_x, n + 1):
+            survive = (1 - theta) ** tau * (theta if tau < n else 1.0)
+            chance = 1.0
+            for q in range(1, tau + 1):
+                buy = p * (1.0 if mails[q] else rho)
+                chance *= buy if purchases[q] else 1 - buy
+            total += survive * chance
+        density = p ** (alpha - 1) * (1 - p) ** (beta - 1) * theta ** (gamma - 1) * (1 - theta) ** (delta - 1)
+        return total * density / (special.beta(alpha, beta) * special.beta(gamma, delta))
+
+    value, _ = integrate.dblquad(integrand, 0, 1, 0, 1, epsabs=1e-13, epsrel=1e-10)
+    return value
+
+
+@pytest.mark.parametrize(
+    "purchases, mails",
+    [
+        ([1, 0, 1, 0, 0], [0, 1, 1, 0, 1]),
+        ([1, 1, 0, 0, 1, 0], [0, 0, 1, 1, 1, 0]),
+        ([1, 0, 0, 0], [0, 1, 0, 1]),
+        ([1, 0, 1, 1, 0, 0, 0], [0, 1, 1, 0, 1, 1, 0]),
+    ],
+)
+def test_likelihood_equals_direct_numerical_integration(purchases, mails):
+    params = (1.7, 2.3, 1.4, 3.1, 0.35)  # smooth densities so scipy.integrate.dblquad converges tightly
+    ours = np.exp(history_log_likelihood(expand(one_history(purchases, mails)), params))[0]
+    # Reference: SciPy's adaptive quadrature of the model's definition.
+    assert_allclose(ours, direct_likelihood(purchases, mails, *params), rtol=1e-7)
+
+
+def test_p_moments_equal_gauss_jacobi_quadrature():
+    # Reference: Gauss-Jacobi quadrature (scipy.special.roots_jacobi) is exact for these polynomials
+    # once it has degree // 2 + 1 nodes.
+    triples = np.array([[0, 0, 0], [3, 2, 5], [7, 0, 11], [1, 9, 4], [12, 6, 14]])
+    alpha, beta, rho = 0.8, 1.9, 0.27
+    nodes, weights = special.roots_jacobi(int(triples.sum(axis=1).max()) // 2 + 1, beta - 1, alpha - 1)
+    p = (1 + nodes) / 2
+    expected = [np.log(np.sum(weights * p**x * (1 - p) ** a * (1 - rho * p) ** b) / weights.sum()) for x, a, b in triples]
+    assert_allclose(log_p_moments(triples, alpha, beta, rho), expected, rtol=1e-11)
+
+
+@pytest.mark.parametrize("rho", [0.0001, 0.3, 0.9])
+def test_mailing_aware_likelihood_is_bgbb_when_every_quarter_is_mailed(rho):
+    # With every quarter mailed, rho never enters: the model is BG/BB (FHB 2010).
+    purchased, mailed, n = simulate(400, 1.1, 2.0, 0.8, 3.5, 0.3, seed=3)
+    hist = compress_arrays(history_arrays(purchased, mailed, n))
+    expansion = expand(hist)
+    bgbb = history_log_likelihood(expansion, (1.1, 2.0, 0.8, 3.5, None))
+    aware = history_log_likelihood(expansion, (1.1, 2.0, 0.8, 3.5, rho))
+    assert_allclose(aware, bgbb, rtol=1e-11)
+
+
+def test_compressed_likelihood_equals_sum_over_customers():
+    purchased, mailed, n = simulate(300, 1.0, 2.5, 0.7, 4.0, 0.3, lapse_after=2, winback_share=0.3, seed=5)
+    params = (1.0, 2.5, 0.7, 4.0, 0.3)
+    compressed = total_log_likelihood(expand(compress_arrays(history_arrays(purchased, mailed, n))), params)
+    one_by_one = sum(
+        history_log_likelihood(expand(compress_arrays(history_arrays(purchased[i : i + 1], mailed[i : i + 1], n[i : i + 1]))), params)[0]
+        for i in range(len(n))
+    )
+    assert_allclose(compressed, one_by_one, rtol=1e-12)
+
+
+def test_gradient_matches_finite_differences():
+    hist = simulate_histories(2000, 1.0, 2.5, 0.7, 4.0, 0.3, lapse_after=2, winback_share=0.3, seed=11)
+    expansion = expand(hist)
+    point = np.array([0.9, 2.2, 0.8, 3.6, 0.4])
+    _, grad = total_gradient(expansion, tuple(point))
+    numeric = []
+    for i in range(5):
+        step = 1e-6 * point[i]
+        up, down = point.copy(), point.copy()
+        up[i] += step
+        down[i] -= step
+        numeric.append((total_log_likelihood(expansion, tuple(up)) - total_log_likelihood(expansion, tuple(down))) / (2 * step))
+    assert_allclose(grad, numeric, rtol=1e-5)
+
+
+TRUTH = {"alpha": 1.2, "beta": 2.5, "gamma": 0.7, "delta": 4.0, "rho": 0.3}
+
+
+def _covers(fit: ChurnFit, names):
+    for name in names:
+        estimate, error = getattr(fit, name), fit.std_errors[name]
+        assert error is not None and error > 0, name
+        # A 99.9% interval (3.3 standard errors): a correct fit misses with probability 1e-3 per parameter.
+        assert abs(estimate - TRUTH[name]) < 3.3 * error, (name, estimate, error)
+
+
+def test_recovers_known_parameters_when_every_quarter_is_mailed():
+    hist = simulate_histories(20_000, *TRUTH.values(), seed=2024)
+    fit = fit_churn(hist, mailing_history=False)
+    assert fit.converged and fit.rho is None
+    _covers(fit, ["alpha", "beta", "gamma", "delta"])
+
+
+def test_recovers_known_parameters_and_rho_with_unmailed_quarters():
+    hist = simulate_histories(20_000, *TRUTH.values(), lapse_after=2, winback_share=0.25, seed=77)
+    fit = fit_churn(hist, mailing_history=True)
+    assert fit.converged
+    _covers(fit, ["alpha", "beta", "gamma", "delta", "rho"])
+    # The standard error of rho must be small enough to tell it from "mailing makes no difference".
+    assert fit.rho + 3.3 * fit.std_errors["rho"] < 1.0
+
+
+def test_rho_is_flagged_when_no_quarter_is_unmailed():
+    hist = simulate_histories(3000, *TRUTH.values(), seed=4)
+    fit = fit_churn(hist, mailing_history=True)
+    assert fit.std_errors["rho"] is None
+    assert any("rho is not identified" in w for w in fit.warnings)
+
+
+def test_posterior_predicts_next_quarter_purchases_in_simulation():
+    # Simulate 9 quarters after quarter 0, fit nothing (true parameters), condition on the first 8
+    # and predict who buys in the 9th among the customers the lapse rule mailed then.
+    purchased, mailed, n = simulate(40_000, *TRUTH.values(), quarters=(9, 9), lapse_after=3, winback_share=0.2, seed=9)
+    hist = compress_arrays(history_arrays(purchased[:, :9], mailed[:, :9], n - 1))
+    post = posterior(ChurnFit(**TRUTH), hist)
+    predicted = post.p_buy[hist.inverse]
+    was_mailed = mailed[:, 9] == 1
+    actual = purchased[was_mailed, 9].sum()
+    expected = predicted[was_mailed].sum()
+    variance = (predicted[was_mailed] * (1 - predicted[was_mailed])).sum()
+    # Independent Bernoulli outcomes given the history: a correct model is within 4 SD with overwhelming probability.
+    assert abs(actual - expected) < 4 * np.sqrt(variance)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    x=st.integers(0, 8),
+    extra=st.integers(0, 6),
+    alpha=st.floats(0.2, 5),
+    beta=st.floats(0.2, 5),
+    gamma=st.floats(0.2, 5),
+    delta=st.floats(0.2, 8),
+)
+def test_return_curve_is_a_probability_and_fades(x, extra, alpha, beta, gamma, delta):
+    fit = ChurnFit(alpha=alpha, beta=beta, gamma=gamma, delta=delta, rho=None)
+    p_alive, p_buy = return_curve(fit, x, x + extra, 12)
+    assert np.all((p_alive >= 0) & (p_alive <= 1 + 1e-12))
+    assert np.all((p_buy >= 0) & (p_buy <= p_alive + 1e-12))
+    # Every further mailed quarter without a purchase can only lower the hope of a return.
+    assert np.all(np.diff(p_alive) <= 1e-12)
+    assert np.all(np.diff(p_buy) <= 1e-12)
