@@ -110,20 +110,28 @@ def parse_as_of(text: str | None) -> dt.date | None:
         raise InputError(f"--as-of: '{text}' is not a date; write it as YYYY-MM-DD") from None
 
 
-def _end_quarter(order_dates: np.ndarray, as_of: dt.date | None, fiscal_year_start: int) -> int:
+def _end_quarter(name: str, order_dates: np.ndarray, as_of: dt.date | None, fiscal_year_start: int) -> int:
     """The last complete quarter on or before the as-of date (default: the last order date)."""
     first = pd.Timestamp(order_dates.min()).date()
+    given = as_of is not None
     if as_of is None:
         as_of = pd.Timestamp(order_dates.max()).date()
     elif as_of < first:
-        raise InputError(f"--as-of {as_of} is before the first order ({first}); choose a later date")
+        raise InputError(f"--as-of {as_of} is before the first order in {name} ({first}); choose a later date")
+    elif as_of > pd.Timestamp.max.date():
+        raise InputError(f"--as-of {as_of} is after {pd.Timestamp.max.year - 1}; choose an earlier date")
     quarter = int(quarter_index(np.array([np.datetime64(as_of, "D")]), fiscal_year_start)[0])
     if quarter_end(quarter, fiscal_year_start) != as_of:
         quarter -= 1
     first_quarter = int(quarter_index(np.array([np.datetime64(first, "D")]), fiscal_year_start)[0])
+    if quarter < first_quarter and given:
+        raise InputError(
+            f"--as-of {as_of}: no complete quarter of orders in {name} ends by then (first order {first}); choose a later date"
+        )
     if quarter < first_quarter:
         raise InputError(
-            f"--as-of {as_of}: no complete quarter of orders ends by then (first order {first}); choose a later date"
+            f"{name}: every order falls in one quarter that is not complete ({first} to {as_of}); "
+            f"pass --as-of {quarter_end(first_quarter, fiscal_year_start)} to count that quarter as complete"
         )
     return quarter
 
@@ -149,7 +157,7 @@ def build_panel(
     counts = dict(orders.repairs)
     frame = orders.frame
     dates = frame[ORDER_DATE_COLUMN].to_numpy()
-    end_quarter = _end_quarter(dates, as_of, fiscal_year_start)
+    end_quarter = _end_quarter(orders.name, dates, as_of, fiscal_year_start)
     quarters = quarter_index(dates, fiscal_year_start)
     ids = frame[ID_COLUMN].array
     codes = np.asarray(ids.codes, dtype=np.int64)
@@ -335,6 +343,21 @@ def truncate(panel: Panel, end_quarter: int) -> Panel:
         purchased=panel.purchased[keep, :width] * inside,
         spend=panel.spend[keep, :width] * inside,
         mailed=panel.mailed[keep, :width] * inside,
+        mailing_history=panel.mailing_history,
+        fiscal_year_start=panel.fiscal_year_start,
+        counts=dict(panel.counts),
+    )
+
+
+def select(panel: Panel, rows: np.ndarray) -> Panel:
+    """The panel restricted to some customers (a boolean mask or row indices), in their order."""
+    return Panel(
+        customer_ids=panel.customer_ids[rows],
+        first_quarter=panel.first_quarter[rows],
+        end_quarter=panel.end_quarter,
+        purchased=panel.purchased[rows],
+        spend=panel.spend[rows],
+        mailed=panel.mailed[rows],
         mailing_history=panel.mailing_history,
         fiscal_year_start=panel.fiscal_year_start,
         counts=dict(panel.counts),

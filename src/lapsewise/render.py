@@ -74,3 +74,121 @@ def print_panel_summary(console: Console, panel: Panel) -> None:
 
 def print_caution(console: Console) -> None:
     console.print(f"[dim]{CAUTION}[/dim]")
+
+
+def _estimate(value: float | None, error: float | None) -> tuple[str, str]:
+    if value is None:
+        return "not estimated", "-"
+    return f"{value:.4g}", "-" if error is None else f"{error:.3g}"
+
+
+def print_model(console: Console, model, curves) -> None:
+    """Parameters, fit quality, spend model and the return curve of a fitted model."""
+    churn = model.churn
+    table = Table(title="Hidden-churn model (BG/BB with mailing response)", title_justify="left")
+    for column in ("Parameter", "Estimate", "Std. error", "Meaning"):
+        table.add_column(column, justify="right" if column in ("Estimate", "Std. error") else "left")
+    mean_p = churn.alpha / (churn.alpha + churn.beta)
+    mean_theta = churn.gamma / (churn.gamma + churn.delta)
+    meanings = {
+        "alpha": f"purchase probability p ~ Beta(alpha, beta); mean p = {mean_p:.3f} per mailed quarter",
+        "beta": "",
+        "gamma": f"churn probability theta ~ Beta(gamma, delta); mean theta = {mean_theta:.3f} per quarter",
+        "delta": "",
+        "rho": "share of the purchase probability left in an unmailed quarter",
+    }
+    for name, meaning in meanings.items():
+        value = getattr(churn, name)
+        estimate, error = _estimate(value, churn.std_errors.get(name))
+        table.add_row(name, estimate, error, meaning if name != "rho" or value is not None else "no mailings file: every quarter counted as mailed")
+    console.print(table)
+    console.print(
+        f"Log-likelihood {churn.log_likelihood:,.2f} over {model.customers:,} customers in {churn.histories:,} distinct histories; "
+        f"{'converged' if churn.converged else 'NOT converged'}."
+    )
+    if model.spend is not None:
+        spend = model.spend
+        table = Table(title="Order value (gamma-gamma)", title_justify="left")
+        for column in ("Parameter", "Estimate", "Std. error"):
+            table.add_column(column, justify="right" if column != "Parameter" else "left")
+        for name in ("p", "q", "gamma"):
+            estimate, error = _estimate(getattr(spend, name), spend.std_errors.get(name))
+            table.add_row(name, estimate, error)
+        console.print(table)
+        console.print(
+            f"Population mean order value {money(spend.population_mean)} (currency units) from {spend.customers:,} repeat customers; "
+            f"correlation between repeat purchases and mean order value {spend.frequency_value_correlation:+.2f} (the model assumes none)."
+        )
+    for warning in model.warnings:
+        console.print(f"[yellow]warning:[/yellow] {warning}")
+    print_return_curves(console, curves)
+
+
+def print_return_curves(console: Console, curves) -> None:
+    if curves.empty:
+        return
+    table = Table(
+        title="Return curve: P(alive) / P(order next quarter if mailed), in %, after k more mailed quarters without an order",
+        title_justify="left",
+    )
+    table.add_column("k", justify="right")
+    groups = list(curves.groupby("band", sort=False))
+    for band, rows in groups:
+        first = rows.iloc[0]
+        table.add_column(f"{band} repeat\n(x={first.x}, t_x={first.t_x})", justify="right")
+    for k in sorted(curves["k"].unique()):
+        cells = [str(k)]
+        for _, rows in groups:
+            row = rows[rows["k"] == k].iloc[0]
+            cells.append(f"{100 * row.p_alive:.0f} / {100 * row.p_buy:.1f}")
+        table.add_row(*cells)
+    console.print(table)
+    band, rows = groups[0]
+    last = rows.iloc[-1]
+    console.print(
+        f"A typical customer with {band} repeat purchases has a {100 * rows.iloc[0].p_buy:.1f}% chance of ordering if mailed now; "
+        f"after {int(last.k)} more mailed quarters without an order it is {100 * last.p_buy:.1f}%."
+    )
+
+
+def print_backtest(console: Console, result) -> None:
+    console.print(
+        f"Fitted on the data up to {result.calibration_as_of}; predicting the next {result.holdout_quarters} quarters "
+        f"for {result.customers:,} customers, given the mailings actually made."
+    )
+    gap = (result.predicted - result.actual) / result.actual if result.actual else float("nan")
+    table = Table(title="Repeat purchases in the holdout quarters (count)", title_justify="left")
+    table.add_column("Actual", justify="right")
+    table.add_column("Predicted", justify="right")
+    table.add_column("Difference", justify="right")
+    table.add_row(f"{result.actual:,.0f}", f"{result.predicted:,.1f}", f"{gap:+.1%}")
+    console.print(table)
+    table = Table(title="Mean repeat purchases per customer in the holdout, by repeat purchases in calibration", title_justify="left")
+    for column in ("Repeat purchases", "Customers", "Actual mean", "Predicted mean"):
+        table.add_column(column, justify="right" if column != "Repeat purchases" else "left")
+    for row in result.by_frequency.itertuples():
+        table.add_row(str(row.frequency), f"{row.customers:,}", f"{row.actual_mean:.3f}", f"{row.predicted_mean:.3f}")
+    console.print(table)
+    table = Table(title="Quarter by quarter: repeat purchases of the whole calibration base (count)", title_justify="left")
+    for column in ("Quarter", "Mailed (%)", "Actual", "Predicted"):
+        table.add_column(column, justify="right" if column != "Quarter" else "left")
+    for row in result.by_quarter.itertuples():
+        table.add_row(row.quarter, f"{100 * row.mailed_share:.0f}", f"{row.actual:,}", f"{row.predicted:,.1f}")
+    console.print(table)
+    console.print(f"The model predicted {result.predicted:,.0f} repeat purchases against {result.actual:,.0f} actual ({gap:+.1%}).")
+
+
+def print_scores(console: Console, scores, horizon: int, out) -> None:
+    table = Table(title="Scores written", title_justify="left")
+    for column in ("Customers", "Mean P(alive) (%)", "Mean P(order next q) (%)", f"Expected orders, next {horizon} q", "Mean DERT (orders)"):
+        table.add_column(column, justify="right")
+    table.add_row(
+        f"{len(scores):,}",
+        f"{100 * scores['p_alive'].mean():.1f}",
+        f"{100 * scores['p_buy'].mean():.2f}",
+        f"{scores['expected_purchases'].sum():,.0f}",
+        f"{scores['dert'].mean():.3f}",
+    )
+    console.print(table)
+    likely = int((scores["p_alive"] >= 0.5).sum())
+    console.print(f"{likely:,} of {len(scores):,} customers are more likely alive than not; one row per customer is in {out}.")
