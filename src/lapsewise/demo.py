@@ -159,9 +159,9 @@ def write_demo_files(folder: Path, data: DemoData, force: bool) -> dict[str, Pat
     if folder.exists() and not folder.is_dir():
         raise InputError(f"{folder}: exists and is not a folder; choose another --dir")
     folder.mkdir(parents=True, exist_ok=True)
-    paths = {"orders": folder / "orders.csv", "mailings": folder / "mailings.csv", "truth": folder / "truth.json"}
+    paths = {"orders": folder / "orders.csv", "mailings": folder / "mailings.csv", "truth": folder / "truth.json", "model": folder / "model.json"}
     for path in paths.values():
-        check_writable(path, force)
+        check_writable(path, force)  # every output of the demo, before anything is written
     write_atomic(paths["orders"], lambda p: data.orders.to_csv(p, index=False), force)
     mailings = data.mailings.assign(mail_date=pd.to_datetime(data.mailings["mail_date"]).dt.strftime("%Y-%m-%d"))
     write_atomic(paths["mailings"], lambda p: mailings.to_csv(p, index=False), force)
@@ -173,6 +173,9 @@ def write_demo_files(folder: Path, data: DemoData, force: bool) -> dict[str, Pat
 def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, force: bool) -> None:
     """Generate the scenario, write its files, and run every step of the tool on them."""
     from lapsewise import render
+    from lapsewise.backtest import run_backtest
+    from lapsewise.model import fit_model, return_curves
+    from lapsewise.output import dumps_stable, write_text_atomic
     from lapsewise.panel import panel_from_files
 
     data = simulate_base(customers, quarters, seed)
@@ -185,4 +188,15 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
     panel = panel_from_files(str(paths["orders"]), str(paths["mailings"]), str(data.as_of))
     console.rule("The customer base")
     render.print_panel_summary(console, panel)
+
+    console.rule("The fitted model")
+    model = fit_model(panel)
+    model_path = folder / "model.json"
+    write_text_atomic(model_path, dumps_stable(model.to_dict()), force)
+    render.print_model(console, model, return_curves(model, panel))
+    render.print_truth_comparison(console, model, data.truth)
+    console.print(f"Model written to {model_path}.")
+
+    console.rule("Backtest: the last 4 quarters held out")
+    render.print_backtest(console, run_backtest(panel, 4))
     render.print_caution(console)

@@ -1,0 +1,87 @@
+"""The commands end to end on a small demo scenario, run as a user would run them."""
+
+import json
+import subprocess
+import sys
+
+import pytest
+
+
+def run(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "lapsewise", *map(str, args)], capture_output=True, text=True, cwd=cwd)
+
+
+@pytest.fixture(scope="module")
+def demo_dir(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("demo")
+    result = run("demo", "--dir", folder, "--customers", 3000, "--quarters", 16, "--seed", 3)
+    assert result.returncode == 0, result.stderr
+    return folder
+
+
+def test_demo_writes_its_files_and_prints_every_step(demo_dir):
+    for name in ("orders.csv", "mailings.csv", "truth.json", "model.json"):
+        assert (demo_dir / name).exists()
+    result = run("demo", "--dir", demo_dir, "--customers", 3000, "--quarters", 16, "--seed", 3)
+    # Never overwrite without --force.
+    assert result.returncode == 2 and "--force" in result.stderr and "Traceback" not in result.stderr
+
+
+def test_demo_output_sections(tmp_path):
+    result = run("demo", "--dir", tmp_path / "d", "--customers", 1500, "--quarters", 12)
+    assert result.returncode == 0, result.stderr
+    for text in ("customers", "Hidden-churn model", "true settings", "Backtest", "personal data"):
+        assert text in result.stdout
+
+
+def test_demo_is_deterministic(tmp_path):
+    run("demo", "--dir", tmp_path / "a", "--customers", 800, "--quarters", 10, "--seed", 11)
+    run("demo", "--dir", tmp_path / "b", "--customers", 800, "--quarters", 10, "--seed", 11)
+    for name in ("orders.csv", "mailings.csv", "model.json"):
+        assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes()
+
+
+def test_fit_writes_model_and_refuses_to_overwrite(demo_dir, tmp_path):
+    out = tmp_path / "model.json"
+    result = run("fit", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--out", out)
+    assert result.returncode == 0, result.stderr
+    model = json.loads(out.read_text())
+    assert model["mailing_history"] is True and model["churn"]["rho"] is not None
+    assert "Return curve" in result.stdout
+    again = run("fit", demo_dir / "orders.csv", "--out", out)
+    assert again.returncode == 2 and "already exists" in again.stderr
+    forced = run("fit", demo_dir / "orders.csv", "--out", out, "--force")
+    assert forced.returncode == 0
+    # Without a mailings file rho is not estimated and the output says every quarter counts as mailed.
+    assert json.loads(out.read_text())["churn"]["rho"] is None
+    assert "counted as mailed" in forced.stdout
+
+
+def test_backtest_json_is_stable_and_has_its_keys(demo_dir):
+    args = ("backtest", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--holdout-quarters", 3, "--json")
+    first, second = run(*args), run(*args)
+    assert first.returncode == 0, first.stderr
+    assert first.stdout == second.stdout
+    data = json.loads(first.stdout)
+    assert data["holdout_quarters"] == 3
+    assert data["actual_repeat_purchases"] >= 0 and data["predicted_repeat_purchases"] > 0
+
+
+def test_score_writes_one_row_per_customer(demo_dir, tmp_path):
+    out = tmp_path / "scores.csv"
+    result = run("score", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--out", out)
+    assert result.returncode == 0, result.stderr
+    lines = out.read_text().splitlines()
+    assert lines[0] == "customer_id,x,t_x,n,silent_quarters,p_alive,p_buy,expected_purchases,dert,expected_order_value"
+    model = json.loads((demo_dir / "model.json").read_text())
+    assert len(lines) - 1 == model["customers"]
+
+
+def test_model_argument_errors_are_one_line(tmp_path, demo_dir):
+    bad = tmp_path / "bad.json"
+    bad.write_text("{}")
+    result = run("score", bad, demo_dir / "orders.csv", "--out", tmp_path / "s.csv")
+    assert result.returncode == 2
+    assert result.stderr.startswith("error: ") and "not a lapsewise model file" in result.stderr
+    assert "Traceback" not in result.stderr
+    assert not (tmp_path / "s.csv").exists()
