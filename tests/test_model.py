@@ -129,3 +129,14 @@ def test_return_curves_cover_each_present_band():
     curves = return_curves(model, panel, max_silent=6)
     assert set(curves["k"]) == set(range(7))
     assert (curves.groupby("band")["p_buy"].apply(lambda s: np.all(np.diff(s.to_numpy()) <= 1e-12))).all()
+
+
+def test_demo_truth_file_matches_the_generator():
+    # demo/truth.json documents the generator's defaults; they must not drift apart.
+    from pathlib import Path
+
+    from lapsewise.demo import Truth
+
+    recorded = json.loads((Path(__file__).parent.parent / "demo" / "truth.json").read_text())
+    for key, value in Truth().as_dict().items():
+        assert recorded[key] == value, key
