@@ -12,6 +12,8 @@ as a pandas Categorical so that large files stay small in memory.
 
 from __future__ import annotations
 
+import csv
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -87,8 +89,16 @@ def _read_parquet(path: Path) -> pd.DataFrame:
     frame = table.to_pandas()
     if len(frame) == 0:
         raise InputError(f"{path}: has columns but no rows; export it again with data")
-    frame.columns = [str(c).strip() for c in frame.columns]
+    _strip_column_names(path, frame)
     return frame
+
+
+def _strip_column_names(path: Path, frame: pd.DataFrame) -> None:
+    """Remove spaces around column names; two columns that then share a name are an error."""
+    frame.columns = [str(c).strip() for c in frame.columns]
+    repeated = frame.columns[frame.columns.duplicated()]
+    if len(repeated):
+        raise InputError(f"{path}: the column '{repeated[0][:40]}' appears more than once; rename or remove the copies")
 
 
 def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, int]]:
@@ -108,13 +118,17 @@ def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, in
     if b"\r\n" in head:
         repairs["Windows line endings read"] = 1
     try:
-        frame = pd.read_csv(
-            path,
-            dtype=str,
-            keep_default_na=False,
-            encoding="utf-8-sig",
-            skip_blank_lines=True,
-        )
+        with warnings.catch_warnings(record=True) as caught:
+            # pandas warns, and drops the surplus, when a row has more fields than the header.
+            warnings.simplefilter("always", pd.errors.ParserWarning)
+            frame = pd.read_csv(
+                path,
+                dtype=str,
+                keep_default_na=False,
+                encoding="utf-8-sig",
+                skip_blank_lines=True,
+                index_col=False,  # never take the first column as row labels when rows end in a comma
+            )
     except pd.errors.EmptyDataError:
         raise InputError(f"{path}: the file is empty; export it again with a header row and data") from None
     except pd.errors.ParserError as exc:
@@ -124,7 +138,11 @@ def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, in
         raise InputError(
             f"{path}: is not UTF-8 text (bad byte at position {exc.start}); save it as UTF-8 CSV or as Parquet"
         ) from None
-    frame.columns = [str(c).strip() for c in frame.columns]
+    if any(issubclass(w.category, pd.errors.ParserWarning) for w in caught):
+        surplus = _rows_with_surplus_fields(path, len(frame.columns))
+        if surplus:
+            repairs["rows ending in empty extra fields (trailing commas) read"] = surplus
+    _strip_column_names(path, frame)
     if len(frame.columns) == 1:
         header = frame.columns[0]
         for sep, label in ((";", "semicolon"), ("\t", "tab"), ("|", "pipe")):
@@ -135,6 +153,24 @@ def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, in
     if len(frame) == 0:
         raise InputError(f"{path}: has a header but no data rows; export it again with data")
     return frame, True, repairs
+
+
+def _rows_with_surplus_fields(path: Path, width: int) -> int:
+    """Count rows with more fields than the header's ``width``; a surplus field that is not blank is an error."""
+    surplus = 0
+    with open(path, newline="", encoding="utf-8-sig", errors="replace") as handle:
+        try:
+            for row_number, row in enumerate(csv.reader(handle), start=1):
+                if len(row) > width:
+                    surplus += 1
+                    if any(cell.strip() for cell in row[width:]):
+                        raise InputError(
+                            f"{path}, row {row_number}: {len(row)} fields but the header has {width}; "
+                            "check the delimiters and the quoting (quote amounts and text that contain commas)"
+                        )
+        except csv.Error as exc:
+            raise InputError(f"{path}: cannot be read as CSV ({exc}); check the quoting and the number of fields") from None
+    return surplus
 
 
 def _require_columns(name: str, frame: pd.DataFrame, wanted: dict[str, str]) -> None:
@@ -151,11 +187,11 @@ def _clean_ids(name: str, column: pd.Series, repairs: dict[str, int]) -> pd.Cate
     codes, uniques = pd.factorize(column, use_na_sentinel=True)
     text = pd.Index(uniques).astype(str)
     stripped = text.str.strip()
-    padded_uniques = np.asarray(stripped != text)
+    blank_uniques = np.asarray((stripped == "") | (stripped.str.lower().isin(["nan", "none", "null"])))
+    padded_uniques = np.asarray(stripped != text) & ~blank_uniques  # blank ids are counted as blank, not as padded
     if padded_uniques.any():
         padded_rows = int(np.isin(codes, np.flatnonzero(padded_uniques)).sum())
         repairs["ids with surrounding spaces trimmed"] = padded_rows
-    blank_uniques = np.asarray((stripped == "") | (stripped.str.lower().isin(["nan", "none", "null"])))
     clean_codes, clean_uniques = pd.factorize(stripped)
     row_codes = np.where(codes < 0, -1, clean_codes[np.maximum(codes, 0)])
     blank_codes = np.unique(clean_codes[blank_uniques]) if blank_uniques.any() else np.empty(0, dtype=np.int64)
@@ -177,6 +213,7 @@ def _parse_dates(name: str, column_name: str, column: pd.Series, is_csv: bool, k
         if missing.any():
             row = _row_label(np.flatnonzero(missing)[0], is_csv)
             raise InputError(f"{name}, row {row}, column {column_name}: the date is blank; fill it in or remove the row")
+        _check_date_range(name, column_name, values, keep, is_csv, np.asarray(values.astype(str)))
         return values.values.astype("datetime64[ns]")
     text = column.astype(str).str.strip().where(keep, "1970-01-01")
     parsed = pd.to_datetime(text, format="ISO8601", errors="coerce", utc=True)
@@ -190,7 +227,22 @@ def _parse_dates(name: str, column_name: str, column: pd.Series, is_csv: bool, k
         raise InputError(
             f"{name}, row {row}, column {column_name}: '{shown[:40]}' is not a date; write dates as YYYY-MM-DD"
         )
-    return parsed.dt.tz_convert(None).values.astype("datetime64[ns]")
+    values = pd.DatetimeIndex(parsed.dt.tz_convert(None))
+    _check_date_range(name, column_name, values, keep, is_csv, text.to_numpy())
+    return values.values.astype("datetime64[ns]")
+
+
+def _check_date_range(
+    name: str, column_name: str, values: pd.DatetimeIndex, keep: np.ndarray, is_csv: bool, shown: np.ndarray
+) -> None:
+    """Dates outside what datetime64[ns] holds (about 1678 to 2261) would wrap around silently; refuse them."""
+    outside = np.asarray((values < pd.Timestamp.min) | (values > pd.Timestamp.max)) & keep
+    if outside.any():
+        first = np.flatnonzero(outside)[0]
+        raise InputError(
+            f"{name}, row {_row_label(first, is_csv)}, column {column_name}: '{str(shown[first])[:40]}' "
+            f"is outside the years {pd.Timestamp.min.year + 1} to {pd.Timestamp.max.year - 1}; fix or remove the row"
+        )
 
 
 def _parse_amounts(name: str, column_name: str, column: pd.Series, is_csv: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -259,6 +311,9 @@ def load_orders(
         repairs["orders with a blank amount left out"] = int(dropped_blank.sum())
     keep &= ~blank_amount
     dates = _parse_dates(name, date_column, frame[date_column], is_csv, keep)
+    with_time = (dates != dates.astype("datetime64[D]")) & keep
+    if with_time.any():
+        repairs["order dates with a time of day (quarters use the date)"] = int(with_time.sum())
     returns = (amounts < 0) & keep
     if returns.any():
         repairs["return rows (negative amounts) netted into their quarter"] = int(returns.sum())
