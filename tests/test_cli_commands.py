@@ -85,3 +85,38 @@ def test_model_argument_errors_are_one_line(tmp_path, demo_dir):
     assert result.stderr.startswith("error: ") and "not a lapsewise model file" in result.stderr
     assert "Traceback" not in result.stderr
     assert not (tmp_path / "s.csv").exists()
+
+
+POLICY = __import__("pathlib").Path(__file__).parent.parent / "policies" / "full-catalog.toml"
+
+
+def test_stop_table_json_lists_every_state(demo_dir):
+    result = run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 8, "--json")
+    assert result.returncode == 0, result.stderr
+    data = json.loads(result.stdout)
+    # (0, 0) and every 1 <= x <= t_x <= 8, for each of the 3 spend bands.
+    assert len(data["rows"]) == 3 * (1 + 8 * 9 // 2)
+    row = data["rows"][0]
+    assert set(row) >= {"frequency", "last_purchase_quarter", "stop_after", "spend_band"}
+    assert data["economics"]["horizon_quarters"] == 8
+
+
+def test_stop_table_prints_optimal_beside_breakeven(demo_dir):
+    result = run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 8, "--order-value", 50)
+    assert result.returncode == 0, result.stderr
+    assert "Breakeven rule" in result.stdout and "Drop one-time buyers" in result.stdout
+
+
+def test_override_with_an_impossible_value_is_refused(demo_dir):
+    result = run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--gross-margin", 1.5)
+    assert result.returncode == 2 and "gross_margin" in result.stderr and "Traceback" not in result.stderr
+
+
+def test_simulate_json(demo_dir):
+    args = ("simulate", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 6, "--customers", 2000, "--seed", 4, "--json")
+    first, second = run(*args), run(*args)
+    assert first.returncode == 0, first.stderr
+    assert first.stdout == second.stdout
+    data = json.loads(first.stdout)
+    names = [p["policy"] for p in data["policies"]]
+    assert names[0] == "optimal" and "breakeven" in names and "always mail" in names and "drop after 12" in names

@@ -257,7 +257,7 @@ def _log_unmailed_factor(hist: Histories, rho: float | None) -> np.ndarray:
     """rho ** x_unmailed in logs (0 for customers with no unprompted purchase)."""
     if rho is None:
         return np.zeros(hist.size)
-    with np.errstate(divide="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore"):
         return np.where(hist.x_unmailed > 0, hist.x_unmailed * np.log(rho), 0.0)
 
 
@@ -440,7 +440,8 @@ class Posterior:
     mailed; ``log_likelihood`` the history's log-likelihood; ``log_buy_factor``
     the log of ``rho^x_u E_p[p^(x+1) (1-p)^a_n (1-rho p)^b_n] / L``, which times
     ``E[(1-theta)^(n+h)]`` (and times rho if unmailed) is the chance of a
-    purchase in quarter n + h.
+    purchase in quarter n + h. ``alive_now`` is the chance of being alive through
+    quarter n itself, the weight the stop-rule program starts from.
     """
 
     p_alive: np.ndarray
@@ -448,6 +449,7 @@ class Posterior:
     log_likelihood: np.ndarray
     log_buy_factor: np.ndarray
     n: np.ndarray
+    alive_now: np.ndarray
 
 
 def fit_params(fit: ChurnFit) -> tuple[float, float, float, float, float | None]:
@@ -459,8 +461,10 @@ def posterior(fit: ChurnFit, histories: Histories) -> Posterior:
     expansion = expand(histories)
     log_l, moments = _evaluate(expansion, fit_params(fit))
     unmailed = _log_unmailed_factor(histories, fit.rho)
-    next_survival = log_survival(fit.gamma, fit.delta, histories.n.astype(float) + 1)
+    n = histories.n.astype(float)
+    next_survival = log_survival(fit.gamma, fit.delta, n + 1)
     log_alive = next_survival + unmailed + moments[expansion.alive_triple] - log_l
+    log_alive_now = log_survival(fit.gamma, fit.delta, n) + unmailed + moments[expansion.alive_triple] - log_l
     log_buy_factor = unmailed + moments[expansion.next_triple] - log_l
     return Posterior(
         p_alive=np.exp(log_alive),
@@ -468,6 +472,7 @@ def posterior(fit: ChurnFit, histories: Histories) -> Posterior:
         log_likelihood=log_l,
         log_buy_factor=log_buy_factor,
         n=histories.n,
+        alive_now=np.exp(log_alive_now),
     )
 
 

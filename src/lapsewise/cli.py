@@ -163,6 +163,95 @@ def backtest(
     render.print_caution(console)
 
 
+PolicyOption = typer.Option(..., "--policy", help="Policy file (TOML); see policies/.")
+GrossMarginOption = typer.Option(None, "--gross-margin", help="Override [economics] gross_margin.")
+OrderCostOption = typer.Option(None, "--order-cost", help="Override [economics] order_cost.")
+PieceCostOption = typer.Option(None, "--piece-cost", help="Override [economics] piece_cost.")
+DiscountOption = typer.Option(None, "--annual-discount-rate", help="Override [economics] annual_discount_rate.")
+HorizonOption = typer.Option(None, "--horizon-quarters", help="Override [economics] horizon_quarters.")
+OrderValueOption = typer.Option(None, "--order-value", help="Override [economics] order_value (a fixed value per order).")
+UnmailedOption = typer.Option(None, "--unmailed-response", help="Override [economics] unmailed_response (rho).")
+
+
+def _policy(path: Path, gross_margin, order_cost, piece_cost, annual_discount_rate, horizon_quarters, order_value, unmailed_response):
+    from lapsewise.policy import load_policy
+
+    overrides = {
+        "gross_margin": gross_margin,
+        "order_cost": order_cost,
+        "piece_cost": piece_cost,
+        "annual_discount_rate": annual_discount_rate,
+        "horizon_quarters": horizon_quarters,
+        "order_value": order_value,
+        "unmailed_response": unmailed_response,
+    }
+    return load_policy(path, overrides)
+
+
+@app.command("stop-table")
+def stop_table(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    policy_file: Path = PolicyOption,
+    gross_margin: Optional[float] = GrossMarginOption,
+    order_cost: Optional[float] = OrderCostOption,
+    piece_cost: Optional[float] = PieceCostOption,
+    annual_discount_rate: Optional[float] = DiscountOption,
+    horizon_quarters: Optional[int] = HorizonOption,
+    order_value: Optional[float] = OrderValueOption,
+    unmailed_response: Optional[float] = UnmailedOption,
+    json_output: bool = JsonOption,
+) -> None:
+    """When to stop mailing a silent customer: the optimal stop point beside the breakeven rule's."""
+    from lapsewise.model import load_model
+    from lapsewise.policy import build_stop_table
+
+    model = load_model(model_file)
+    policy = _policy(policy_file, gross_margin, order_cost, piece_cost, annual_discount_rate, horizon_quarters, order_value, unmailed_response)
+    table = build_stop_table(model, policy.economics, policy.segments.spend_bands)
+    if json_output:
+        typer.echo(dumps_stable(render.stop_table_json(table, model)), nl=False)
+        return
+    console = _console()
+    if not model.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_stop_table(console, table, model)
+    render.print_caution(console)
+
+
+@app.command()
+def simulate(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    policy_file: Path = PolicyOption,
+    customers: int = typer.Option(10_000, "--customers", min=100, max=5_000_000, help="New customers to simulate."),
+    quarters: Optional[int] = typer.Option(None, "--quarters", min=1, max=200, help="Quarters to simulate (default: the horizon)."),
+    seed: int = typer.Option(1, "--seed", help="Seed of every random draw."),
+    gross_margin: Optional[float] = GrossMarginOption,
+    order_cost: Optional[float] = OrderCostOption,
+    piece_cost: Optional[float] = PieceCostOption,
+    annual_discount_rate: Optional[float] = DiscountOption,
+    horizon_quarters: Optional[int] = HorizonOption,
+    order_value: Optional[float] = OrderValueOption,
+    unmailed_response: Optional[float] = UnmailedOption,
+    json_output: bool = JsonOption,
+) -> None:
+    """Monte Carlo of the optimal policy against drop-after-k, breakeven and always-mail rules."""
+    from lapsewise.model import load_model
+    from lapsewise.policy import Beliefs, typical_order_value
+    from lapsewise.simulate import simulate_policies
+
+    model = load_model(model_file)
+    policy = _policy(policy_file, gross_margin, order_cost, piece_cost, annual_discount_rate, horizon_quarters, order_value, unmailed_response)
+    economics = policy.economics
+    beliefs = Beliefs.from_fit(model.churn, economics.unmailed_response)
+    result = simulate_policies(beliefs, economics, typical_order_value(model, economics), customers, quarters or economics.horizon_quarters, seed)
+    if json_output:
+        typer.echo(dumps_stable(result.to_dict()), nl=False)
+        return
+    console = _console()
+    render.print_simulation(console, result, economics)
+    render.print_caution(console)
+
+
 def main() -> None:
     """Entry point: run the app, turning input problems into one line and exit code 2."""
     try:

@@ -30,6 +30,8 @@ import numpy as np
 import pandas as pd
 
 SCENARIO_NAME = "Mail-Order Garden Seeds"
+# The demo's economics: the same as policies/full-catalog.toml (a test keeps them in step).
+DEMO_ECONOMICS = {"gross_margin": 0.45, "order_cost": 4.00, "piece_cost": 0.90, "annual_discount_rate": 0.10, "horizon_quarters": 40}
 
 
 @dataclass(frozen=True)
@@ -177,6 +179,8 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
     from lapsewise.model import fit_model, return_curves
     from lapsewise.output import dumps_stable, write_text_atomic
     from lapsewise.panel import panel_from_files
+    from lapsewise.policy import Beliefs, Economics, build_stop_table, typical_order_value
+    from lapsewise.simulate import simulate_policies
 
     data = simulate_base(customers, quarters, seed)
     paths = write_demo_files(folder, data, force)
@@ -199,4 +203,14 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
 
     console.rule("Backtest: the last 4 quarters held out")
     render.print_backtest(console, run_backtest(panel, 4))
+
+    console.rule("When to stop mailing: the stop table (policy: full catalog)")
+    economics = Economics(**DEMO_ECONOMICS)
+    table = build_stop_table(model, economics, band_count=3)
+    render.print_stop_table(console, table, model)
+
+    console.rule("The stop rule against rules of thumb: simulation")
+    beliefs = Beliefs.from_fit(model.churn, economics.unmailed_response)
+    simulation = simulate_policies(beliefs, economics, typical_order_value(model, economics), customers=10_000, quarters=economics.horizon_quarters, seed=seed)
+    render.print_simulation(console, simulation, economics)
     render.print_caution(console)

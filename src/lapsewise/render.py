@@ -5,8 +5,10 @@ Rendering reads results; it does not compute them.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
+from rich import box
 from rich.console import Console
 from rich.table import Table
 
@@ -17,6 +19,11 @@ CAUTION = (
     "and follow local direct-mail and data-protection law. The figures are estimates, not guarantees."
 )
 ALL_MAILED_NOTE = "No mailings file: every quarter after a customer's first order is counted as mailed."
+
+
+def compact_table() -> Table:
+    """A table without borders, for wide grids of numbers that must fit 80 columns."""
+    return Table(box=box.SIMPLE_HEAD, padding=(0, 0, 0, 1), show_edge=False, pad_edge=False)
 
 
 def money(value: float) -> str:
@@ -213,4 +220,137 @@ def print_truth_comparison(console: Console, model, truth) -> None:
     console.print(
         f"{inside} of {len(pairs)} true settings lie within two standard errors of the fit; about 95% should. "
         "Spend is fitted on net order values after the scenario's partial returns, so it sits a little below the truth."
+    )
+
+
+def _drop_text(stop_after: int, horizon: int) -> str:
+    return f"mailed all {horizon} q" if stop_after < 0 else f"after {stop_after}"
+
+
+def stop_table_rows_shown(table, horizon: int) -> list[tuple[int, int]]:
+    """The (x, t_x) rows printed: a spread of frequencies, each at the t_x a customer buying at the mean rate would have."""
+    mean_p = table.beliefs.alpha / (table.beliefs.alpha + table.beliefs.beta)
+    rows = []
+    for x in (0, 1, 2, 3, 4, 6, 8, 12, 16):
+        if x > horizon:
+            break
+        t_x = 0 if x == 0 else min(horizon, max(x, round(x / mean_p)))
+        rows.append((x, t_x))
+    return rows
+
+
+def _percent(value: float) -> str:
+    return "<1" if value < 0.005 else f"{100 * value:.0f}"
+
+
+def print_stop_table(console: Console, table, model) -> None:
+    economics = table.economics
+    horizon = economics.horizon_quarters
+    shown = stop_table_rows_shown(table, horizon)
+    columns = list(range(min(8, horizon) + 1))
+    console.print(
+        f"Piece cost {money(economics.piece_cost)}, gross margin {economics.gross_margin:.0%}, order cost {money(economics.order_cost)}, "
+        f"{economics.annual_discount_rate:.0%} a year, each decision looking {horizon} quarters ahead; "
+        f"a held customer orders at {table.beliefs.rho:.2f} times the mailed rate."
+    )
+    cells = table.cells.set_index(["spend_band", "frequency", "last_purchase_quarter", "silent_quarters"])
+    rows = table.rows.set_index(["spend_band", "frequency", "last_purchase_quarter"])
+    for band in table.bands:
+        margin = economics.margin(band.order_value)
+        console.print(
+            f"[bold]'{band.label}' spend[/bold] (order value {money(band.order_value)}, margin {money(margin)} per order): chance of an "
+            "order next quarter if mailed (%), by silent quarters since the last order; (brackets) = do not mail."
+        )
+        grid = compact_table()
+        grid.add_column("x, t_x", no_wrap=True)
+        for k in columns:
+            grid.add_column(str(k), justify="right")
+        for x, t_x in shown:
+            line = [f"{x}, {t_x}"]
+            for k in columns:
+                cell = cells.loc[(band.label, x, t_x, k)]
+                text = _percent(cell.p_buy)
+                line.append(text if cell["mail"] else f"[dim]({text})[/dim]")
+            grid.add_row(*line)
+        console.print(grid)
+        compare = Table(title=f"'{band.label}' spend: drop a silent customer after ... silent quarters", title_justify="left")
+        for column in ("x, t_x", "Optimal", "Breakeven rule", "Optimal minus breakeven"):
+            compare.add_column(column, justify="left" if column.startswith("x") else "right")
+        for x, t_x in shown:
+            row = rows.loc[(band.label, x, t_x)]
+            optimal, breakeven = int(row.stop_after), int(row.breakeven_stop_after)
+            extra = "-" if optimal < 0 or breakeven < 0 else f"{optimal - breakeven:+d}"
+            compare.add_row(f"{x}, {t_x}", _drop_text(optimal, horizon), _drop_text(breakeven, horizon), extra)
+        console.print(compare)
+        one_time = rows.loc[(band.label, 0, 0)]
+        console.print(
+            f"Drop one-time buyers in the '{band.label}' band {_drop_text(int(one_time.stop_after), horizon)} silent quarters; "
+            f"the breakeven rule would drop them {_drop_text(int(one_time.breakeven_stop_after), horizon)}."
+        )
+    console.print(
+        "x = repeat purchases, t_x = quarter of the last one. Breakeven rule (common practice): mail while P(order next quarter) x margin "
+        "covers the piece cost. The optimal rule also counts the future an order buys and, when held customers still order, "
+        "only the orders the piece adds."
+    )
+
+
+def stop_table_json(table, model) -> dict:
+    economics = table.economics
+    return {
+        "economics": dataclasses.asdict(economics),
+        "unmailed_response_used": table.beliefs.rho,
+        "mailing_history": model.mailing_history,
+        "spend_bands": [
+            {"label": b.label, "low": b.low, "high": None if math.isinf(b.high) else b.high, "order_value": b.order_value} for b in table.bands
+        ],
+        "rows": [
+            {
+                "spend_band": r.spend_band,
+                "order_value": float(r.order_value),
+                "frequency": int(r.frequency),
+                "last_purchase_quarter": int(r.last_purchase_quarter),
+                "stop_after": None if r.stop_after < 0 else int(r.stop_after),
+                "breakeven_stop_after": None if r.breakeven_stop_after < 0 else int(r.breakeven_stop_after),
+            }
+            for r in table.rows.itertuples()
+        ],
+    }
+
+
+def print_simulation(console: Console, result, economics) -> None:
+    console.print(
+        f"{result.customers:,} new customers over {result.quarters} quarters (seed {result.seed}), order value {money(result.order_value)}, "
+        f"margin {money(result.margin)} per order, piece cost {money(economics.piece_cost)}; every policy meets the same customers and random numbers."
+    )
+    console.print(
+        "Discounted profit per customer (currency units: mean, 5th, 50th and 95th percentile), pieces and orders per customer, "
+        "and the mean difference to the optimal policy with its standard error:"
+    )
+    table = compact_table()
+    for column in ("Policy", "Mean", "P5", "P50", "P95", "Pieces", "Orders", "vs opt.", "SE"):
+        table.add_column(column, justify="left" if column == "Policy" else "right", no_wrap=True)
+    for row in result.summary.itertuples():
+        table.add_row(
+            row.policy,
+            money(row.mean_profit),
+            money(row.profit_p5),
+            money(row.profit_p50),
+            money(row.profit_p95),
+            f"{row.pieces:.2f}",
+            f"{row.orders:.2f}",
+            "-" if row.policy == "optimal" else f"{row.difference_to_optimal:+.2f}",
+            "-" if row.policy == "optimal" else f"{row.difference_std_error:.2f}",
+        )
+    console.print(table)
+    optimal = result.summary.iloc[0]
+    others = result.summary.iloc[1:]
+    runner = others.loc[others["mean_profit"].idxmax()]
+    if result.program_value is not None:
+        console.print(
+            f"The program values a new customer at {money(result.program_value)}; the simulation gives {money(optimal.mean_profit)} "
+            f"± {money(1.96 * optimal.profit_std_error)} (95%)."
+        )
+    console.print(
+        f"The optimal policy earns {money(optimal.mean_profit)} per customer; the best rule of thumb, '{runner.policy}', earns "
+        f"{money(runner.mean_profit)} ({runner.difference_to_optimal:+.2f} ± {1.96 * runner.difference_std_error:.2f})."
     )

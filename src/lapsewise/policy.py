@@ -1,0 +1,670 @@
+"""The policy file and the belief-state dynamic program that decides when mailing a silent customer stops paying.
+
+The decision is made at the start of each quarter: mail (pay the piece cost) or
+hold. A customer who buys earns ``margin = gross_margin * order_value -
+order_cost``. A quarter ``i`` quarters ahead is discounted by ``d ** i`` with
+``d = (1 + annual_discount_rate) ** -0.25``; its cost and margin carry the same
+factor.
+
+The state is the exact posterior of the hidden-churn model given the history.
+Two facts make it small:
+
+* given that a customer is alive through quarter ``n``, the future depends only
+  on ``(n, x, b)``: churn ``theta ~ Beta(gamma, delta + n)`` and purchase
+  probability ``p`` with density proportional to
+  ``Beta(alpha, beta) * p^x (1-p)^a (1-rho p)^b`` where ``a = n - x - b`` mailed
+  and ``b`` unmailed silent quarters;
+* a customer who just bought is certainly alive, so after a purchase the
+  state is exactly ``(n, x, b)``. Between purchases the firm sees only
+  silence, so its decisions form a fixed sequence, and the belief is the
+  alive state weighted by ``P(alive)``.
+
+The program therefore solves, for every post-purchase state and every remaining
+horizon ``h``, the best plan for the coming silent stretch, ``W_h(n, x, b)``,
+with the value after a future purchase taken from the same table. A plan is
+"mail ``J`` quarters, then hold" (with ``rho = 0`` these are exactly the
+stopping rules). Each decision then looks ``horizon_quarters`` ahead from its
+own state (a rolling horizon): at a state with alive weight ``pi`` it compares
+the best plan that mails now with the best plan that holds now and mails
+later. Tests compare the program with a brute-force search over every
+mail/hold sequence on small horizons.
+
+References
+----------
+Bitran, G. R., & Mondschein, S. V. (1996). Mailing Decisions in the Catalog Sales
+Industry. Management Science, 42(9), 1364-1381.
+
+Simester, D. I., Sun, P., & Tsitsiklis, J. N. (2006). Dynamic Catalog Mailing
+Policies. Management Science, 52(5), 683-696.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from scipy import special
+
+from lapsewise.churn import ChurnFit, log_survival
+from lapsewise.errors import InputError
+
+# ---------------------------------------------------------------- the policy file
+
+ECONOMICS_KEYS = {
+    "gross_margin": "share of order value left after cost of goods (0 to 1)",
+    "order_cost": "pick, pack and payment cost per order",
+    "piece_cost": "print and postage per piece mailed",
+    "annual_discount_rate": "annual discount rate (0.10 = 10%)",
+    "horizon_quarters": "how many quarters ahead each decision looks",
+    "order_value": "optional: a fixed value per order instead of the spend model",
+    "unmailed_response": "optional: overrides the model's rho",
+}
+OPTIONAL_ECONOMICS = ("order_value", "unmailed_response")
+VERSION_KEYS = ("name", "piece_cost", "response", "setup_cost", "min_quantity")
+SEGMENT_KEYS = ("frequency_bands", "silent_bands", "spend_bands", "min_share", "max_share")
+MAX_HORIZON = 120
+
+
+@dataclass(frozen=True)
+class Economics:
+    """The money side of a mailing decision (see the policy file's ``[economics]`` section)."""
+
+    gross_margin: float
+    order_cost: float
+    piece_cost: float
+    annual_discount_rate: float
+    horizon_quarters: int
+    order_value: float | None = None
+    unmailed_response: float | None = None
+
+    @property
+    def discount(self) -> float:
+        """Quarterly discount factor ``(1 + annual_discount_rate) ** -0.25``."""
+        return (1.0 + self.annual_discount_rate) ** -0.25
+
+    def margin(self, order_value: float) -> float:
+        """Contribution of one order: ``gross_margin * order_value - order_cost``."""
+        return self.gross_margin * order_value - self.order_cost
+
+
+@dataclass(frozen=True)
+class Version:
+    """A version of the piece: its cost per piece, response relative to the full piece, setup cost and minimum run."""
+
+    name: str
+    piece_cost: float
+    response: float = 1.0
+    setup_cost: float = 0.0
+    min_quantity: int = 0
+
+
+@dataclass(frozen=True)
+class Segments:
+    """How customers are grouped for the budget plan."""
+
+    frequency_bands: tuple[int, ...] = (0, 1, 2, 4, 8)
+    silent_bands: tuple[int, ...] = (0, 1, 2, 4, 8)
+    spend_bands: int = 3
+    min_share: dict[str, float] = field(default_factory=dict)
+    max_share: dict[str, float] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Policy:
+    economics: Economics
+    versions: tuple[Version, ...]
+    segments: Segments
+    source: str = ""
+
+
+def _number(source: str, key: str, value, low: float | None = None, high: float | None = None, integer: bool = False) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise InputError(f"{source}: {key} = {value!r} is not a number; write a plain number such as 0.45")
+    if integer and int(value) != value:
+        raise InputError(f"{source}: {key} = {value!r} must be a whole number")
+    if low is not None and value < low:
+        raise InputError(f"{source}: {key} = {value!r} is below {low}; {key} cannot be negative" if low == 0 else f"{source}: {key} = {value!r} is below {low}")
+    if high is not None and value > high:
+        raise InputError(f"{source}: {key} = {value!r} is above {high}")
+    return int(value) if integer else float(value)
+
+
+def _economics(source: str, raw: dict) -> Economics:
+    unknown = [k for k in raw if k not in ECONOMICS_KEYS]
+    if unknown:
+        raise InputError(f"{source}: unknown key '{unknown[0]}' in [economics]; known keys: {', '.join(ECONOMICS_KEYS)}")
+    missing = [k for k in ECONOMICS_KEYS if k not in OPTIONAL_ECONOMICS and raw.get(k) is None]
+    if missing:
+        raise InputError(f"{source}: [economics] is missing '{missing[0]}' ({ECONOMICS_KEYS[missing[0]]}); add it or pass --{missing[0].replace('_', '-')}")
+    values = {
+        "gross_margin": _number(source, "gross_margin", raw["gross_margin"], 0.0, 1.0),
+        "order_cost": _number(source, "order_cost", raw["order_cost"], 0.0),
+        "piece_cost": _number(source, "piece_cost", raw["piece_cost"], 0.0),
+        "annual_discount_rate": _number(source, "annual_discount_rate", raw["annual_discount_rate"], 0.0, 10.0),
+        "horizon_quarters": _number(source, "horizon_quarters", raw["horizon_quarters"], 1, MAX_HORIZON, integer=True),
+    }
+    if raw.get("order_value") is not None:
+        values["order_value"] = _number(source, "order_value", raw["order_value"], 0.0)
+    if raw.get("unmailed_response") is not None:
+        values["unmailed_response"] = _number(source, "unmailed_response", raw["unmailed_response"], 0.0, 1.0)
+    return Economics(**values)
+
+
+def _versions(source: str, raw: list, economics: Economics) -> tuple[Version, ...]:
+    if not raw:
+        return (Version(name="standard", piece_cost=economics.piece_cost),)
+    versions = []
+    for position, entry in enumerate(raw, start=1):
+        where = f"[[versions]] number {position}"
+        if not isinstance(entry, dict):
+            raise InputError(f"{source}: {where} is not a table of keys")
+        unknown = [k for k in entry if k not in VERSION_KEYS]
+        if unknown:
+            raise InputError(f"{source}: unknown key '{unknown[0]}' in {where}; known keys: {', '.join(VERSION_KEYS)}")
+        for key in ("name", "piece_cost"):
+            if key not in entry:
+                raise InputError(f"{source}: {where} is missing '{key}'")
+        name = str(entry["name"]).strip()
+        if not name:
+            raise InputError(f"{source}: {where} has a blank name")
+        versions.append(
+            Version(
+                name=name,
+                piece_cost=_number(source, f"{name}.piece_cost", entry["piece_cost"], 0.0),
+                response=_number(source, f"{name}.response", entry.get("response", 1.0), 0.0, 1.0),
+                setup_cost=_number(source, f"{name}.setup_cost", entry.get("setup_cost", 0.0), 0.0),
+                min_quantity=_number(source, f"{name}.min_quantity", entry.get("min_quantity", 0), 0, integer=True),
+            )
+        )
+    names = [v.name for v in versions]
+    if len(set(names)) != len(names):
+        raise InputError(f"{source}: two [[versions]] share a name; give each version its own name")
+    return tuple(versions)
+
+
+def _bands(source: str, key: str, value) -> tuple[int, ...]:
+    if not isinstance(value, list) or not value or any(isinstance(v, bool) or not isinstance(v, int) or v < 0 for v in value):
+        raise InputError(f"{source}: [segments] {key} must be a list of whole numbers such as [0, 1, 2, 4, 8]")
+    if list(value) != sorted(set(value)) or value[0] != 0:
+        raise InputError(f"{source}: [segments] {key} must start at 0 and rise, such as [0, 1, 2, 4, 8]")
+    return tuple(value)
+
+
+def _segments(source: str, raw: dict) -> Segments:
+    unknown = [k for k in raw if k not in SEGMENT_KEYS]
+    if unknown:
+        raise InputError(f"{source}: unknown key '{unknown[0]}' in [segments]; known keys: {', '.join(SEGMENT_KEYS)}")
+    defaults = Segments()
+    shares = {}
+    for key in ("min_share", "max_share"):
+        table = raw.get(key, {})
+        if not isinstance(table, dict):
+            raise InputError(f"{source}: [segments] {key} must be a table of segment = share, such as {{ \"5+ repeat, 0 silent\" = 1.0 }}")
+        shares[key] = {str(k): _number(source, f"{key}.{k}", v, 0.0, 1.0) for k, v in table.items()}
+    return Segments(
+        frequency_bands=_bands(source, "frequency_bands", raw["frequency_bands"]) if "frequency_bands" in raw else defaults.frequency_bands,
+        silent_bands=_bands(source, "silent_bands", raw["silent_bands"]) if "silent_bands" in raw else defaults.silent_bands,
+        spend_bands=_number(source, "spend_bands", raw.get("spend_bands", defaults.spend_bands), 1, 10, integer=True),
+        min_share=shares["min_share"],
+        max_share=shares["max_share"],
+    )
+
+
+def load_policy(path: str | Path, overrides: dict | None = None) -> Policy:
+    """Read a policy file (TOML) and apply command-line overrides of ``[economics]`` keys.
+
+    Unknown keys, missing keys and impossible values are InputErrors naming the key.
+    """
+    path = Path(path)
+    source = str(path)
+    if not path.exists():
+        raise InputError(f"{source}: file not found; see policies/ for examples")
+    if path.is_dir():
+        raise InputError(f"{source}: is a folder, not a policy file")
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except UnicodeDecodeError:
+        raise InputError(f"{source}: is not UTF-8 text; save the policy file as UTF-8") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{source}: is not valid TOML ({exc}); see policies/ for examples") from None
+    unknown = [k for k in raw if k not in ("economics", "versions", "segments")]
+    if unknown:
+        raise InputError(f"{source}: unknown section or key '{unknown[0]}'; a policy file has [economics], [segments] and [[versions]]")
+    economics_raw = dict(raw.get("economics", {}))
+    if not isinstance(raw.get("economics", {}), dict):
+        raise InputError(f"{source}: economics must be a [economics] section")
+    for key, value in (overrides or {}).items():
+        if value is not None:
+            economics_raw[key] = value
+    economics = _economics(source, economics_raw)
+    versions = _versions(source, raw.get("versions", []), economics)
+    segments = _segments(source, raw.get("segments", {}))
+    return Policy(economics=economics, versions=versions, segments=segments, source=source)
+
+
+# ---------------------------------------------------------------- the belief-state program
+
+
+@dataclass(frozen=True)
+class Beliefs:
+    """The churn model's parameters as the program uses them (rho is the response when not mailed)."""
+
+    alpha: float
+    beta: float
+    gamma: float
+    delta: float
+    rho: float
+
+    @classmethod
+    def from_fit(cls, fit: ChurnFit, unmailed_response: float | None = None) -> "Beliefs":
+        """``unmailed_response`` overrides rho; without it and without a mailing history a held customer is assumed not to buy."""
+        rho = unmailed_response if unmailed_response is not None else (fit.rho if fit.rho is not None else 0.0)
+        return cls(fit.alpha, fit.beta, fit.gamma, fit.delta, float(rho))
+
+    def churn_fit(self) -> ChurnFit:
+        return ChurnFit(alpha=self.alpha, beta=self.beta, gamma=self.gamma, delta=self.delta, rho=self.rho)
+
+
+@dataclass(frozen=True)
+class Program:
+    """The solved post-purchase values on the state grid.
+
+    ``best[h][n, x, b]`` is the value, at the end of quarter ``n``, of a customer
+    who bought in quarter ``n`` with ``x`` repeat purchases and ``b`` unmailed silent
+    quarters behind them, when ``h`` quarters are left to decide; ``hold[h][n, x, b]``
+    the value of holding for all ``h`` quarters (for a customer alive through ``n``).
+    ``log_moment[n, x, b]`` is ``log E[p^x (1-p)^a (1-rho p)^b]`` with ``a = n - x - b``
+    (minus infinity off the grid).
+    """
+
+    beliefs: Beliefs
+    margin: float
+    piece_cost: float
+    discount: float
+    horizon: int
+    log_moment: np.ndarray
+    log_alive: np.ndarray
+    best: list[np.ndarray]
+    hold: list[np.ndarray]
+
+    @property
+    def rho(self) -> float:
+        return self.beliefs.rho
+
+
+def log_moment_grid(beliefs: Beliefs, n_max: int, b_max: int) -> np.ndarray:
+    """``log E[p^x (1-p)^a (1-rho p)^b]`` on the grid ``[n, x, b]`` with ``a = n - x - b``.
+
+    Built by the recursion ``M(x, a, b+1) = M(x, a+1, b) + (1 - rho) M(x+1, a, b)``
+    (from ``1 - rho p = (1 - p) + (1 - rho) p``), which has no cancellation, from
+    ``M(x, a, 0) = B(alpha + x, beta + a) / B(alpha, beta)``.
+    """
+    size = n_max + b_max + 2
+    x = np.arange(size)[:, None]
+    a = np.arange(size)[None, :]
+    layer = special.betaln(beliefs.alpha + x, beliefs.beta + a) - special.betaln(beliefs.alpha, beliefs.beta)
+    log_rest = math.log1p(-beliefs.rho) if beliefs.rho < 1 else -np.inf
+    grid = np.full((n_max + 1, n_max + 2, b_max + 1), -np.inf)
+    n = np.arange(n_max + 1)[:, None]
+    xs = np.arange(n_max + 2)[None, :]
+    for b in range(b_max + 1):
+        a_index = n - xs - b
+        valid = a_index >= 0
+        grid[:, :, b] = np.where(valid, layer[np.minimum(xs, size - 1), np.clip(a_index, 0, size - 1)], -np.inf)
+        if b < b_max:
+            layer = np.logaddexp(layer[:-1, 1:], log_rest + layer[1:, :-1])
+            layer = np.pad(layer, ((0, 1), (0, 1)), constant_values=-np.inf)
+    return grid
+
+
+def _ratios(log_moment: np.ndarray, log_alive: np.ndarray, i: int, shift_x: int, shift_b: int) -> np.ndarray:
+    """``P(alive through n + i | alive through n) * M(state i quarters on) / M(state now)`` on the whole grid.
+
+    The state i quarters on is ``(n + i, x + shift_x, b + shift_b)``; with
+    ``shift_x = 1`` (and b unchanged) this is the chance that i mailed quarters end in
+    a first purchase in the i-th; with both shifts 0 the chance of being alive and
+    silent after i mailed quarters; with ``shift_b = 1`` and i = 1 the chance of being
+    alive and silent after one held quarter (before rho is applied to purchases).
+    """
+    rows, columns, depth = log_moment.shape
+    here = log_moment[: rows - i, : columns - shift_x, : depth - shift_b]
+    there = log_moment[i:, shift_x:, shift_b:]
+    with np.errstate(invalid="ignore"):
+        ratio = np.exp(log_alive[: rows - i, i, None, None] + there - here)
+    ratio = np.where(np.isfinite(here), ratio, 0.0)
+    out = np.zeros_like(log_moment)
+    out[: rows - i, : columns - shift_x, : depth - shift_b] = ratio
+    return out
+
+
+def solve(
+    beliefs: Beliefs,
+    margin: float,
+    piece_cost: float,
+    discount: float,
+    horizon: int,
+    n_max: int,
+    b_max: int,
+    n_min: int = 0,
+    x_max: int | None = None,
+) -> Program:
+    """Solve the post-purchase values ``best[h]`` and hold-only values ``hold[h]`` for h = 0..horizon-1.
+
+    ``n_min``, ``n_max``, ``x_max`` and ``b_max`` bound the states the caller will
+    decide at; the grid reaches ``horizon`` quarters beyond them. With h quarters
+    left only the states that can be reached with h left are computed: n from
+    ``n_min + horizon - h`` to ``n_max + horizon - h``, x up to ``x_max + horizon - h``
+    and b up to ``b_max + horizon - h``. The work is a loop
+    over (h, i) pairs, each a few numpy operations over that part of the grid.
+    """
+    rho = beliefs.rho
+    # Held quarters add to b; with rho = 0 nothing is learnt from them but n still grows.
+    b_grid = b_max + 1 + (horizon if rho > 0 else 0)
+    n_grid = n_max + horizon + 1
+    log_moment = log_moment_grid(beliefs, n_grid + 1, b_grid + 1)
+    steps = np.arange(horizon + 2)
+    ns = np.arange(log_moment.shape[0])
+    # log P(alive through n + i | alive through n) = log B(gamma, delta + n + i) - log B(gamma, delta + n)
+    log_alive = special.betaln(beliefs.gamma, beliefs.delta + ns[:, None] + steps[None, :]) - special.betaln(beliefs.gamma, beliefs.delta + ns[:, None])
+    purchase_after = [None] + [_ratios(log_moment, log_alive, i, 1, 0) for i in range(1, horizon + 1)]
+    silent_after = [None] + [_ratios(log_moment, log_alive, i, 0, 0) for i in range(1, horizon + 1)] if rho > 0 else []
+    if rho > 0:
+        held_buy = rho * _ratios(log_moment, log_alive, 1, 1, 0)
+        held_silent = _ratios(log_moment, log_alive, 1, 0, 1)
+    shape = log_moment.shape
+    best = [np.zeros(shape)]
+    hold = [np.zeros(shape)]
+    for h in range(1, horizon):
+        low, top = max(n_min + horizon - h - 1, 0), n_max + horizon - h  # the n reachable with h quarters left
+        wide = min(top + 1, (n_max if x_max is None else x_max) + horizon - h + 1)
+        deep = min(b_max + horizon - h + 1, shape[2] - 2) if rho > 0 else shape[2] - 2
+
+        def at(table: np.ndarray, i: int = 0, shift_x: int = 0, shift_b: int = 0) -> np.ndarray:
+            return table[low + i : top + 1 + i, shift_x : wide + 1 + shift_x, shift_b : deep + 1 + shift_b]
+
+        held = np.zeros(shape)
+        if rho > 0:
+            # Hold for all h quarters: an unprompted purchase, or silence that adds one to b.
+            at(held)[...] = discount * (at(held_buy) * (margin + at(best[h - 1], 1, 1)) + at(held_silent) * at(hold[h - 1], 1, 0, 1))
+        hold.append(held)
+        # Mail J quarters, then hold: accumulate the plan values along the mailed silent stretch.
+        chosen = at(held).copy()
+        plan = np.zeros_like(chosen)
+        no_purchase_yet = np.ones_like(chosen)
+        step = np.empty_like(chosen)
+        spare = np.empty_like(chosen)
+        for i in range(1, h + 1):
+            first_purchase = at(purchase_after[i])
+            np.add(at(best[h - i], i, 1), margin, out=step)
+            step *= first_purchase
+            np.multiply(no_purchase_yet, piece_cost, out=spare)
+            step -= spare
+            step *= discount**i
+            plan += step
+            no_purchase_yet -= first_purchase
+            if rho > 0 and i < h:
+                np.multiply(at(silent_after[i]), at(hold[h - i], i), out=spare)
+                spare *= discount**i
+                spare += plan
+                np.maximum(chosen, spare, out=chosen)
+            else:
+                np.maximum(chosen, plan, out=chosen)
+        values = np.zeros(shape)
+        at(values)[...] = np.where(np.isfinite(at(log_moment)), chosen, 0.0)
+        best.append(values)
+    return Program(beliefs, margin, piece_cost, discount, horizon, log_moment, log_alive, best, hold)
+
+
+@dataclass(frozen=True)
+class Decisions:
+    """Values of the choices at given states (arrays over states, money in currency units).
+
+    ``mail_value`` is the best plan that mails now, ``hold_value`` the best that
+    holds now; ``mail`` is True where mailing is at least as good; ``value_of_mailing``
+    is their difference; ``mail_quarters`` the number of quarters the best plan mails.
+    """
+
+    mail_value: np.ndarray
+    hold_value: np.ndarray
+    mail_quarters: np.ndarray
+
+    @property
+    def mail(self) -> np.ndarray:
+        return self.mail_value >= self.hold_value
+
+    @property
+    def value_of_mailing(self) -> np.ndarray:
+        return self.mail_value - self.hold_value
+
+    @property
+    def value(self) -> np.ndarray:
+        return np.maximum(self.mail_value, self.hold_value)
+
+
+def _plan_values(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, alive: np.ndarray, total: np.ndarray, horizon: int):
+    """Values of "mail J quarters, then hold" for J = 0..horizon from states with given alive and total weights.
+
+    ``alive`` is the chance of being alive through quarter n and ``total`` the
+    chance of the path so far (so costs are paid on ``total`` minus the purchases,
+    rewards earned on ``alive``). Returns an array (states, horizon + 1).
+    """
+    d, margin, cost = program.discount, program.margin, program.piece_cost
+    here = program.log_moment[n, x, b]
+    values = np.empty((len(n), horizon + 1))
+    values[:, 0] = alive * (program.hold[horizon][n, x, b] if horizon < len(program.hold) else _hold_value(program, n, x, b, horizon))
+    plan = np.zeros(len(n))
+    no_purchase_yet = total.copy()
+    for i in range(1, horizon + 1):
+        first_purchase = alive * np.exp(program.log_alive[n, i] + program.log_moment[n + i, x + 1, b] - here)
+        after = program.best[horizon - i][n + i, x + 1, b] if horizon - i < len(program.best) else 0.0
+        plan += d**i * (first_purchase * (margin + after) - cost * no_purchase_yet)
+        no_purchase_yet = no_purchase_yet - first_purchase
+        if i < horizon:
+            silent_alive = alive * np.exp(program.log_alive[n, i] + program.log_moment[n + i, x, b] - here)
+            values[:, i] = plan + d**i * silent_alive * program.hold[horizon - i][n + i, x, b]
+        else:
+            values[:, i] = plan
+    return values
+
+
+def _hold_value(program: Program, n, x, b, horizon):
+    """Value of holding for ``horizon`` quarters for a customer alive through n (one more step than the tables hold)."""
+    if program.rho == 0:
+        return np.zeros(len(n))
+    d, rho = program.discount, program.rho
+    here = program.log_moment[n, x, b]
+    buy = rho * np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x + 1, b] - here)
+    silent = np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x, b + 1] - here)
+    return d * (buy * (program.margin + program.best[horizon - 1][n + 1, x + 1, b]) + silent * program.hold[horizon - 1][n + 1, x, b + 1])
+
+
+def decide(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, alive: np.ndarray) -> Decisions:
+    """Mail or hold, looking ``program.horizon`` quarters ahead, for silent customers in states (n, x, b).
+
+    ``alive`` is the posterior chance of being alive through quarter n. Mailing now
+    is compared with the best plan that holds this quarter and then mails J quarters.
+    """
+    n, x, b = (np.asarray(v, dtype=np.int64) for v in (n, x, b))
+    alive = np.asarray(alive, dtype=float)
+    horizon = program.horizon
+    b_state = b
+    mail_plans = _plan_values(program, n, x, b_state, alive, np.ones_like(alive), horizon)
+    mail_value = mail_plans[:, 1:].max(axis=1)
+    mail_quarters = 1 + mail_plans[:, 1:].argmax(axis=1)
+    if horizon == 1:
+        hold_value = alive * _hold_value(program, n, x, b_state, 1)
+        return Decisions(mail_value, hold_value, mail_quarters)
+    # Hold this quarter: an unprompted purchase (rho p) or silence, then the best "mail J, then hold".
+    d, rho = program.discount, program.rho
+    here = program.log_moment[n, x, b_state]
+    if rho > 0:
+        buy = alive * rho * np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x + 1, b_state] - here)
+        silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x, b_state + 1] - here)
+        later = _plan_values(program, n + 1, x, b_state + 1, silent_alive, 1.0 - buy, horizon - 1).max(axis=1)
+        hold_value = d * buy * (program.margin + program.best[horizon - 1][n + 1, x + 1, b_state]) + d * later
+    else:
+        silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x, b_state + 1] - here)
+        later = _plan_values(program, n + 1, x, b_state + 1, silent_alive, np.ones_like(alive), horizon - 1).max(axis=1)
+        hold_value = d * later
+    return Decisions(mail_value, hold_value, mail_quarters)
+
+
+def decide_at(program: Program, n, x, b, alive, horizon: int) -> Decisions:
+    """``decide`` with a shorter horizon than the program was solved for (the finite-horizon policy's last quarters)."""
+    if horizon == program.horizon:
+        return decide(program, n, x, b, alive)
+    return decide(dataclasses.replace(program, horizon=horizon), n, x, b, alive)
+
+
+# ---------------------------------------------------------------- order values and spend bands
+
+
+@dataclass(frozen=True)
+class SpendBand:
+    """A band of expected order values (currency units) and the value the program uses for it."""
+
+    label: str
+    low: float
+    high: float
+    order_value: float
+
+
+def spend_bands(model, economics: Economics, count: int) -> tuple[SpendBand, ...]:
+    """The order values the program is solved for.
+
+    With ``order_value`` in the policy there is one band at that value. Otherwise
+    the fitted gamma-gamma population of mean order values is cut into ``count``
+    bands of equal share, each represented by its median (its share's midpoint
+    quantile). A customer is put in the band of their own expected order value.
+    """
+    from scipy import stats
+
+    if economics.order_value is not None:
+        return (SpendBand("all", 0.0, math.inf, economics.order_value),)
+    spend = getattr(model, "spend", None)
+    if spend is None or not (spend.q > 1):
+        raise InputError("the model has no usable order-value model; set order_value in the policy's [economics] or pass --order-value")
+    # Mean order value = p / nu with nu ~ Gamma(q, rate gamma): its u-quantile is p / (the (1-u)-quantile of nu).
+    def quantile(u: float) -> float:
+        if u <= 0:
+            return 0.0
+        if u >= 1:
+            return math.inf
+        return spend.p / stats.gamma.ppf(1.0 - u, spend.q, scale=1.0 / spend.gamma)
+
+    bands = []
+    names = {1: ["all"], 2: ["lower", "upper"], 3: ["low", "middle", "high"]}.get(count, [f"band {i + 1}" for i in range(count)])
+    for i in range(count):
+        low, high = quantile(i / count), quantile((i + 1) / count)
+        middle = quantile((i + 0.5) / count)
+        bands.append(SpendBand(names[i], low, high, middle))
+    return tuple(bands)
+
+
+def typical_order_value(model, economics: Economics) -> float:
+    """The policy's fixed order value, or the spend model's population mean."""
+    if economics.order_value is not None:
+        return economics.order_value
+    spend = getattr(model, "spend", None)
+    if spend is None or not (spend.q > 1):
+        raise InputError("the model has no usable order-value model; set order_value in the policy's [economics] or pass --order-value")
+    return float(spend.population_mean)
+
+
+def band_index(bands: tuple[SpendBand, ...], order_values: np.ndarray) -> np.ndarray:
+    """Which band each expected order value falls in."""
+    edges = np.array([band.low for band in bands[1:]])
+    return np.searchsorted(edges, np.nan_to_num(order_values, nan=bands[0].order_value), side="right")
+
+
+# ---------------------------------------------------------------- the stop table
+
+
+@dataclass(frozen=True)
+class StopTable:
+    """When to stop mailing, for every (x, t_x) with t_x up to the horizon, per spend band.
+
+    ``rows`` is a DataFrame with columns spend_band, order_value, frequency (x),
+    last_purchase_quarter (t_x), stop_after (silent quarters at which the customer is
+    first not mailed; -1 when mailed throughout), breakeven_stop_after (the same for the
+    one-period breakeven rule), and ``cells`` a DataFrame with spend_band, frequency,
+    last_purchase_quarter, silent_quarters, p_buy, mail, value_of_mailing for every
+    state up to ``horizon`` silent quarters.
+    """
+
+    economics: Economics
+    beliefs: Beliefs
+    bands: tuple[SpendBand, ...]
+    rows: "object"
+    cells: "object"
+
+
+def all_states(horizon: int) -> tuple[np.ndarray, np.ndarray]:
+    """Every (x, t_x) with t_x up to the horizon: (0, 0) and 1 <= x <= t_x <= horizon."""
+    pairs = [(0, 0)] + [(x, t) for t in range(1, horizon + 1) for x in range(1, t + 1)]
+    pairs.sort()
+    x, t = np.array(pairs).T
+    return x, t
+
+
+def build_stop_table(model, economics: Economics, band_count: int = 3) -> StopTable:
+    """Solve the program for each spend band and read off the stop point of every (x, t_x)."""
+    import pandas as pd
+
+    from lapsewise.churn import mailed_silent_histories, posterior
+
+    beliefs = Beliefs.from_fit(model.churn, economics.unmailed_response)
+    horizon = economics.horizon_quarters
+    bands = spend_bands(model, economics, band_count)
+    x_rows, t_rows = all_states(horizon)
+    silent = np.arange(horizon + 1)
+    x = np.repeat(x_rows, len(silent))
+    t_x = np.repeat(t_rows, len(silent))
+    k = np.tile(silent, len(x_rows))
+    histories = mailed_silent_histories(x, t_x, k)
+    post = posterior(beliefs.churn_fit(), histories)
+    alive, p_buy = post.alive_now[histories.inverse], post.p_buy[histories.inverse]
+    row_frames, cell_frames = [], []
+    for band in bands:
+        margin = economics.margin(band.order_value)
+        program = solve(beliefs, margin, economics.piece_cost, economics.discount, horizon, n_max=2 * horizon, b_max=0, n_min=0, x_max=horizon)
+        decisions = decide(program, t_x + k, x, np.zeros_like(x), alive)
+        mail = decisions.mail.reshape(len(x_rows), len(silent))
+        breakeven = (p_buy * margin >= economics.piece_cost).reshape(len(x_rows), len(silent))
+        row_frames.append(
+            pd.DataFrame(
+                {
+                    "spend_band": band.label,
+                    "order_value": band.order_value,
+                    "frequency": x_rows,
+                    "last_purchase_quarter": t_rows,
+                    "stop_after": _first_false(mail),
+                    "breakeven_stop_after": _first_false(breakeven),
+                }
+            )
+        )
+        cell_frames.append(
+            pd.DataFrame(
+                {
+                    "spend_band": band.label,
+                    "frequency": x,
+                    "last_purchase_quarter": t_x,
+                    "silent_quarters": k,
+                    "p_alive": alive,
+                    "p_buy": p_buy,
+                    "mail": decisions.mail,
+                    "value_of_mailing": decisions.value_of_mailing,
+                }
+            )
+        )
+    return StopTable(economics, beliefs, bands, pd.concat(row_frames, ignore_index=True), pd.concat(cell_frames, ignore_index=True))
+
+
+def _first_false(flags: np.ndarray) -> np.ndarray:
+    """Per row, the index of the first False (-1 when every entry is True)."""
+    stopped = ~flags
+    return np.where(stopped.any(axis=1), stopped.argmax(axis=1), -1)
