@@ -120,3 +120,67 @@ def test_simulate_json(demo_dir):
     data = json.loads(first.stdout)
     names = [p["policy"] for p in data["policies"]]
     assert names[0] == "optimal" and "breakeven" in names and "always mail" in names and "drop after 12" in names
+
+
+SEASON = POLICY.parent / "high-cost-season.toml"
+
+
+def test_plan_json_has_its_keys_and_is_stable(demo_dir):
+    args = ("plan", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--policy", POLICY, "--budget", 400, "--horizon-quarters", 8, "--json")
+    first, second = run(*args), run(*args)
+    assert first.returncode == 0, first.stderr
+    assert first.stdout == second.stdout
+    data = json.loads(first.stdout)
+    for key in ("budget", "spent", "expected_profit", "shadow_price", "segments"):
+        assert key in data
+    assert data["spent"] <= 400
+    segment = data["segments"][0]
+    assert set(segment) == {"segment", "version", "customers", "mailed", "cost", "expected_orders", "expected_profit"}
+    assert sum(s["customers"] for s in data["segments"]) == json.loads((demo_dir / "model.json").read_text())["customers"]
+
+
+def test_plan_with_versions_and_frontier(demo_dir):
+    result = run("plan", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--policy", SEASON, "--budget", 2500, "--horizon-quarters", 8, "--frontier")
+    assert result.returncode == 0, result.stderr
+    assert "shadow price" in result.stdout and "Budget against expected value" in result.stdout
+
+
+def test_infeasible_plan_names_the_rule(demo_dir):
+    result = run("plan", demo_dir / "model.json", demo_dir / "orders.csv", "--policy", SEASON, "--budget", 5, "--horizon-quarters", 8)
+    assert result.returncode == 2
+    assert "min_share" in result.stderr and "Traceback" not in result.stderr
+
+
+def test_mail_list_writes_the_columns_in_order_and_honours_suppression(demo_dir, tmp_path):
+    suppress = tmp_path / "suppress.csv"
+    orders = (demo_dir / "orders.csv").read_text().splitlines()
+    suppressed_ids = sorted({line.split(",")[0] for line in orders[1:40]})
+    suppress.write_text("customer_id\n" + "\n".join(suppressed_ids) + "\n")
+    out = tmp_path / "list.csv"
+    result = run("mail-list", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--policy", POLICY, "--horizon-quarters", 8, "--suppress", suppress, "--out", out)
+    assert result.returncode == 0, result.stderr
+    import pandas as pd
+
+    rows = pd.read_csv(out)
+    assert list(rows.columns) == ["customer_id", "segment", "version", "p_alive", "p_buy", "value_of_mailing", "decision"]
+    assert set(rows.loc[rows.customer_id.isin(suppressed_ids), "decision"]) == {"suppressed"}
+    # No budget: everyone worth mailing and not suppressed is mailed.
+    assert (rows.loc[(rows.value_of_mailing > 0) & (rows.decision != "suppressed"), "decision"] == "mail").all()
+    again = run("mail-list", demo_dir / "model.json", demo_dir / "orders.csv", "--policy", POLICY, "--out", out)
+    assert again.returncode == 2 and "already exists" in again.stderr
+
+
+def test_mail_list_segments_can_be_crossed_with_an_attribute(demo_dir, tmp_path):
+    import pandas as pd
+
+    ids = pd.read_csv(demo_dir / "orders.csv").customer_id.unique()
+    attributes = tmp_path / "attributes.csv"
+    pd.DataFrame({"customer_id": ids, "region": ["=north" if i % 2 else "south" for i in range(len(ids))]}).to_csv(attributes, index=False)
+    out = tmp_path / "list.csv"
+    result = run("mail-list", demo_dir / "model.json", demo_dir / "orders.csv", "--policy", POLICY, "--horizon-quarters", 6, "--attributes", attributes, "--segment-column", "region", "--budget", 300, "--out", out)
+    assert result.returncode == 0, result.stderr
+    rows = pd.read_csv(out, keep_default_na=False)
+    assert rows.segment.str.endswith(", south").any()
+    # A formula-like attribute is neutralised in the written file (OWASP CSV-injection guidance).
+    assert rows.segment.str.startswith("'").any() or rows.segment.str.contains(", =north").any()
+    assert not rows.segment.str.startswith("=").any()

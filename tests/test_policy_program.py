@@ -67,3 +67,82 @@ def test_program_matches_brute_force_over_every_mail_hold_sequence(rho, history,
     mail, hold = brute_force(beliefs, list(purchased), list(mailed), horizon, margin, cost)
     assert_allclose(decision.mail_value[0], mail, rtol=1e-9, atol=1e-9)
     assert_allclose(decision.hold_value[0], hold, rtol=1e-9, atol=1e-9)
+
+
+def brute_force_version(beliefs, purchased, mailed, horizon, margin, cost, response, version_cost):
+    """Mail a version (response x p, its own piece cost) now, then act optimally with the full piece: by full enumeration."""
+    _, _, _, _, p_buy = belief_of(beliefs, purchased, mailed)
+    chance = p_buy * response
+
+    def value(purchased, mailed, left):
+        if left == 0:
+            return 0.0
+        return max(brute_force(beliefs, purchased, mailed, left, margin, cost))
+
+    # The explicit history after silence records the quarter as mailed with response < 1: the tree
+    # below recomputes beliefs by weighting the two ways silence can arise (a mailed quarter with
+    # response r is, for the likelihood, (1 - r p) = lam (1 - p) + (1 - lam)(1 - rho p)).
+    lam = (response - beliefs.rho) / (1 - beliefs.rho)
+    silent_mailed = belief_weight(beliefs, purchased + [0], mailed + [1])
+    silent_held = belief_weight(beliefs, purchased + [0], mailed + [0])
+    weight_mailed = lam * silent_mailed / (lam * silent_mailed + (1 - lam) * silent_held)
+    after_silence = weighted_value(beliefs, purchased, mailed, horizon - 1, margin, cost, weight_mailed)
+    buy = value(purchased + [1], mailed + [1], horizon - 1)
+    return DISCOUNT * (chance * margin - version_cost) + DISCOUNT * (chance * buy + (1 - chance) * after_silence)
+
+
+def belief_weight(beliefs, purchased, mailed):
+    """The likelihood of an explicit history (for mixing two beliefs)."""
+    from lapsewise.churn import expand, history_log_likelihood
+
+    p = np.array([purchased], dtype=np.uint8)
+    m = np.array([mailed], dtype=np.uint8)
+    hist = compress_arrays(history_arrays(p, m, np.array([len(purchased) - 1])))
+    fit = beliefs.churn_fit()
+    return float(np.exp(history_log_likelihood(expand(hist), (fit.alpha, fit.beta, fit.gamma, fit.delta, fit.rho))[0]))
+
+
+def weighted_value(beliefs, purchased, mailed, left, margin, cost, weight_mailed):
+    """Best value from a belief that mixes 'last quarter mailed and silent' and 'last quarter held and silent'.
+
+    Enumerates every mail/hold sequence of the remaining quarters as a tree on both
+    component histories at once: a policy sees only the shared observable outcomes.
+    """
+    if left == 0:
+        return 0.0
+    histories = [(purchased + [0], mailed + [1]), (purchased + [0], mailed + [0])]
+    weights = [weight_mailed, 1 - weight_mailed]
+
+    def best(paths, weights, left):
+        if left == 0:
+            return 0.0
+        options = []
+        for mail in (1, 0):
+            chances = [belief_of(beliefs, p, m)[4] * (1.0 if mail else beliefs.rho) for p, m in paths]
+            chance = sum(w * c for w, c in zip(weights, chances))
+            total = DISCOUNT * (chance * margin - cost * mail)
+            if chance > 0:
+                buy_weights = [w * c / chance for w, c in zip(weights, chances)]
+                total += DISCOUNT * chance * best([(p + [1], m + [mail]) for p, m in paths], buy_weights, left - 1)
+            if chance < 1:
+                silent_weights = [w * (1 - c) / (1 - chance) for w, c in zip(weights, chances)]
+                total += DISCOUNT * (1 - chance) * best([(p + [0], m + [mail]) for p, m in paths], silent_weights, left - 1)
+            options.append(total)
+        return max(options)
+
+    return best(histories, weights, left)
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.35])
+@pytest.mark.parametrize("response, version_cost", [(0.6, 0.4), (0.85, 0.7)])
+def test_value_of_a_version_matches_brute_force(rho, response, version_cost):
+    from lapsewise.policy import mail_value_with
+
+    beliefs = Beliefs(alpha=1.1, beta=2.4, gamma=0.7, delta=4.5, rho=rho)
+    purchased, mailed = [1, 0, 1, 0, 0], [0, 1, 1, 1, 1]
+    horizon, margin, cost = 4, 18.0, 0.9
+    n, x, b, alive, _ = belief_of(beliefs, purchased, mailed)
+    program = solve(beliefs, margin, cost, DISCOUNT, horizon, n_max=n, b_max=b)
+    ours = mail_value_with(program, np.array([n]), np.array([x]), np.array([b]), np.array([alive]), response, version_cost)[0]
+    expected = brute_force_version(beliefs, purchased, mailed, horizon, margin, cost, response, version_cost)
+    assert_allclose(ours, expected, rtol=1e-9, atol=1e-9)

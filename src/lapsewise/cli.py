@@ -6,6 +6,7 @@ import sys
 from pathlib import Path
 from typing import Optional
 
+import numpy as np
 import typer
 from rich.console import Console
 
@@ -249,6 +250,122 @@ def simulate(
         return
     console = _console()
     render.print_simulation(console, result, economics)
+    render.print_caution(console)
+
+
+SuppressOption = typer.Option(None, "--suppress", help="Suppression list (customer_id column): never mailed.")
+AttributesOption = typer.Option(None, "--attributes", help="Customer attributes file to cross segments with (needs --segment-column).")
+SegmentColumnOption = typer.Option(None, "--segment-column", help="Column of the attributes file to cross segments with.")
+
+
+def _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides):
+    """Load everything a plan needs and compute every customer's value of mailing (the stages, in order)."""
+    from lapsewise.errors import InputError
+    from lapsewise.load import load_attributes, load_id_list
+    from lapsewise.model import load_model
+    from lapsewise.plan import customer_values
+
+    model = load_model(model_file)
+    policy = _policy(policy_file, **overrides)
+    panel = _panel(orders, mailings, as_of, model.fiscal_year_start, id_column, date_column, amount_column)
+    suppressed = None
+    if suppress:
+        ids = load_id_list(suppress, id_column).frame["customer_id"].to_numpy()
+        suppressed = np.isin(panel.customer_ids, ids)
+    attribute = None
+    if attributes or segment_column:
+        if not (attributes and segment_column):
+            raise InputError("--attributes and --segment-column go together; give both or neither")
+        table = load_attributes(attributes, segment_column, id_column).frame.set_index("customer_id")[segment_column]
+        attribute = table.reindex(panel.customer_ids).fillna("unknown").to_numpy(dtype=object)
+    values = customer_values(model, panel, policy, suppressed, attribute)
+    return model, policy, panel, values
+
+
+@app.command()
+def plan(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    orders: Path = OrdersArgument,
+    policy_file: Path = PolicyOption,
+    budget: float = typer.Option(..., "--budget", min=0.0, help="Mail budget for this quarter, currency units (pieces and setup)."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = AsOfOption,
+    suppress: Optional[Path] = SuppressOption,
+    attributes: Optional[Path] = AttributesOption,
+    segment_column: Optional[str] = SegmentColumnOption,
+    frontier: bool = typer.Option(False, "--frontier", help="Also show expected value over a range of budgets."),
+    gross_margin: Optional[float] = GrossMarginOption,
+    order_cost: Optional[float] = OrderCostOption,
+    piece_cost: Optional[float] = PieceCostOption,
+    annual_discount_rate: Optional[float] = DiscountOption,
+    horizon_quarters: Optional[int] = HorizonOption,
+    order_value: Optional[float] = OrderValueOption,
+    unmailed_response: Optional[float] = UnmailedOption,
+    id_column: str = IdOption,
+    date_column: str = DateOption,
+    amount_column: str = AmountOption,
+    json_output: bool = JsonOption,
+) -> None:
+    """Spread a fixed mail budget across segments and versions (an integer program)."""
+    from lapsewise.plan import make_plan
+
+    overrides = dict(
+        gross_margin=gross_margin, order_cost=order_cost, piece_cost=piece_cost, annual_discount_rate=annual_discount_rate,
+        horizon_quarters=horizon_quarters, order_value=order_value, unmailed_response=unmailed_response,
+    )
+    model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides)
+    result = make_plan(values, policy, budget, frontier_points=10 if frontier else 0)
+    if json_output:
+        typer.echo(dumps_stable(result.to_dict()), nl=False)
+        return
+    console = _console()
+    if not panel.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_plan(console, result, panel, values)
+    render.print_caution(console)
+
+
+@app.command("mail-list")
+def mail_list_command(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    orders: Path = OrdersArgument,
+    policy_file: Path = PolicyOption,
+    out: Path = typer.Option(..., "--out", help="Mail list to write (CSV)."),
+    budget: Optional[float] = typer.Option(None, "--budget", min=0.0, help="Mail budget; without it everyone worth mailing is mailed."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = AsOfOption,
+    suppress: Optional[Path] = SuppressOption,
+    attributes: Optional[Path] = AttributesOption,
+    segment_column: Optional[str] = SegmentColumnOption,
+    gross_margin: Optional[float] = GrossMarginOption,
+    order_cost: Optional[float] = OrderCostOption,
+    piece_cost: Optional[float] = PieceCostOption,
+    annual_discount_rate: Optional[float] = DiscountOption,
+    horizon_quarters: Optional[int] = HorizonOption,
+    order_value: Optional[float] = OrderValueOption,
+    unmailed_response: Optional[float] = UnmailedOption,
+    id_column: str = IdOption,
+    date_column: str = DateOption,
+    amount_column: str = AmountOption,
+    force: bool = ForceOption,
+) -> None:
+    """Write this quarter's mail list: one row per customer with the decision."""
+    from lapsewise.output import check_writable, write_atomic
+    from lapsewise.plan import mail_list, make_plan, neutralise_formulas
+
+    check_writable(out, force)
+    overrides = dict(
+        gross_margin=gross_margin, order_cost=order_cost, piece_cost=piece_cost, annual_discount_rate=annual_discount_rate,
+        horizon_quarters=horizon_quarters, order_value=order_value, unmailed_response=unmailed_response,
+    )
+    model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides)
+    result = make_plan(values, policy, budget)
+    rows = neutralise_formulas(mail_list(values, result.assignment))
+    write_atomic(out, lambda p: rows.to_csv(p, index=False, float_format="%.6g"), force)
+    console = _console()
+    if not panel.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_mail_list(console, rows, result, out)
     render.print_caution(console)
 
 

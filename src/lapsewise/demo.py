@@ -31,6 +31,7 @@ import pandas as pd
 
 SCENARIO_NAME = "Mail-Order Garden Seeds"
 # The demo's economics: the same as policies/full-catalog.toml (a test keeps them in step).
+DEMO_BUDGET = 3000.0
 DEMO_ECONOMICS = {"gross_margin": 0.45, "order_cost": 4.00, "piece_cost": 0.90, "annual_discount_rate": 0.10, "horizon_quarters": 40}
 
 
@@ -161,7 +162,13 @@ def write_demo_files(folder: Path, data: DemoData, force: bool) -> dict[str, Pat
     if folder.exists() and not folder.is_dir():
         raise InputError(f"{folder}: exists and is not a folder; choose another --dir")
     folder.mkdir(parents=True, exist_ok=True)
-    paths = {"orders": folder / "orders.csv", "mailings": folder / "mailings.csv", "truth": folder / "truth.json", "model": folder / "model.json"}
+    paths = {
+        "orders": folder / "orders.csv",
+        "mailings": folder / "mailings.csv",
+        "truth": folder / "truth.json",
+        "model": folder / "model.json",
+        "mail_list": folder / "mail-list.csv",
+    }
     for path in paths.values():
         check_writable(path, force)  # every output of the demo, before anything is written
     write_atomic(paths["orders"], lambda p: data.orders.to_csv(p, index=False), force)
@@ -179,7 +186,9 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
     from lapsewise.model import fit_model, return_curves
     from lapsewise.output import dumps_stable, write_text_atomic
     from lapsewise.panel import panel_from_files
-    from lapsewise.policy import Beliefs, Economics, build_stop_table, typical_order_value
+    from lapsewise.output import write_atomic
+    from lapsewise.plan import customer_values, mail_list, make_plan, neutralise_formulas
+    from lapsewise.policy import Beliefs, Economics, Policy, Segments, Version, build_stop_table, typical_order_value
     from lapsewise.simulate import simulate_policies
 
     data = simulate_base(customers, quarters, seed)
@@ -195,11 +204,10 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
 
     console.rule("The fitted model")
     model = fit_model(panel)
-    model_path = folder / "model.json"
-    write_text_atomic(model_path, dumps_stable(model.to_dict()), force)
+    write_text_atomic(paths["model"], dumps_stable(model.to_dict()), force)
     render.print_model(console, model, return_curves(model, panel))
     render.print_truth_comparison(console, model, data.truth)
-    console.print(f"Model written to {model_path}.")
+    console.print(f"Model written to {paths['model']}.")
 
     console.rule("Backtest: the last 4 quarters held out")
     render.print_backtest(console, run_backtest(panel, 4))
@@ -213,4 +221,13 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
     beliefs = Beliefs.from_fit(model.churn, economics.unmailed_response)
     simulation = simulate_policies(beliefs, economics, typical_order_value(model, economics), customers=10_000, quarters=economics.horizon_quarters, seed=seed)
     render.print_simulation(console, simulation, economics)
+
+    console.rule(f"This quarter's plan at a sample budget of {DEMO_BUDGET:,.0f}")
+    policy = Policy(economics, (Version("full", economics.piece_cost),), Segments(), "demo")
+    values = customer_values(model, panel, policy)
+    plan = make_plan(values, policy, DEMO_BUDGET)
+    render.print_plan(console, plan, panel, values)
+    rows = neutralise_formulas(mail_list(values, plan.assignment))
+    write_atomic(paths["mail_list"], lambda p: rows.to_csv(p, index=False, float_format="%.6g"), force)
+    render.print_mail_list(console, rows, plan, paths["mail_list"])
     render.print_caution(console)

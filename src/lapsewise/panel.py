@@ -397,6 +397,11 @@ class Histories:
     def silent_quarters(self) -> np.ndarray:
         return self.n - self.t_x
 
+    @property
+    def unmailed_quarters(self) -> np.ndarray:
+        """b: unmailed silent quarters in the whole history, before and after the last purchase."""
+        return self.unmailed_silent + self.silent_quarters - self.after_last.sum(axis=1, dtype=np.int64)
+
 
 def history_arrays(purchased: np.ndarray, mailed: np.ndarray, n: np.ndarray) -> dict[str, np.ndarray]:
     """The likelihood's sufficient statistics of every row of aligned purchase and mail arrays."""

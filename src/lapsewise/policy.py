@@ -668,3 +668,40 @@ def _first_false(flags: np.ndarray) -> np.ndarray:
     """Per row, the index of the first False (-1 when every entry is True)."""
     stopped = ~flags
     return np.where(stopped.any(axis=1), stopped.argmax(axis=1), -1)
+
+
+# ---------------------------------------------------------------- versions: the value of this quarter's piece
+
+
+def mail_value_with(program: Program, n, x, b, alive, response: float, piece_cost: float) -> np.ndarray:
+    """Value of mailing a version of the piece this quarter, then following the program's policy.
+
+    A version's piece costs ``piece_cost`` and turns the purchase chance p into
+    ``response * p``. Silence after such a piece multiplies the belief by
+    ``1 - response p``, which is the mix ``lam (1 - p) + (1 - lam)(1 - rho p)``
+    of a mailed and a held silent quarter with ``lam = (response - rho) / (1 - rho)``.
+    The value of every later plan is linear in the belief, so the best plan after
+    silence is found on the sum of the two parts' plan values: exact, with no
+    new state. With ``response = 1`` and the program's piece cost this equals
+    ``decide(...).mail_value``.
+    """
+    n, x, b = (np.asarray(v, dtype=np.int64) for v in (n, x, b))
+    alive = np.asarray(alive, dtype=float)
+    rho, d, margin = program.rho, program.discount, program.margin
+    if rho >= 1.0 and response != 1.0:
+        raise InputError("with unmailed_response 1 a held customer responds like a mailed one, so versions with response below 1 cannot be valued")
+    mix = 1.0 if rho >= 1.0 else (response - rho) / (1.0 - rho)
+    here = program.log_moment[n, x, b]
+    survive = np.exp(program.log_alive[n, 1])
+    buy = alive * survive * response * np.exp(program.log_moment[n + 1, x + 1, b] - here)
+    horizon = program.horizon
+    after_purchase = program.best[horizon - 1][n + 1, x + 1, b] if horizon > 1 else 0.0
+    value = d * (buy * (margin + after_purchase) - piece_cost)
+    if horizon == 1:
+        return value
+    mailed_part = alive * survive * mix * np.exp(program.log_moment[n + 1, x, b] - here)
+    held_part = alive * survive * (1.0 - mix) * np.exp(program.log_moment[n + 1, x, b + 1] - here)
+    plans = _plan_values(program, n + 1, x, b, mailed_part, 1.0 - buy, horizon - 1)
+    if mix != 1.0:
+        plans = plans + _plan_values(program, n + 1, x, b + 1, held_part, np.zeros_like(alive), horizon - 1)
+    return value + d * plans.max(axis=1)

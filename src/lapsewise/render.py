@@ -354,3 +354,55 @@ def print_simulation(console: Console, result, economics) -> None:
         f"The optimal policy earns {money(optimal.mean_profit)} per customer; the best rule of thumb, '{runner.policy}', earns "
         f"{money(runner.mean_profit)} ({runner.difference_to_optimal:+.2f} ± {1.96 * runner.difference_std_error:.2f})."
     )
+
+
+def print_plan(console: Console, plan, panel, values) -> None:
+    solution = plan.solution
+    console.print(
+        f"As of {panel.as_of}: {panel.customers:,} customers, {int(values.suppressed.sum()):,} on the suppression list (never mailed). "
+        f"Budget {money(plan.budget)}; solver {solution.status} (relative gap tolerance {solution.gap_tolerance:g}) in {solution.solve_seconds:.2f} s."
+    )
+    table = compact_table()
+    for column in ("Segment", "Version", "Customers", "Mailed", "Cost", "Orders", "Value"):
+        table.add_column(column, justify="left" if column in ("Segment", "Version") else "right", no_wrap=True)
+    for row in plan.segments.itertuples():
+        table.add_row(row.segment, row.version, f"{row.customers:,}", f"{row.mailed:,}", f"{row.cost:,.0f}", f"{row.expected_orders:,.1f}", f"{row.expected_profit:,.0f}")
+    segments = plan.segments
+    table.add_row(
+        "Total", "", f"{segments.customers.sum():,}", f"{segments.mailed.sum():,}", f"{segments.cost.sum():,.0f}",
+        f"{segments.expected_orders.sum():,.1f}", f"{segments.expected_profit.sum():,.0f}", end_section=True,
+    )
+    console.print(
+        "The plan: customers mailed per segment, piece cost and expected value (currency units; value is net of piece "
+        "costs and counts the future an order buys), expected orders next quarter:"
+    )
+    console.print(table)
+    if plan.setup_total:
+        console.print(f"Setup costs of the versions used: {money(plan.setup_total)}.")
+    console.print(
+        f"Spend {money(solution.spent)} of {money(plan.budget)} for an expected {money(plan.expected_profit)} over what holding would earn; "
+        f"one more unit of budget is worth about {plan.shadow_price:.2f} (the budget's shadow price, by re-solving)."
+    )
+    if plan.frontier is not None:
+        frontier = compact_table()
+        frontier.add_column("Budget", justify="right")
+        frontier.add_column("Expected value", justify="right")
+        for row in plan.frontier.itertuples():
+            frontier.add_row(money(row.budget), money(row.expected_profit))
+        console.print("Budget against expected value (currency units):")
+        console.print(frontier)
+
+
+def print_mail_list(console: Console, rows, plan, out) -> None:
+    counts = rows["decision"].value_counts()
+    table = compact_table()
+    table.add_column("Decision")
+    table.add_column("Customers", justify="right")
+    for decision in ("mail", "over-budget", "drop", "suppressed"):
+        table.add_row(decision, f"{int(counts.get(decision, 0)):,}")
+    console.print(table)
+    budget = "no budget limit" if plan.budget is None else f"a budget of {money(plan.budget)}"
+    console.print(
+        f"With {budget}, mail {int(counts.get('mail', 0)):,} customers for {money(plan.solution.spent)}; "
+        f"the list, one row per customer, is in {out}. Cells that a spreadsheet would run as formulas start with a quote."
+    )

@@ -110,11 +110,6 @@ def run_policy(name: str, beliefs: Beliefs, program: Program, economics: Economi
     return {"profit": profit, "pieces": mailed.sum(axis=1), "orders": purchased[:, 1:].sum(axis=1)}
 
 
-def unmailed_quarters(histories) -> np.ndarray:
-    """b: unmailed silent quarters in all of each history (before and after the last purchase)."""
-    return histories.unmailed_silent + histories.silent_quarters - histories.after_last.sum(axis=1)
-
-
 def _decisions(name, program, fit, economics, margin, purchased, mailed, last, quarter, quarters) -> np.ndarray:
     customers = purchased.shape[0]
     if name == "always mail":
@@ -126,7 +121,7 @@ def _decisions(name, program, fit, economics, margin, purchased, mailed, last, q
     if name == "breakeven":
         return (post.p_buy * margin >= economics.piece_cost)[histories.inverse]
     horizon = min(program.horizon, quarters - quarter + 1)
-    decisions = decide_at(program, histories.n, histories.x, unmailed_quarters(histories), post.alive_now, horizon)
+    decisions = decide_at(program, histories.n, histories.x, histories.unmailed_quarters, post.alive_now, horizon)
     return decisions.mail[histories.inverse]
 
 

@@ -1,0 +1,486 @@
+"""This quarter's mailing: the value of mailing each customer, segments, the budget integer program, the mail list.
+
+For every customer the stop-rule program gives the value of mailing this
+quarter rather than holding, ``value_of_mailing = Q(mail) - Q(hold)``, which
+already includes what an order buys in later quarters; with versions, one value
+per version. Customers are grouped into segments (frequency band x silent band,
+optionally x an attribute), and within a segment and version they are taken in
+order of their value.
+
+The integer program (PuLP with its bundled CBC) chooses, for every segment and
+version, how many customers to mail::
+
+    maximise    sum_{s,v,k} slope[s,v,k] * z[s,v,k]  -  sum_v setup[v] * use[v]
+    subject to  m[s,v] = sum_k z[s,v,k],   0 <= z[s,v,k] <= size[s,k]      (customers taken best first)
+                m[s,v] <= customers[s] * pick[s,v]                          (one version per segment)
+                sum_v pick[s,v] <= 1
+                m[s,v] <= customers[s] * use[v]                             (a version is used or not)
+                sum_s m[s,v] >= min_quantity[v] * use[v]                    (minimum print run)
+                sum_v m[s,v] >= ceil(min_share[s] * customers[s])           (policy's minimum shares)
+                sum_v m[s,v] <= floor(max_share[s] * customers[s])          (policy's maximum shares)
+                sum_{s,v} piece_cost[v] * m[s,v] + sum_v setup[v] * use[v] <= budget
+                m integer, pick and use binary
+
+The value of taking ``m`` customers of a segment is the sum of the ``m`` best
+values; it is concave in ``m`` and is held as the prefix sums at chunk
+boundaries. Every customer is a chunk when a segment's customers worth mailing
+(or those not worth it) number at most ``CHUNKS``; larger groups are cut into
+``CHUNKS`` chunks of equal size, exact at their boundaries and linear within,
+which never overstates the value. The plan's objective is therefore the true
+optimum of this model; the mail list then takes the best ``m`` customers of
+each segment and reports their own values.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+import pulp
+
+from lapsewise.churn import posterior
+from lapsewise.errors import PlanError
+from lapsewise.model import Model
+from lapsewise.panel import Panel, band_labels, band_of, compress, summarize
+from lapsewise.policy import Beliefs, Policy, band_index, decide, mail_value_with, solve, spend_bands
+from lapsewise.spend import expected_order_value
+
+CHUNKS = 40
+
+
+# ---------------------------------------------------------------- value of a mailing per customer
+
+
+@dataclass(frozen=True)
+class CustomerValues:
+    """Per-customer inputs of the plan and the mail list.
+
+    ``values`` has one column per version: ``Q(mail with the version) - Q(hold)`` in
+    currency units; ``p_buy`` the chance of an order next quarter if mailed with the
+    full piece.
+    """
+
+    customer_ids: np.ndarray
+    segment: np.ndarray
+    p_alive: np.ndarray
+    p_buy: np.ndarray
+    values: np.ndarray
+    suppressed: np.ndarray
+    versions: tuple[str, ...]
+    responses: np.ndarray
+
+
+def segment_labels(summary, policy: Policy, attribute: np.ndarray | None = None) -> np.ndarray:
+    """Segment names such as '2-3 repeat, 1 silent' (and ', <attribute>' when given)."""
+    frequency = np.asarray(band_labels(policy.segments.frequency_bands))[band_of(summary.x, policy.segments.frequency_bands)]
+    silent = np.asarray(band_labels(policy.segments.silent_bands))[band_of(summary.silent_quarters, policy.segments.silent_bands)]
+    labels = pd.Series(frequency).str.cat(pd.Series(silent), sep=" repeat, ") + " silent"
+    if attribute is not None:
+        labels = labels + ", " + pd.Series(attribute)
+    return labels.to_numpy(dtype=object)
+
+
+def reference_piece_cost(policy: Policy) -> float:
+    """The piece cost of the full piece that later quarters are valued with: a version with response 1, else economics piece_cost."""
+    full = [v.piece_cost for v in policy.versions if v.response == 1.0]
+    return min(full) if full else policy.economics.piece_cost
+
+
+def customer_values(
+    model: Model,
+    panel: Panel,
+    policy: Policy,
+    suppressed: np.ndarray | None = None,
+    attribute: np.ndarray | None = None,
+) -> CustomerValues:
+    """The value of mailing each customer this quarter, per version, from the stop-rule program.
+
+    Customers are compressed into distinct (history, spend band) pairs first; the
+    program is solved once per spend band. After this quarter a customer is valued
+    as if mailed with the full piece (response 1).
+    """
+    economics = policy.economics
+    beliefs = Beliefs.from_fit(model.churn, economics.unmailed_response)
+    histories = compress(panel)
+    post = posterior(beliefs.churn_fit(), histories)
+    summary = summarize(panel)
+    bands = spend_bands(model, economics, policy.segments.spend_bands)
+    if economics.order_value is None:
+        order_values = expected_order_value(model.spend, summary.x, summary.mean_repeat_value)
+    else:
+        order_values = np.full(panel.customers, economics.order_value)
+    band = band_index(bands, order_values)
+    key = histories.inverse * len(bands) + band
+    distinct, first, inverse = np.unique(key, return_index=True, return_inverse=True)
+    state = distinct // len(bands)
+    n, x, b = histories.n[state], histories.x[state], histories.unmailed_quarters[state]
+    alive = post.alive_now[state]
+    values = np.empty((len(distinct), len(policy.versions)))
+    piece = reference_piece_cost(policy)
+    for index, spend in enumerate(bands):
+        members = (distinct % len(bands)) == index
+        if not members.any():
+            continue
+        program = solve(
+            beliefs,
+            economics.margin(spend.order_value),
+            piece,
+            economics.discount,
+            economics.horizon_quarters,
+            n_max=int(n[members].max()),
+            b_max=int(b[members].max()),
+            n_min=int(n[members].min()),
+            x_max=int(x[members].max()),
+        )
+        args = (n[members], x[members], b[members], alive[members])
+        hold = decide(program, *args).hold_value
+        for column, version in enumerate(policy.versions):
+            values[members, column] = mail_value_with(program, *args, version.response, version.piece_cost) - hold
+    return CustomerValues(
+        customer_ids=panel.customer_ids,
+        segment=segment_labels(summary, policy, attribute),
+        p_alive=post.p_alive[histories.inverse],
+        p_buy=post.p_buy[histories.inverse],
+        values=values[inverse.ravel()],
+        suppressed=np.zeros(panel.customers, dtype=bool) if suppressed is None else suppressed,
+        versions=tuple(v.name for v in policy.versions),
+        responses=np.array([v.response for v in policy.versions]),
+    )
+
+
+# ---------------------------------------------------------------- the integer program
+
+
+@dataclass(frozen=True)
+class PlanProblem:
+    """The integer program's data, independent of any solver.
+
+    ``chunk_size[s][v]`` and ``chunk_value[s][v]`` list, for segment s and version v,
+    the sizes of the chunks of customers (best first by that version's value) and
+    their total values; each ``chunk_size[s][v]`` sums to ``customers[s]``. ``min_share``/``max_share`` are per segment (0 and 1 when not set).
+    """
+
+    segments: tuple[str, ...]
+    customers: np.ndarray
+    chunk_size: tuple[tuple[np.ndarray, ...], ...]
+    chunk_value: tuple[tuple[np.ndarray, ...], ...]
+    versions: tuple[str, ...]
+    piece_cost: np.ndarray
+    setup_cost: np.ndarray
+    min_quantity: np.ndarray
+    min_share: np.ndarray
+    max_share: np.ndarray
+    budget: float | None
+
+    def with_budget(self, budget: float | None) -> "PlanProblem":
+        return PlanProblem(**{**self.__dict__, "budget": budget})
+
+    @property
+    def min_count(self) -> np.ndarray:
+        return np.ceil(self.min_share * self.customers - 1e-9).astype(np.int64)
+
+    @property
+    def max_count(self) -> np.ndarray:
+        return np.floor(self.max_share * self.customers + 1e-9).astype(np.int64)
+
+
+@dataclass(frozen=True)
+class PlanSolution:
+    """The solver's answer: customers mailed per segment and version, and what it is worth."""
+
+    status: str
+    objective: float
+    mailed: np.ndarray  # (segments, versions) integer
+    used: np.ndarray  # (versions,) bool
+    spent: float
+    solve_seconds: float
+    gap_tolerance: float = 1e-9
+
+
+def chunk_values(sorted_values: np.ndarray, chunks: int = CHUNKS) -> tuple[np.ndarray, np.ndarray]:
+    """Chunk sizes and total values of customers sorted best first (every customer a chunk when few).
+
+    Customers worth mailing and customers not worth it never share a chunk, so a
+    plan with money to spare mails exactly the customers with a positive value.
+    """
+    positive = int((sorted_values > 0).sum())
+    sizes, totals = [], []
+    for part in (sorted_values[:positive], sorted_values[positive:]):
+        count = len(part)
+        if count == 0:
+            continue
+        if count <= chunks:
+            sizes.append(np.ones(count, dtype=np.int64))
+            totals.append(part.astype(float))
+            continue
+        edges = np.unique(np.linspace(0, count, chunks + 1).round().astype(np.int64))
+        prefix = np.concatenate([[0.0], np.cumsum(part)])
+        sizes.append(np.diff(edges))
+        totals.append(np.diff(prefix[edges]))
+    if not sizes:
+        return np.zeros(0, dtype=np.int64), np.zeros(0)
+    return np.concatenate(sizes), np.concatenate(totals)
+
+
+def build_problem(values: CustomerValues, policy: Policy, budget: float | None) -> PlanProblem:
+    """Group the customers who may be mailed into segments and chunk their values per version."""
+    eligible = ~values.suppressed
+    frame = pd.DataFrame({"segment": values.segment[eligible]})
+    names = tuple(sorted(frame["segment"].unique()))
+    unknown = [s for s in list(policy.segments.min_share) + list(policy.segments.max_share) if s not in names]
+    if unknown:
+        raise PlanError(
+            f"{policy.source}: [segments] names segment '{unknown[0]}', which has no customers; segments are named like '{names[0] if names else '0 repeat, 0 silent'}'"
+        )
+    sizes, chunk_sizes, chunk_totals = [], [], []
+    segment_of = pd.Categorical(values.segment[eligible], categories=list(names)).codes
+    eligible_values = values.values[eligible]
+    for s in range(len(names)):
+        rows = eligible_values[segment_of == s]
+        sizes.append(len(rows))
+        chunked = [chunk_values(np.sort(rows[:, v])[::-1]) for v in range(len(values.versions))]
+        chunk_sizes.append(tuple(size for size, _ in chunked))
+        chunk_totals.append(tuple(total for _, total in chunked))
+    return PlanProblem(
+        segments=names,
+        customers=np.array(sizes, dtype=np.int64),
+        chunk_size=tuple(chunk_sizes),
+        chunk_value=tuple(chunk_totals),
+        versions=values.versions,
+        piece_cost=np.array([v.piece_cost for v in policy.versions]),
+        setup_cost=np.array([v.setup_cost for v in policy.versions]),
+        min_quantity=np.array([v.min_quantity for v in policy.versions], dtype=np.int64),
+        min_share=np.array([policy.segments.min_share.get(s, 0.0) for s in names]),
+        max_share=np.array([policy.segments.max_share.get(s, 1.0) for s in names]),
+        budget=budget,
+    )
+
+
+def _model(problem: PlanProblem, relax: set[str] = frozenset()) -> tuple[pulp.LpProblem, dict, dict]:
+    """The PuLP model, written as the formulation in the module docstring. ``relax`` drops named rule groups."""
+    model = pulp.LpProblem("mail_budget", pulp.LpMaximize)
+    segments, versions = range(len(problem.segments)), range(len(problem.versions))
+    use = {v: pulp.LpVariable(f"use_{v}", cat="Binary") for v in versions}
+    pick = {(s, v): pulp.LpVariable(f"pick_{s}_{v}", cat="Binary") for s in segments for v in versions}
+    mailed = {(s, v): pulp.LpVariable(f"mailed_{s}_{v}", lowBound=0, upBound=int(problem.customers[s]), cat="Integer") for s in segments for v in versions}
+    take = {
+        (s, v, k): pulp.LpVariable(f"take_{s}_{v}_{k}", lowBound=0, upBound=int(size))
+        for s in segments
+        for v in versions
+        for k, size in enumerate(problem.chunk_size[s][v])
+    }
+    slope = {(s, v, k): problem.chunk_value[s][v][k] / problem.chunk_size[s][v][k] for (s, v, k) in take}
+    model += pulp.lpSum(slope[key] * take[key] for key in take) - pulp.lpSum(problem.setup_cost[v] * use[v] for v in versions), "expected_value"
+    for s in segments:
+        count = int(problem.customers[s])
+        for v in versions:
+            model += mailed[s, v] == pulp.lpSum(take[s, v, k] for k in range(len(problem.chunk_size[s][v]))), f"best_first_{s}_{v}"
+            model += mailed[s, v] <= count * pick[s, v], f"version_of_segment_{s}_{v}"
+            model += mailed[s, v] <= count * use[v], f"version_in_use_{s}_{v}"
+        model += pulp.lpSum(pick[s, v] for v in versions) <= 1, f"one_version_{s}"
+        if "min_share" not in relax and problem.min_count[s] > 0:
+            model += pulp.lpSum(mailed[s, v] for v in versions) >= int(problem.min_count[s]), f"min_share_{s}"
+        if problem.max_count[s] < count:
+            model += pulp.lpSum(mailed[s, v] for v in versions) <= int(problem.max_count[s]), f"max_share_{s}"
+    for v in versions:
+        if "min_quantity" not in relax and problem.min_quantity[v] > 0:
+            model += pulp.lpSum(mailed[s, v] for s in segments) >= int(problem.min_quantity[v]) * use[v], f"min_quantity_{v}"
+    if problem.budget is not None and "budget" not in relax:
+        spend = pulp.lpSum(problem.piece_cost[v] * mailed[s, v] for s in segments for v in versions) + pulp.lpSum(
+            problem.setup_cost[v] * use[v] for v in versions
+        )
+        model += spend <= problem.budget, "budget"
+    return model, mailed, use
+
+
+def solve_plan(problem: PlanProblem, time_limit: float = 120.0) -> PlanSolution:
+    """Solve the integer program with CBC; an infeasible plan is a PlanError naming the rule that cannot be met."""
+    model, mailed, use = _model(problem)
+    started = time.perf_counter()
+    model.solve(pulp.PULP_CBC_CMD(msg=False, gapRel=1e-9, timeLimit=time_limit))
+    seconds = time.perf_counter() - started
+    status = pulp.LpStatus[model.status]
+    if status == "Infeasible":
+        raise PlanError(_infeasible_reason(problem))
+    if status != "Optimal":
+        raise PlanError(f"the solver stopped with status '{status}' after {seconds:.1f} s; try fewer segments or a simpler policy")
+    counts = np.array([[round(mailed[s, v].value() or 0) for v in range(len(problem.versions))] for s in range(len(problem.segments))], dtype=np.int64)
+    used = np.array([round(use[v].value() or 0) == 1 for v in range(len(problem.versions))])
+    spent = float((counts * problem.piece_cost[None, :]).sum() + problem.setup_cost[used].sum())
+    return PlanSolution(status, float(pulp.value(model.objective)), counts, used, spent, seconds)
+
+
+def _infeasible_reason(problem: PlanProblem) -> str:
+    """Name the rule that cannot be met: the first rule group whose removal makes the plan feasible."""
+    for group, text in (
+        ("min_share", "the [segments] min_share rules cannot all be met within the budget"),
+        ("min_quantity", "a version's min_quantity (minimum print run) cannot be met within the budget"),
+    ):
+        model, _, _ = _model(problem, relax={group})
+        model.solve(pulp.PULP_CBC_CMD(msg=False))
+        if pulp.LpStatus[model.status] == "Optimal":
+            cheapest = _min_share_cost(problem) if group == "min_share" else None
+            extra = f" (they need at least {cheapest:,.2f} of a budget of {problem.budget:,.2f})" if cheapest is not None and problem.budget is not None else ""
+            return f"the plan is infeasible: {text}{extra}; raise --budget or relax the rule in the policy file"
+    return "the plan is infeasible: the policy's rules contradict each other (minimum shares, print runs and budget); check the policy file"
+
+
+def _min_share_cost(problem: PlanProblem) -> float:
+    cheapest = problem.piece_cost.min() if len(problem.piece_cost) else 0.0
+    return float((problem.min_count * cheapest).sum())
+
+
+# ---------------------------------------------------------------- the plan and the mail list
+
+
+@dataclass(frozen=True)
+class Plan:
+    budget: float | None
+    solution: PlanSolution
+    segments: pd.DataFrame
+    shadow_price: float | None
+    frontier: pd.DataFrame | None
+    assignment: np.ndarray  # per customer: version index, or -1
+    setup_total: float
+
+    @property
+    def expected_profit(self) -> float:
+        """Value of the mailings chosen (piece costs already netted) less the setup costs of the versions used."""
+        return float(self.segments["expected_profit"].sum() - self.setup_total)
+
+    def to_dict(self) -> dict:
+        data = {
+            "budget": self.budget,
+            "spent": round(self.solution.spent, 2),
+            "expected_profit": round(self.expected_profit, 4),
+            "shadow_price": None if self.shadow_price is None else round(self.shadow_price, 6),
+            "solver": {"status": self.solution.status, "gap_tolerance": self.solution.gap_tolerance},
+            "segments": [
+                {
+                    "segment": r.segment,
+                    "version": r.version,
+                    "customers": int(r.customers),
+                    "mailed": int(r.mailed),
+                    "cost": round(float(r.cost), 2),
+                    "expected_orders": round(float(r.expected_orders), 4),
+                    "expected_profit": round(float(r.expected_profit), 4),
+                }
+                for r in self.segments.itertuples()
+            ],
+        }
+        if self.frontier is not None:
+            data["frontier"] = [{"budget": round(float(r.budget), 2), "expected_profit": round(float(r.expected_profit), 4)} for r in self.frontier.itertuples()]
+        return data
+
+
+def assign(values: CustomerValues, problem: PlanProblem, solution: PlanSolution) -> np.ndarray:
+    """Which version each customer gets (-1: not mailed): in each segment, the best ``mailed`` customers by that version's value."""
+    assignment = np.full(len(values.customer_ids), -1, dtype=np.int64)
+    segment_of = pd.Categorical(values.segment, categories=list(problem.segments)).codes
+    for s in range(len(problem.segments)):
+        for v in np.flatnonzero(solution.mailed[s]):
+            rows = np.flatnonzero((segment_of == s) & ~values.suppressed)
+            order = rows[np.argsort(-values.values[rows, v], kind="stable")]
+            assignment[order[: solution.mailed[s, v]]] = v
+    return assignment
+
+
+def segment_report(values: CustomerValues, problem: PlanProblem, solution: PlanSolution, assignment: np.ndarray) -> pd.DataFrame:
+    rows = []
+    for s, name in enumerate(problem.segments):
+        in_segment = values.segment == name
+        mailed = assignment >= 0
+        chosen = np.flatnonzero(solution.mailed[s])
+        v = int(chosen[0]) if len(chosen) else -1
+        members = np.flatnonzero(in_segment & mailed)
+        rows.append(
+            {
+                "segment": name,
+                "version": problem.versions[v] if v >= 0 else "-",
+                "customers": int(problem.customers[s]),
+                "mailed": int(len(members)),
+                "cost": float(len(members) * (problem.piece_cost[v] if v >= 0 else 0.0)),
+                "expected_orders": float((values.p_buy[members] * values.responses[assignment[members]]).sum()) if len(members) else 0.0,
+                "expected_profit": float(values.values[members, assignment[members]].sum()) if len(members) else 0.0,
+            }
+        )
+    return pd.DataFrame(rows)
+
+
+def make_plan(values: CustomerValues, policy: Policy, budget: float | None, frontier_points: int = 0) -> Plan:
+    """Solve the plan at the budget, its shadow price by re-solving, and optionally the budget frontier."""
+    problem = build_problem(values, policy, budget)
+    solution = solve_plan(problem)
+    assignment = assign(values, problem, solution)
+    report = segment_report(values, problem, solution, assignment)
+    shadow = None
+    if budget is not None:
+        step = max(1.0, 0.01 * budget)
+        more = solve_plan(problem.with_budget(budget + step))
+        shadow = (more.objective - solution.objective) / step
+    frontier = None
+    if frontier_points:
+        frontier = budget_frontier(problem, frontier_points, budget)
+    return Plan(budget, solution, report, shadow, frontier, assignment, float(problem.setup_cost[solution.used].sum()))
+
+
+def budget_frontier(problem: PlanProblem, points: int, budget: float | None = None) -> pd.DataFrame:
+    """Expected value over a range of budgets, up to what mailing every customer worth mailing would cost."""
+    unlimited = solve_plan(problem.with_budget(None))
+    top = max(unlimited.spent, budget or 0.0) * 1.1
+    budgets = np.linspace(0.0, top, points + 1)[1:]
+    rows = []
+    for amount in budgets:
+        try:
+            rows.append({"budget": amount, "expected_profit": solve_plan(problem.with_budget(float(amount))).objective})
+        except PlanError:
+            rows.append({"budget": amount, "expected_profit": float("nan")})
+    return pd.DataFrame(rows)
+
+
+DECISIONS = ("mail", "drop", "over-budget", "suppressed")
+
+
+def mail_list(values: CustomerValues, assignment: np.ndarray) -> pd.DataFrame:
+    """One row per customer: customer_id, segment, version, p_alive, p_buy, value_of_mailing, decision.
+
+    The version shown is the one assigned, or for customers not mailed the version
+    with the highest value. ``drop``: no version is worth mailing; ``over-budget``:
+    worth mailing but the budget ran out; ``suppressed``: on the suppression list.
+    """
+    best = values.values.argmax(axis=1)
+    version_index = np.where(assignment >= 0, assignment, best)
+    value = values.values[np.arange(len(version_index)), version_index]
+    decision = np.where(
+        values.suppressed,
+        "suppressed",
+        np.where(assignment >= 0, "mail", np.where(value > 0, "over-budget", "drop")),
+    )
+    return pd.DataFrame(
+        {
+            "customer_id": values.customer_ids,
+            "segment": values.segment,
+            "version": np.asarray(values.versions, dtype=object)[version_index],
+            "p_alive": values.p_alive,
+            "p_buy": values.p_buy * values.responses[version_index],
+            "value_of_mailing": value,
+            "decision": decision,
+        }
+    )
+
+
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def neutralise_formulas(frame: pd.DataFrame) -> pd.DataFrame:
+    """Prefix text cells that a spreadsheet would run as a formula with a single quote (OWASP CSV-injection guidance)."""
+    out = frame.copy()
+    for column in out.columns:
+        if out[column].dtype == object or pd.api.types.is_string_dtype(out[column]):
+            text = out[column].astype(str)
+            risky = text.str.startswith(_FORMULA_START)
+            out[column] = np.where(risky, "'" + text, text)
+    return out
