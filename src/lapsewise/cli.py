@@ -94,10 +94,13 @@ def fit(
     from lapsewise.output import check_writable, write_text_atomic
 
     check_writable(out, force)
-    panel = _panel(orders, mailings, as_of, fiscal_year_start, id_column, date_column, amount_column)
-    model = fit_model(panel)
-    write_text_atomic(out, dumps_stable(model.to_dict()), force)
     console = _console()
+    with render.progress(console, 2) as step:
+        with step("Reading the files and building the quarterly panel"):
+            panel = _panel(orders, mailings, as_of, fiscal_year_start, id_column, date_column, amount_column)
+        with step(f"Fitting the models on {panel.customers:,} customers"):
+            model = fit_model(panel)
+    write_text_atomic(out, dumps_stable(model.to_dict()), force)
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_model(console, model, return_curves(model, panel))
@@ -150,14 +153,17 @@ def backtest(
     """Fit on all but the last quarters and compare predicted with actual repeat purchases."""
     from lapsewise.backtest import run_backtest
 
-    panel = _panel(orders, mailings, as_of, fiscal_year_start, id_column, date_column, amount_column)
-    result = run_backtest(panel, holdout_quarters)
+    console = _console(json_output)
+    with render.progress(console, 2, not json_output) as step:
+        with step("Reading the files and building the quarterly panel"):
+            panel = _panel(orders, mailings, as_of, fiscal_year_start, id_column, date_column, amount_column)
+        with step("Fitting on the calibration quarters and predicting the holdout"):
+            result = run_backtest(panel, holdout_quarters)
     if json_output:
         data = result.to_dict()
         data["mailing_history"] = panel.mailing_history
         typer.echo(dumps_stable(data), nl=False)
         return
-    console = _console()
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_backtest(console, result)
@@ -208,11 +214,13 @@ def stop_table(
 
     model = load_model(model_file)
     policy = _policy(policy_file, gross_margin, order_cost, piece_cost, annual_discount_rate, horizon_quarters, order_value, unmailed_response)
-    table = build_stop_table(model, policy.economics, policy.segments.spend_bands)
+    console = _console(json_output)
+    with render.progress(console, 1, not json_output) as step:
+        with step("Solving the stop-rule program"):
+            table = build_stop_table(model, policy.economics, policy.segments.spend_bands)
     if json_output:
         typer.echo(dumps_stable(render.stop_table_json(table, model)), nl=False)
         return
-    console = _console()
     if not model.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_stop_table(console, table, model)
@@ -244,11 +252,13 @@ def simulate(
     policy = _policy(policy_file, gross_margin, order_cost, piece_cost, annual_discount_rate, horizon_quarters, order_value, unmailed_response)
     economics = policy.economics
     beliefs = Beliefs.from_fit(model.churn, economics.unmailed_response)
-    result = simulate_policies(beliefs, economics, typical_order_value(model, economics), customers, quarters or economics.horizon_quarters, seed)
+    console = _console(json_output)
+    with render.progress(console, 1, not json_output) as step:
+        with step(f"Simulating {customers:,} customers under every policy"):
+            result = simulate_policies(beliefs, economics, typical_order_value(model, economics), customers, quarters or economics.horizon_quarters, seed)
     if json_output:
         typer.echo(dumps_stable(result.to_dict()), nl=False)
         return
-    console = _console()
     render.print_simulation(console, result, economics)
     render.print_caution(console)
 
@@ -313,12 +323,15 @@ def plan(
         gross_margin=gross_margin, order_cost=order_cost, piece_cost=piece_cost, annual_discount_rate=annual_discount_rate,
         horizon_quarters=horizon_quarters, order_value=order_value, unmailed_response=unmailed_response,
     )
-    model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides)
-    result = make_plan(values, policy, budget, frontier_points=10 if frontier else 0)
+    console = _console(json_output)
+    with render.progress(console, 2, not json_output) as step:
+        with step("Reading the files and valuing a mailing to every customer"):
+            model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides)
+        with step("Solving the budget integer program"):
+            result = make_plan(values, policy, budget, frontier_points=10 if frontier else 0)
     if json_output:
         typer.echo(dumps_stable(result.to_dict()), nl=False)
         return
-    console = _console()
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_plan(console, result, panel, values)
@@ -358,11 +371,15 @@ def mail_list_command(
         gross_margin=gross_margin, order_cost=order_cost, piece_cost=piece_cost, annual_discount_rate=annual_discount_rate,
         horizon_quarters=horizon_quarters, order_value=order_value, unmailed_response=unmailed_response,
     )
-    model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides)
-    result = make_plan(values, policy, budget)
-    rows = neutralise_formulas(mail_list(values, result.assignment))
-    write_atomic(out, lambda p: rows.to_csv(p, index=False, float_format="%.6g"), force)
     console = _console()
+    with render.progress(console, 3) as step:
+        with step("Reading the files and valuing a mailing to every customer"):
+            model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides)
+        with step("Solving the budget integer program"):
+            result = make_plan(values, policy, budget)
+        with step("Writing the mail list"):
+            rows = neutralise_formulas(mail_list(values, result.assignment))
+            write_atomic(out, lambda p: rows.to_csv(p, index=False, float_format="%.6g"), force)
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_mail_list(console, rows, result, out)

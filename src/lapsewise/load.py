@@ -369,3 +369,78 @@ def load_attributes(path: str | Path, column: str, id_column: str = ID_COLUMN) -
     if duplicated.any():
         repairs["attribute rows for an id already seen ignored"] = int(duplicated.sum())
     return Loaded(name, out[~duplicated].reset_index(drop=True), repairs)
+
+
+# ---------------------------------------------------------------- the customer-quarter table
+
+QUARTER_COLUMN = "quarter"
+PURCHASED_COLUMN = "purchased"
+SPEND_COLUMN = "spend"
+MAILED_COLUMN = "mailed"
+
+
+def header_columns(path: str | Path) -> list[str]:
+    """The column names of a CSV or Parquet file, read without loading its rows ([] when unreadable)."""
+    path = Path(path)
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(4)
+        if head == b"PAR1":
+            import pyarrow.parquet as pq
+
+            return [str(c).strip() for c in pq.read_schema(path).names]
+        with open(path, encoding="utf-8-sig", errors="replace") as handle:
+            return [c.strip().strip('"') for c in handle.readline().rstrip("\r\n").split(",")]
+    except (OSError, ValueError):
+        return []
+
+
+def is_quarterly_table(path: str | Path) -> bool:
+    """True for a customer-quarter table (customer_id, quarter, purchased, spend[, mailed]) rather than raw orders."""
+    columns = set(header_columns(path))
+    return {QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN} <= columns
+
+
+def _flags(name: str, column_name: str, column: pd.Series, is_csv: bool) -> np.ndarray:
+    """0/1 flags (also true/false, yes/no); anything else is an error naming its row."""
+    text = column.astype(str).str.strip().str.lower()
+    mapping = {"1": True, "0": False, "true": True, "false": False, "yes": True, "no": False, "1.0": True, "0.0": False, "": False}
+    values = text.map(mapping)
+    bad = values.isna().to_numpy()
+    if bad.any():
+        first = np.flatnonzero(bad)[0]
+        raise InputError(f"{name}, row {_row_label(first, is_csv)}, column {column_name}: '{text.iloc[first][:20]}' is not 0 or 1")
+    return values.to_numpy(dtype=bool)
+
+
+def load_quarterly(path: str | Path, id_column: str = ID_COLUMN) -> tuple[Loaded, Loaded | None]:
+    """Read a customer-quarter table and return it as the orders and mailings it stands for.
+
+    One row per customer and quarter with a purchase or a mailing: ``customer_id``,
+    ``quarter`` (any date in the quarter, e.g. its first day), ``purchased`` (0/1),
+    ``spend`` (net spend of the quarter) and optionally ``mailed`` (0/1). Each
+    purchased quarter becomes one order of its spend; each mailed quarter one piece.
+    Without a ``mailed`` column every quarter counts as mailed.
+    """
+    name = str(path)
+    frame, is_csv, repairs = read_table(path)
+    _require_columns(name, frame, {id_column: "--id-column", QUARTER_COLUMN: "", PURCHASED_COLUMN: "", SPEND_COLUMN: ""})
+    has_mailed = MAILED_COLUMN in frame.columns
+    _count_extra_columns(frame, [id_column, QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN] + ([MAILED_COLUMN] if has_mailed else []), repairs)
+    ids = _clean_ids(name, frame[id_column], repairs)
+    keep = _drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
+    dates = _parse_dates(name, QUARTER_COLUMN, frame[QUARTER_COLUMN], is_csv, keep)
+    purchased = _flags(name, PURCHASED_COLUMN, frame[PURCHASED_COLUMN], is_csv) & keep
+    spend, blank = _parse_amounts(name, SPEND_COLUMN, frame[SPEND_COLUMN], is_csv)
+    spend = np.where(blank, 0.0, spend)
+    not_positive = purchased & (spend <= 0)
+    if not_positive.any():
+        repairs["quarters marked purchased with no positive spend (not purchases)"] = int(not_positive.sum())
+    orders = pd.DataFrame({ID_COLUMN: ids[purchased], ORDER_DATE_COLUMN: dates[purchased], AMOUNT_COLUMN: spend[purchased]})
+    if not len(orders):
+        raise InputError(f"{name}: no row has purchased = 1; a customer-quarter table needs the quarters with purchases")
+    mailings = None
+    if has_mailed:
+        mailed = _flags(name, MAILED_COLUMN, frame[MAILED_COLUMN], is_csv) & keep
+        mailings = Loaded(name, pd.DataFrame({ID_COLUMN: ids[mailed], MAIL_DATE_COLUMN: dates[mailed]}), {})
+    return Loaded(name, orders.reset_index(drop=True), repairs), mailings

@@ -79,6 +79,8 @@ class Panel:
 
 # ---------------------------------------------------------------- quarters
 
+MAX_QUARTERS = 400  # a century of quarters: the panel is customers x quarters, so this bounds its memory
+
 
 def quarter_index(dates: np.ndarray, fiscal_year_start: int = 1) -> np.ndarray:
     """Absolute quarter index of each date (datetime64 array)."""
@@ -132,6 +134,11 @@ def _end_quarter(name: str, order_dates: np.ndarray, as_of: dt.date | None, fisc
         raise InputError(
             f"{name}: every order falls in one quarter that is not complete ({first} to {as_of}); "
             f"pass --as-of {quarter_end(first_quarter, fiscal_year_start)} to count that quarter as complete"
+        )
+    if quarter - first_quarter + 1 > MAX_QUARTERS:
+        raise InputError(
+            f"--as-of {as_of}: spans {quarter - first_quarter + 1} quarters from the first order in {name} ({first}); "
+            f"lapsewise handles up to {MAX_QUARTERS} quarters, so choose an earlier date or drop the oldest orders"
         )
     return quarter
 
@@ -499,10 +506,25 @@ def panel_from_files(
     date_column: str = ORDER_DATE_COLUMN,
     amount_column: str = AMOUNT_COLUMN,
 ) -> Panel:
-    """Load the orders (and mailings) files and build the panel: the first two stages in one call."""
-    from lapsewise.load import load_mailings, load_orders
+    """Load the orders (and mailings) files and build the panel: the first two stages in one call.
+
+    ``orders_path`` may instead be a customer-quarter table (customer_id, quarter,
+    purchased, spend[, mailed]), recognised by its columns; it then stands for both
+    orders and mailings, and its last quarter is the default as-of quarter.
+    """
+    from lapsewise.load import is_quarterly_table, load_mailings, load_orders, load_quarterly
 
     as_of_date = parse_as_of(as_of)
+    if is_quarterly_table(orders_path):
+        if mailings_path:
+            raise InputError(f"{orders_path}: is a customer-quarter table, which already says which quarters were mailed; drop --mailings")
+        orders, mailings = load_quarterly(orders_path, id_column)
+        if as_of_date is None:
+            last = int(quarter_index(orders.frame[ORDER_DATE_COLUMN].to_numpy(), fiscal_year_start).max())
+            if mailings is not None and len(mailings.frame):
+                last = max(last, int(quarter_index(mailings.frame[MAIL_DATE_COLUMN].to_numpy(), fiscal_year_start).max()))
+            as_of_date = quarter_end(last, fiscal_year_start)
+        return build_panel(orders, mailings, as_of_date, fiscal_year_start)
     orders = load_orders(orders_path, id_column, date_column, amount_column)
     mailings = load_mailings(mailings_path, id_column) if mailings_path else None
     return build_panel(orders, mailings, as_of_date, fiscal_year_start)

@@ -7,9 +7,11 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from contextlib import contextmanager, nullcontext
 
 from rich import box
 from rich.console import Console
+from rich.progress import BarColumn, Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
 from lapsewise.panel import Panel, base_table, quarter_label, quarter_start, summarize
@@ -406,3 +408,24 @@ def print_mail_list(console: Console, rows, plan, out) -> None:
         f"With {budget}, mail {int(counts.get('mail', 0)):,} customers for {money(plan.solution.spent)}; "
         f"the list, one row per customer, is in {out}. Cells that a spreadsheet would run as formulas start with a quote."
     )
+
+
+@contextmanager
+def progress(console: Console, steps: int, enabled: bool = True):
+    """Yield ``step(description)``, a context manager per stage, shown as a progress bar on a terminal only.
+
+    In CI, in a pipe or with ``--json`` (``enabled`` False) nothing is drawn.
+    """
+    if not (enabled and console.is_terminal):
+        yield lambda description: nullcontext()
+        return
+    with Progress(SpinnerColumn(), TextColumn("{task.description}"), BarColumn(), TimeElapsedColumn(), console=console, transient=True) as bar:
+        task = bar.add_task("", total=steps)
+
+        @contextmanager
+        def step(description: str):
+            bar.update(task, description=description)
+            yield
+            bar.advance(task)
+
+        yield step
