@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import functools
+import inspect
 import sys
+import typing
 from pathlib import Path
 from typing import Optional
 
@@ -171,49 +174,66 @@ def backtest(
 
 
 PolicyOption = typer.Option(..., "--policy", help="Policy file (TOML); see policies/.")
-GrossMarginOption = typer.Option(None, "--gross-margin", help="Override [economics] gross_margin.")
-OrderCostOption = typer.Option(None, "--order-cost", help="Override [economics] order_cost.")
-PieceCostOption = typer.Option(None, "--piece-cost", help="Override [economics] piece_cost.")
-DiscountOption = typer.Option(None, "--annual-discount-rate", help="Override [economics] annual_discount_rate.")
-HorizonOption = typer.Option(None, "--horizon-quarters", help="Override [economics] horizon_quarters.")
-OrderValueOption = typer.Option(None, "--order-value", help="Override [economics] order_value (a fixed value per order).")
-UnmailedOption = typer.Option(None, "--unmailed-response", help="Override [economics] unmailed_response (rho).")
 
 
-def _policy(path: Path, gross_margin, order_cost, piece_cost, annual_discount_rate, horizon_quarters, order_value, unmailed_response):
+_ECONOMICS_OPTIONS = (
+    ("gross_margin", float, "share of order value left after cost of goods"),
+    ("order_cost", float, "pick, pack and payment cost per order"),
+    ("piece_cost", float, "print and postage per piece"),
+    ("annual_discount_rate", float, "annual discount rate"),
+    ("horizon_quarters", int, "quarters each decision looks ahead"),
+    ("order_value", float, "a fixed value per order instead of the spend model"),
+    ("unmailed_response", float, "rho, the share of response left without a piece"),
+)
+
+
+def economics_overrides(command):
+    """Give a command one ``--<key>`` option per [economics] key; it receives them as ``overrides``."""
+    signature = inspect.signature(command)
+    kept = [p for name, p in signature.parameters.items() if name != "overrides"]
+    added = [
+        inspect.Parameter(
+            name,
+            inspect.Parameter.KEYWORD_ONLY,
+            default=typer.Option(None, f"--{name.replace('_', '-')}", help=f"Override the policy economics key {name}: {text}."),
+            annotation=Optional[kind],
+        )
+        for name, kind, text in _ECONOMICS_OPTIONS
+    ]
+
+    @functools.wraps(command)
+    def wrapper(*args, **kwargs):
+        overrides = {name: kwargs.pop(name, None) for name, _, _ in _ECONOMICS_OPTIONS}
+        return command(*args, overrides=overrides, **kwargs)
+
+    hints = typing.get_type_hints(command)
+    hints.pop("overrides", None)
+    hints.update({name: Optional[kind] for name, kind, _ in _ECONOMICS_OPTIONS})
+    wrapper.__annotations__ = hints
+    wrapper.__signature__ = signature.replace(parameters=kept + added)
+    return wrapper
+
+
+def _policy(path: Path, overrides: dict):
     from lapsewise.policy import load_policy
 
-    overrides = {
-        "gross_margin": gross_margin,
-        "order_cost": order_cost,
-        "piece_cost": piece_cost,
-        "annual_discount_rate": annual_discount_rate,
-        "horizon_quarters": horizon_quarters,
-        "order_value": order_value,
-        "unmailed_response": unmailed_response,
-    }
     return load_policy(path, overrides)
 
 
 @app.command("stop-table")
+@economics_overrides
 def stop_table(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     policy_file: Path = PolicyOption,
-    gross_margin: Optional[float] = GrossMarginOption,
-    order_cost: Optional[float] = OrderCostOption,
-    piece_cost: Optional[float] = PieceCostOption,
-    annual_discount_rate: Optional[float] = DiscountOption,
-    horizon_quarters: Optional[int] = HorizonOption,
-    order_value: Optional[float] = OrderValueOption,
-    unmailed_response: Optional[float] = UnmailedOption,
     json_output: bool = JsonOption,
+    overrides: dict | None = None,
 ) -> None:
     """When to stop mailing a silent customer: the optimal stop point beside the breakeven rule's."""
     from lapsewise.model import load_model
     from lapsewise.policy import build_stop_table
 
     model = load_model(model_file)
-    policy = _policy(policy_file, gross_margin, order_cost, piece_cost, annual_discount_rate, horizon_quarters, order_value, unmailed_response)
+    policy = _policy(policy_file, overrides)
     console = _console(json_output)
     with render.progress(console, 1, not json_output) as step:
         with step("Solving the stop-rule program"):
@@ -228,20 +248,15 @@ def stop_table(
 
 
 @app.command()
+@economics_overrides
 def simulate(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     policy_file: Path = PolicyOption,
     customers: int = typer.Option(10_000, "--customers", min=100, max=5_000_000, help="New customers to simulate."),
     quarters: Optional[int] = typer.Option(None, "--quarters", min=1, max=200, help="Quarters to simulate (default: the horizon)."),
     seed: int = typer.Option(1, "--seed", help="Seed of every random draw."),
-    gross_margin: Optional[float] = GrossMarginOption,
-    order_cost: Optional[float] = OrderCostOption,
-    piece_cost: Optional[float] = PieceCostOption,
-    annual_discount_rate: Optional[float] = DiscountOption,
-    horizon_quarters: Optional[int] = HorizonOption,
-    order_value: Optional[float] = OrderValueOption,
-    unmailed_response: Optional[float] = UnmailedOption,
     json_output: bool = JsonOption,
+    overrides: dict | None = None,
 ) -> None:
     """Monte Carlo of the optimal policy against drop-after-k, breakeven and always-mail rules."""
     from lapsewise.model import load_model
@@ -249,7 +264,7 @@ def simulate(
     from lapsewise.simulate import simulate_policies
 
     model = load_model(model_file)
-    policy = _policy(policy_file, gross_margin, order_cost, piece_cost, annual_discount_rate, horizon_quarters, order_value, unmailed_response)
+    policy = _policy(policy_file, overrides)
     economics = policy.economics
     beliefs = Beliefs.from_fit(model.churn, economics.unmailed_response)
     console = _console(json_output)
@@ -276,7 +291,7 @@ def _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, att
     from lapsewise.plan import customer_values
 
     model = load_model(model_file)
-    policy = _policy(policy_file, **overrides)
+    policy = _policy(policy_file, overrides)
     panel = _panel(orders, mailings, as_of, model.fiscal_year_start, id_column, date_column, amount_column)
     suppressed = None
     if suppress:
@@ -293,6 +308,7 @@ def _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, att
 
 
 @app.command()
+@economics_overrides
 def plan(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     orders: Path = OrdersArgument,
@@ -304,25 +320,15 @@ def plan(
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
     frontier: bool = typer.Option(False, "--frontier", help="Also show expected value over a range of budgets."),
-    gross_margin: Optional[float] = GrossMarginOption,
-    order_cost: Optional[float] = OrderCostOption,
-    piece_cost: Optional[float] = PieceCostOption,
-    annual_discount_rate: Optional[float] = DiscountOption,
-    horizon_quarters: Optional[int] = HorizonOption,
-    order_value: Optional[float] = OrderValueOption,
-    unmailed_response: Optional[float] = UnmailedOption,
     id_column: str = IdOption,
     date_column: str = DateOption,
     amount_column: str = AmountOption,
     json_output: bool = JsonOption,
+    overrides: dict | None = None,
 ) -> None:
     """Spread a fixed mail budget across segments and versions (an integer program)."""
     from lapsewise.plan import make_plan
 
-    overrides = dict(
-        gross_margin=gross_margin, order_cost=order_cost, piece_cost=piece_cost, annual_discount_rate=annual_discount_rate,
-        horizon_quarters=horizon_quarters, order_value=order_value, unmailed_response=unmailed_response,
-    )
     console = _console(json_output)
     with render.progress(console, 2, not json_output) as step:
         with step("Reading the files and valuing a mailing to every customer"):
@@ -339,6 +345,7 @@ def plan(
 
 
 @app.command("mail-list")
+@economics_overrides
 def mail_list_command(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     orders: Path = OrdersArgument,
@@ -350,27 +357,17 @@ def mail_list_command(
     suppress: Optional[Path] = SuppressOption,
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
-    gross_margin: Optional[float] = GrossMarginOption,
-    order_cost: Optional[float] = OrderCostOption,
-    piece_cost: Optional[float] = PieceCostOption,
-    annual_discount_rate: Optional[float] = DiscountOption,
-    horizon_quarters: Optional[int] = HorizonOption,
-    order_value: Optional[float] = OrderValueOption,
-    unmailed_response: Optional[float] = UnmailedOption,
     id_column: str = IdOption,
     date_column: str = DateOption,
     amount_column: str = AmountOption,
     force: bool = ForceOption,
+    overrides: dict | None = None,
 ) -> None:
     """Write this quarter's mail list: one row per customer with the decision."""
     from lapsewise.output import check_writable, write_atomic
     from lapsewise.plan import mail_list, make_plan, neutralise_formulas
 
     check_writable(out, force)
-    overrides = dict(
-        gross_margin=gross_margin, order_cost=order_cost, piece_cost=piece_cost, annual_discount_rate=annual_discount_rate,
-        horizon_quarters=horizon_quarters, order_value=order_value, unmailed_response=unmailed_response,
-    )
     console = _console()
     with render.progress(console, 3) as step:
         with step("Reading the files and valuing a mailing to every customer"):

@@ -55,6 +55,16 @@ def _row_label(index: int, is_csv: bool) -> int:
     return int(index) + (2 if is_csv else 1)
 
 
+def require_file(path: str | Path, missing_hint: str, kind: str = "a CSV or Parquet file") -> Path:
+    """The path of an existing file, or an InputError saying what to do instead."""
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"{path}: file not found; {missing_hint}")
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder, not a file; give the path of {kind}")
+    return path
+
+
 def read_table(path: str | Path) -> tuple[pd.DataFrame, bool, dict[str, int]]:
     """Read a CSV or Parquet file into a DataFrame with its columns as found.
 
@@ -64,12 +74,8 @@ def read_table(path: str | Path) -> tuple[pd.DataFrame, bool, dict[str, int]]:
     -------
     frame, is_csv, repairs
     """
-    path = Path(path)
+    path = require_file(path, "check the path")
     name = str(path)
-    if not path.exists():
-        raise InputError(f"{name}: file not found; check the path")
-    if path.is_dir():
-        raise InputError(f"{name}: is a folder, not a file; give the path of a CSV or Parquet file")
     if path.stat().st_size == 0:
         raise InputError(f"{name}: the file is empty; export it again with a header row and data")
     with open(path, "rb") as handle:

@@ -17,6 +17,7 @@ import pandas as pd
 
 from lapsewise.churn import ChurnFit, dert, expected_purchases, fit_churn, posterior, return_curve
 from lapsewise.errors import InputError
+from lapsewise.load import require_file
 from lapsewise.panel import DEFAULT_FREQUENCY_BANDS, Panel, band_labels, band_of, compress, summarize
 from lapsewise.spend import SpendFit, expected_order_value, fit_spend
 
@@ -117,11 +118,7 @@ def fit_model(panel: Panel) -> Model:
 
 def load_model(path: str | Path) -> Model:
     """Read a model file written by ``lapsewise fit``; a damaged or foreign file is an InputError."""
-    path = Path(path)
-    if not path.exists():
-        raise InputError(f"{path}: file not found; write a model with 'lapsewise fit ... --out {path}'")
-    if path.is_dir():
-        raise InputError(f"{path}: is a folder, not a model file")
+    path = require_file(path, f"write a model with 'lapsewise fit ... --out {path}'", "a model file")
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:

@@ -35,6 +35,7 @@ from __future__ import annotations
 
 import math
 import time
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -261,6 +262,18 @@ def build_problem(values: CustomerValues, policy: Policy, budget: float | None) 
 
 def _model(problem: PlanProblem, relax: set[str] = frozenset()) -> tuple[pulp.LpProblem, dict, dict]:
     """The PuLP model, written as the formulation in the module docstring. ``relax`` drops named rule groups."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)  # PuLP 3 announces its 4.0 API; the project pins pulp < 4
+        return _formulate(problem, relax)
+
+
+def _cbc() -> pulp.LpSolver:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)
+        return pulp.PULP_CBC_CMD(msg=False, gapRel=1e-9, timeLimit=120)
+
+
+def _formulate(problem: PlanProblem, relax: set[str]) -> tuple[pulp.LpProblem, dict, dict]:
     model = pulp.LpProblem("mail_budget", pulp.LpMaximize)
     segments, versions = range(len(problem.segments)), range(len(problem.versions))
     use = {v: pulp.LpVariable(f"use_{v}", cat="Binary") for v in versions}
@@ -296,11 +309,11 @@ def _model(problem: PlanProblem, relax: set[str] = frozenset()) -> tuple[pulp.Lp
     return model, mailed, use
 
 
-def solve_plan(problem: PlanProblem, time_limit: float = 120.0) -> PlanSolution:
+def solve_plan(problem: PlanProblem) -> PlanSolution:
     """Solve the integer program with CBC; an infeasible plan is a PlanError naming the rule that cannot be met."""
     model, mailed, use = _model(problem)
     started = time.perf_counter()
-    model.solve(pulp.PULP_CBC_CMD(msg=False, gapRel=1e-9, timeLimit=time_limit))
+    model.solve(_cbc())
     seconds = time.perf_counter() - started
     status = pulp.LpStatus[model.status]
     if status == "Infeasible":
@@ -320,7 +333,7 @@ def _infeasible_reason(problem: PlanProblem) -> str:
         ("min_quantity", "a version's min_quantity (minimum print run) cannot be met within the budget"),
     ):
         model, _, _ = _model(problem, relax={group})
-        model.solve(pulp.PULP_CBC_CMD(msg=False))
+        model.solve(_cbc())
         if pulp.LpStatus[model.status] == "Optimal":
             cheapest = _min_share_cost(problem) if group == "min_share" else None
             extra = f" (they need at least {cheapest:,.2f} of a budget of {problem.budget:,.2f})" if cheapest is not None and problem.budget is not None else ""

@@ -51,6 +51,7 @@ from scipy import special
 
 from lapsewise.churn import ChurnFit, log_survival
 from lapsewise.errors import InputError
+from lapsewise.load import require_file
 
 # ---------------------------------------------------------------- the policy file
 
@@ -219,12 +220,8 @@ def load_policy(path: str | Path, overrides: dict | None = None) -> Policy:
 
     Unknown keys, missing keys and impossible values are InputErrors naming the key.
     """
-    path = Path(path)
+    path = require_file(path, "see policies/ for examples", "a policy file")
     source = str(path)
-    if not path.exists():
-        raise InputError(f"{source}: file not found; see policies/ for examples")
-    if path.is_dir():
-        raise InputError(f"{source}: is a folder, not a policy file")
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
     except UnicodeDecodeError:
