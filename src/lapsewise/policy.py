@@ -270,12 +270,13 @@ class Beliefs:
 class Program:
     """The solved post-purchase values on the state grid.
 
-    ``best[h][n, x, b]`` is the value, at the end of quarter ``n``, of a customer
+    ``best[h][b, x, n]`` is the value, at the end of quarter ``n``, of a customer
     who bought in quarter ``n`` with ``x`` repeat purchases and ``b`` unmailed silent
-    quarters behind them, when ``h`` quarters are left to decide; ``hold[h][n, x, b]``
+    quarters behind them, when ``h`` quarters are left to decide; ``hold[h][b, x, n]``
     the value of holding for all ``h`` quarters (for a customer alive through ``n``).
-    ``log_moment[n, x, b]`` is ``log E[p^x (1-p)^a (1-rho p)^b]`` with ``a = n - x - b``
-    (minus infinity off the grid).
+    ``log_moment[b, x, n]`` is ``log E[p^x (1-p)^a (1-rho p)^b]`` with ``a = n - x - b``
+    (minus infinity off the grid). The tables are laid out with n last, the
+    dimension every step of the program shifts along, so its slices are contiguous.
     """
 
     beliefs: Beliefs
@@ -294,7 +295,7 @@ class Program:
 
 
 def log_moment_grid(beliefs: Beliefs, n_max: int, b_max: int) -> np.ndarray:
-    """``log E[p^x (1-p)^a (1-rho p)^b]`` on the grid ``[n, x, b]`` with ``a = n - x - b``.
+    """``log E[p^x (1-p)^a (1-rho p)^b]`` on the grid ``[b, x, n]`` with ``a = n - x - b``.
 
     Built by the recursion ``M(x, a, b+1) = M(x, a+1, b) + (1 - rho) M(x+1, a, b)``
     (from ``1 - rho p = (1 - p) + (1 - rho) p``), which has no cancellation, from
@@ -315,26 +316,26 @@ def log_moment_grid(beliefs: Beliefs, n_max: int, b_max: int) -> np.ndarray:
         if b < b_max:
             layer = np.logaddexp(layer[:-1, 1:], log_rest + layer[1:, :-1])
             layer = np.pad(layer, ((0, 1), (0, 1)), constant_values=-np.inf)
-    return grid
+    return np.ascontiguousarray(grid.transpose(2, 1, 0))
 
 
 def _ratios(log_moment: np.ndarray, log_alive: np.ndarray, i: int, shift_x: int, shift_b: int) -> np.ndarray:
     """``P(alive through n + i | alive through n) * M(state i quarters on) / M(state now)`` on the whole grid.
 
-    The state i quarters on is ``(n + i, x + shift_x, b + shift_b)``; with
+    The state i quarters on is ``(n + i, x + shift_x, b + shift_b)`` (tables are ``[b, x, n]``); with
     ``shift_x = 1`` (and b unchanged) this is the chance that i mailed quarters end in
     a first purchase in the i-th; with both shifts 0 the chance of being alive and
     silent after i mailed quarters; with ``shift_b = 1`` and i = 1 the chance of being
     alive and silent after one held quarter (before rho is applied to purchases).
     """
-    rows, columns, depth = log_moment.shape
-    here = log_moment[: rows - i, : columns - shift_x, : depth - shift_b]
-    there = log_moment[i:, shift_x:, shift_b:]
+    depth, columns, rows = log_moment.shape
+    here = log_moment[: depth - shift_b, : columns - shift_x, : rows - i]
+    there = log_moment[shift_b:, shift_x:, i:]
     with np.errstate(invalid="ignore"):
-        ratio = np.exp(log_alive[: rows - i, i, None, None] + there - here)
+        ratio = np.exp(log_alive[None, None, : rows - i, i] + there - here)
     ratio = np.where(np.isfinite(here), ratio, 0.0)
     out = np.zeros_like(log_moment)
-    out[: rows - i, : columns - shift_x, : depth - shift_b] = ratio
+    out[: depth - shift_b, : columns - shift_x, : rows - i] = ratio
     return out
 
 
@@ -364,11 +365,24 @@ def solve(
     n_grid = n_max + horizon + 1
     log_moment = log_moment_grid(beliefs, n_grid + 1, b_grid + 1)
     steps = np.arange(horizon + 2)
-    ns = np.arange(log_moment.shape[0])
+    ns = np.arange(log_moment.shape[2])
     # log P(alive through n + i | alive through n) = log B(gamma, delta + n + i) - log B(gamma, delta + n)
     log_alive = special.betaln(beliefs.gamma, beliefs.delta + ns[:, None] + steps[None, :]) - special.betaln(beliefs.gamma, beliefs.delta + ns[:, None])
-    purchase_after = [None] + [_ratios(log_moment, log_alive, i, 1, 0) for i in range(1, horizon + 1)]
-    silent_after = [None] + [_ratios(log_moment, log_alive, i, 0, 0) for i in range(1, horizon + 1)] if rho > 0 else []
+    # Along a mailed silent stretch from any state, the chance of a first purchase in the i-th quarter
+    # and of being alive and silent after i quarters do not depend on the horizon: compute them once,
+    # discounted, with the part of a plan's value that needs no later table (its margins and costs).
+    purchase_after, silent_after, known_part = [None], [None], [None]
+    no_purchase_yet = np.ones_like(log_moment)
+    margins_and_costs = np.zeros_like(log_moment)
+    for i in range(1, horizon + 1):
+        first_purchase = _ratios(log_moment, log_alive, i, 1, 0)
+        margins_and_costs += discount**i * (margin * first_purchase - piece_cost * no_purchase_yet)
+        no_purchase_yet -= first_purchase
+        purchase_after.append(discount**i * first_purchase)
+        known_part.append(margins_and_costs.copy())
+        if rho > 0:
+            silent_after.append(discount**i * _ratios(log_moment, log_alive, i, 0, 0))
+    del no_purchase_yet, margins_and_costs
     if rho > 0:
         held_buy = rho * _ratios(log_moment, log_alive, 1, 1, 0)
         held_silent = _ratios(log_moment, log_alive, 1, 0, 1)
@@ -378,38 +392,28 @@ def solve(
     for h in range(1, horizon):
         low, top = max(n_min + horizon - h - 1, 0), n_max + horizon - h  # the n reachable with h quarters left
         wide = min(top + 1, (n_max if x_max is None else x_max) + horizon - h + 1)
-        deep = min(b_max + horizon - h + 1, shape[2] - 2) if rho > 0 else shape[2] - 2
+        deep = min(b_max + horizon - h + 1, shape[0] - 2) if rho > 0 else shape[0] - 2
 
         def at(table: np.ndarray, i: int = 0, shift_x: int = 0, shift_b: int = 0) -> np.ndarray:
-            return table[low + i : top + 1 + i, shift_x : wide + 1 + shift_x, shift_b : deep + 1 + shift_b]
+            return table[shift_b : deep + 1 + shift_b, shift_x : wide + 1 + shift_x, low + i : top + 1 + i]
 
         held = np.zeros(shape)
         if rho > 0:
             # Hold for all h quarters: an unprompted purchase, or silence that adds one to b.
             at(held)[...] = discount * (at(held_buy) * (margin + at(best[h - 1], 1, 1)) + at(held_silent) * at(hold[h - 1], 1, 0, 1))
         hold.append(held)
-        # Mail J quarters, then hold: accumulate the plan values along the mailed silent stretch.
+        # Mail J quarters, then hold: a plan's value is its known part plus the discounted values
+        # after a first purchase in each mailed quarter (from earlier tables) plus the hold tail.
         chosen = at(held).copy()
-        plan = np.zeros_like(chosen)
-        no_purchase_yet = np.ones_like(chosen)
-        step = np.empty_like(chosen)
-        spare = np.empty_like(chosen)
+        after_purchases = np.zeros_like(chosen)
+        candidate = np.empty_like(chosen)
         for i in range(1, h + 1):
-            first_purchase = at(purchase_after[i])
-            np.add(at(best[h - i], i, 1), margin, out=step)
-            step *= first_purchase
-            np.multiply(no_purchase_yet, piece_cost, out=spare)
-            step -= spare
-            step *= discount**i
-            plan += step
-            no_purchase_yet -= first_purchase
+            np.multiply(at(purchase_after[i]), at(best[h - i], i, 1), out=candidate)
+            after_purchases += candidate
+            np.add(after_purchases, at(known_part[i]), out=candidate)
             if rho > 0 and i < h:
-                np.multiply(at(silent_after[i]), at(hold[h - i], i), out=spare)
-                spare *= discount**i
-                spare += plan
-                np.maximum(chosen, spare, out=chosen)
-            else:
-                np.maximum(chosen, plan, out=chosen)
+                candidate += at(silent_after[i]) * at(hold[h - i], i)
+            np.maximum(chosen, candidate, out=chosen)
         values = np.zeros(shape)
         at(values)[...] = np.where(np.isfinite(at(log_moment)), chosen, 0.0)
         best.append(values)
@@ -450,19 +454,19 @@ def _plan_values(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, 
     rewards earned on ``alive``). Returns an array (states, horizon + 1).
     """
     d, margin, cost = program.discount, program.margin, program.piece_cost
-    here = program.log_moment[n, x, b]
+    here = program.log_moment[b, x, n]
     values = np.empty((len(n), horizon + 1))
-    values[:, 0] = alive * (program.hold[horizon][n, x, b] if horizon < len(program.hold) else _hold_value(program, n, x, b, horizon))
+    values[:, 0] = alive * (program.hold[horizon][b, x, n] if horizon < len(program.hold) else _hold_value(program, n, x, b, horizon))
     plan = np.zeros(len(n))
     no_purchase_yet = total.copy()
     for i in range(1, horizon + 1):
-        first_purchase = alive * np.exp(program.log_alive[n, i] + program.log_moment[n + i, x + 1, b] - here)
-        after = program.best[horizon - i][n + i, x + 1, b] if horizon - i < len(program.best) else 0.0
+        first_purchase = alive * np.exp(program.log_alive[n, i] + program.log_moment[b, x + 1, n + i] - here)
+        after = program.best[horizon - i][b, x + 1, n + i] if horizon - i < len(program.best) else 0.0
         plan += d**i * (first_purchase * (margin + after) - cost * no_purchase_yet)
         no_purchase_yet = no_purchase_yet - first_purchase
         if i < horizon:
-            silent_alive = alive * np.exp(program.log_alive[n, i] + program.log_moment[n + i, x, b] - here)
-            values[:, i] = plan + d**i * silent_alive * program.hold[horizon - i][n + i, x, b]
+            silent_alive = alive * np.exp(program.log_alive[n, i] + program.log_moment[b, x, n + i] - here)
+            values[:, i] = plan + d**i * silent_alive * program.hold[horizon - i][b, x, n + i]
         else:
             values[:, i] = plan
     return values
@@ -473,10 +477,10 @@ def _hold_value(program: Program, n, x, b, horizon):
     if program.rho == 0:
         return np.zeros(len(n))
     d, rho = program.discount, program.rho
-    here = program.log_moment[n, x, b]
-    buy = rho * np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x + 1, b] - here)
-    silent = np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x, b + 1] - here)
-    return d * (buy * (program.margin + program.best[horizon - 1][n + 1, x + 1, b]) + silent * program.hold[horizon - 1][n + 1, x, b + 1])
+    here = program.log_moment[b, x, n]
+    buy = rho * np.exp(program.log_alive[n, 1] + program.log_moment[b, x + 1, n + 1] - here)
+    silent = np.exp(program.log_alive[n, 1] + program.log_moment[b + 1, x, n + 1] - here)
+    return d * (buy * (program.margin + program.best[horizon - 1][b, x + 1, n + 1]) + silent * program.hold[horizon - 1][b + 1, x, n + 1])
 
 
 def decide(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, alive: np.ndarray) -> Decisions:
@@ -497,14 +501,14 @@ def decide(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, alive:
         return Decisions(mail_value, hold_value, mail_quarters)
     # Hold this quarter: an unprompted purchase (rho p) or silence, then the best "mail J, then hold".
     d, rho = program.discount, program.rho
-    here = program.log_moment[n, x, b_state]
+    here = program.log_moment[b_state, x, n]
     if rho > 0:
-        buy = alive * rho * np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x + 1, b_state] - here)
-        silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x, b_state + 1] - here)
+        buy = alive * rho * np.exp(program.log_alive[n, 1] + program.log_moment[b_state, x + 1, n + 1] - here)
+        silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[b_state + 1, x, n + 1] - here)
         later = _plan_values(program, n + 1, x, b_state + 1, silent_alive, 1.0 - buy, horizon - 1).max(axis=1)
-        hold_value = d * buy * (program.margin + program.best[horizon - 1][n + 1, x + 1, b_state]) + d * later
+        hold_value = d * buy * (program.margin + program.best[horizon - 1][b_state, x + 1, n + 1]) + d * later
     else:
-        silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[n + 1, x, b_state + 1] - here)
+        silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[b_state + 1, x, n + 1] - here)
         later = _plan_values(program, n + 1, x, b_state + 1, silent_alive, np.ones_like(alive), horizon - 1).max(axis=1)
         hold_value = d * later
     return Decisions(mail_value, hold_value, mail_quarters)
@@ -688,16 +692,16 @@ def mail_value_with(program: Program, n, x, b, alive, response: float, piece_cos
     if rho >= 1.0 and response != 1.0:
         raise InputError("with unmailed_response 1 a held customer responds like a mailed one, so versions with response below 1 cannot be valued")
     mix = 1.0 if rho >= 1.0 else (response - rho) / (1.0 - rho)
-    here = program.log_moment[n, x, b]
+    here = program.log_moment[b, x, n]
     survive = np.exp(program.log_alive[n, 1])
-    buy = alive * survive * response * np.exp(program.log_moment[n + 1, x + 1, b] - here)
+    buy = alive * survive * response * np.exp(program.log_moment[b, x + 1, n + 1] - here)
     horizon = program.horizon
-    after_purchase = program.best[horizon - 1][n + 1, x + 1, b] if horizon > 1 else 0.0
+    after_purchase = program.best[horizon - 1][b, x + 1, n + 1] if horizon > 1 else 0.0
     value = d * (buy * (margin + after_purchase) - piece_cost)
     if horizon == 1:
         return value
-    mailed_part = alive * survive * mix * np.exp(program.log_moment[n + 1, x, b] - here)
-    held_part = alive * survive * (1.0 - mix) * np.exp(program.log_moment[n + 1, x, b + 1] - here)
+    mailed_part = alive * survive * mix * np.exp(program.log_moment[b, x, n + 1] - here)
+    held_part = alive * survive * (1.0 - mix) * np.exp(program.log_moment[b + 1, x, n + 1] - here)
     plans = _plan_values(program, n + 1, x, b, mailed_part, 1.0 - buy, horizon - 1)
     if mix != 1.0:
         plans = plans + _plan_values(program, n + 1, x, b + 1, held_part, np.zeros_like(alive), horizon - 1)
