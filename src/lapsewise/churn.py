@@ -32,7 +32,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import optimize, special
+from scipy import optimize, sparse, special
 
 from lapsewise.panel import Histories, compress_arrays
 
@@ -129,60 +129,82 @@ class ChurnFit:
 class Expansion:
     """Distinct histories laid out over every quarter through which the customer may have stayed alive.
 
-    One cell per (history, tau) with ``t_x <= tau <= n``, cells of a history
-    contiguous and starting at ``row_start``. ``cell_theta`` indexes the vector
-    ``[log E(1-theta)^t theta for t = 0..M] + [log E(1-theta)^t for t = 0..M]``
-    (death after tau when tau < n, alive through n when tau = n); ``cell_triple``
-    indexes rows of ``triples`` = (purchases, mailed silent, unmailed silent) up
-    to tau. ``alive_triple`` and ``next_triple`` index (x, a_n, b_n) and
-    (x + 1, a_n, b_n), used for the posterior.
+    A history's likelihood is a sum of terms, one per quarter ``tau`` with
+    ``t_x <= tau <= n`` through which the customer may have stayed alive. A term
+    depends only on its *state*: the theta factor (death after tau, or alive
+    through n) and the (purchases, mailed silent, unmailed silent) counts up to
+    tau. Few states occur however many customers there are, so the likelihood is a
+    sparse histories-by-states matrix ``terms`` (a 1 where a history has a state)
+    times the vector of the states' term values.
+
+    ``state_theta`` indexes ``[log E(1-theta)^t theta for t = 0..M] + [log E(1-theta)^t for t = 0..M]``;
+    ``state_triple`` indexes rows of ``triples``; ``alive_triple`` and
+    ``next_triple`` index (x, a_n, b_n) and (x + 1, a_n, b_n), used for the posterior.
     """
 
     histories: Histories
-    cell_row: np.ndarray
-    row_start: np.ndarray
-    cell_theta: np.ndarray
-    cell_triple: np.ndarray
+    terms: sparse.csr_matrix
+    state_theta: np.ndarray
+    state_triple: np.ndarray
     triples: np.ndarray
     alive_triple: np.ndarray
     next_triple: np.ndarray
     max_quarter: int
 
+    @property
+    def cells(self) -> int:
+        return int(self.terms.nnz)
+
 
 def expand(histories: Histories) -> Expansion:
-    """Lay the histories out over their possible death quarters (done once per fit, not per evaluation)."""
+    """Lay the histories out over their possible death quarters (done once per fit, not per evaluation).
+
+    Triples (x, a, b) and states are found as integer keys, so the work is a few
+    passes over the cells and a sort of small integers.
+    """
     silent = histories.silent_quarters
     width = int(silent.max()) + 1
-    j = np.arange(width)[None, :]
+    j = np.arange(width, dtype=np.int32)[None, :]
     valid = j <= silent[:, None]
-    after = histories.after_last.astype(np.int64)
+    after = histories.after_last.astype(np.int32)
     if after.shape[1] < width - 1:
         after = np.pad(after, ((0, 0), (0, width - 1 - after.shape[1])))
-    mailed_after = np.concatenate([np.zeros((len(silent), 1), dtype=np.int64), np.cumsum(after[:, : width - 1], axis=1)], axis=1)
-    a = histories.mailed_silent[:, None] + mailed_after
-    b = histories.unmailed_silent[:, None] + j - mailed_after
-    x = np.broadcast_to(histories.x[:, None], a.shape)
-    rows = np.stack([x[valid], a[valid], b[valid]], axis=1)
+    mailed_after = np.zeros((len(silent), width), dtype=np.int32)
+    np.cumsum(after[:, : width - 1], axis=1, out=mailed_after[:, 1:])
+    a = histories.mailed_silent[:, None].astype(np.int32) + mailed_after
+    b = histories.unmailed_silent[:, None].astype(np.int32) + j - mailed_after
     last = (np.arange(len(silent)), silent)
-    alive = np.stack([histories.x, a[last], b[last]], axis=1)
-    following = alive + np.array([1, 0, 0])
-    triples, inverse = np.unique(np.concatenate([rows, alive, following]), axis=0, return_inverse=True)
+    a_n, b_n = a[last].astype(np.int64), b[last].astype(np.int64)
+    x = histories.x.astype(np.int64)
+    base = int(max(x.max() + 2, a.max() + 1, b.max() + 1))
+
+    def key(x_, a_, b_):
+        return (x_ * base + a_) * base + b_
+
+    cell_key = key(np.broadcast_to(x[:, None], a.shape)[valid], a[valid].astype(np.int64), b[valid].astype(np.int64))
+    keys = np.concatenate([cell_key, key(x, a_n, b_n), key(x + 1, a_n, b_n)])
+    unique_keys, inverse = np.unique(keys, return_inverse=True)
     inverse = inverse.ravel()
+    triples = np.stack([unique_keys // (base * base), unique_keys // base % base, unique_keys % base], axis=1)
+    cells = len(cell_key)
+    cell_triple = inverse[:cells]
+
     max_quarter = int(histories.n.max()) + 1
-    tau = (histories.t_x[:, None] + j)[valid]
-    cell_row = np.broadcast_to(np.arange(len(silent))[:, None], a.shape)[valid]
-    alive_cell = tau == histories.n[cell_row]
-    cell_theta = np.where(alive_cell, max_quarter + 1 + tau, tau)
-    row_start = np.concatenate([[0], np.cumsum(silent + 1)[:-1]])
+    tau = (histories.t_x[:, None].astype(np.int32) + j)[valid]
+    cell_row = np.repeat(np.arange(len(silent)), silent + 1)
+    cell_theta = np.where(tau == histories.n[cell_row], max_quarter + 1 + tau, tau).astype(np.int64)
+    state_key = cell_theta * len(triples) + cell_triple
+    states, cell_state = np.unique(state_key, return_inverse=True)
+    indptr = np.concatenate([[0], np.cumsum(silent + 1)])
+    terms = sparse.csr_matrix((np.ones(cells), cell_state.ravel(), indptr), shape=(len(silent), len(states)))
     return Expansion(
         histories=histories,
-        cell_row=cell_row,
-        row_start=row_start,
-        cell_theta=cell_theta,
-        cell_triple=inverse[: len(rows)],
+        terms=terms,
+        state_theta=states // len(triples),
+        state_triple=states % len(triples),
         triples=triples,
-        alive_triple=inverse[len(rows) : len(rows) + len(silent)],
-        next_triple=inverse[len(rows) + len(silent) :],
+        alive_triple=inverse[cells : cells + len(silent)],
+        next_triple=inverse[cells + len(silent) :],
         max_quarter=max_quarter,
     )
 
@@ -261,11 +283,22 @@ def _log_unmailed_factor(hist: Histories, rho: float | None) -> np.ndarray:
         return np.where(hist.x_unmailed > 0, hist.x_unmailed * np.log(rho), 0.0)
 
 
-def _row_logsumexp(expansion: Expansion, cells: np.ndarray) -> np.ndarray:
-    peak = np.maximum.reduceat(cells, expansion.row_start)
-    peak = np.where(np.isfinite(peak), peak, 0.0)
+def _history_sums(expansion: Expansion, values: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """log of each history's sum of exp(state values), and the scaled pieces needed for the gradient.
+
+    All of a history's states share its x, so the values are shifted by the largest
+    value of their x before exponentiating: no term that matters can underflow.
+    Returns (log sums, exp of shifted state values, scaled sums).
+    """
+    hist = expansion.histories
+    state_x = expansion.triples[expansion.state_triple, 0]
+    shift = np.full(int(state_x.max()) + 1, -np.inf)
+    np.maximum.at(shift, state_x, values)
+    shift = np.where(np.isfinite(shift), shift, 0.0)
+    scaled = np.exp(values - shift[state_x])
+    sums = expansion.terms @ scaled
     with np.errstate(divide="ignore"):
-        return np.log(np.add.reduceat(np.exp(cells - peak[expansion.cell_row]), expansion.row_start)) + peak
+        return np.log(sums) + shift[hist.x], scaled, sums
 
 
 def _evaluate(expansion: Expansion, params: tuple, gradient: bool = False):
@@ -275,20 +308,21 @@ def _evaluate(expansion: Expansion, params: tuple, gradient: bool = False):
     if not gradient:
         moments = log_p_moments(expansion.triples, alpha, beta, rho)
         theta = _theta_vector(gamma, delta, expansion.max_quarter)
-        cells = theta[expansion.cell_theta] + moments[expansion.cell_triple]
-        return _row_logsumexp(expansion, cells) + _log_unmailed_factor(hist, rho), moments
+        log_sums, _, _ = _history_sums(expansion, theta[expansion.state_theta] + moments[expansion.state_triple])
+        return log_sums + _log_unmailed_factor(hist, rho), moments
     moments, d_moments = log_p_moments(expansion.triples, alpha, beta, rho, gradient=True)
     theta, d_theta = _theta_vector(gamma, delta, expansion.max_quarter, gradient=True)
-    cells = theta[expansion.cell_theta] + moments[expansion.cell_triple]
-    row = _row_logsumexp(expansion, cells)
-    weight = np.exp(cells - row[expansion.cell_row]) * hist.count[expansion.cell_row]
-    by_theta = np.bincount(expansion.cell_theta, weights=weight, minlength=len(theta))
-    by_triple = np.bincount(expansion.cell_triple, weights=weight, minlength=len(moments))
+    log_sums, scaled, sums = _history_sums(expansion, theta[expansion.state_theta] + moments[expansion.state_triple])
+    # d log L_h / d value_s = terms[h, s] * exp(value_s) / L_h; weighted by the customers per history.
+    with np.errstate(divide="ignore", invalid="ignore"):
+        weight = scaled * (expansion.terms.T @ np.where(sums > 0, hist.count / sums, 0.0))
+    by_theta = np.bincount(expansion.state_theta, weights=weight, minlength=len(theta))
+    by_triple = np.bincount(expansion.state_triple, weights=weight, minlength=len(moments))
     d_alpha, d_beta, d_rho = by_triple @ d_moments
     d_gamma, d_delta = by_theta @ d_theta
     if rho is not None:
         d_rho += float(np.dot(hist.count, hist.x_unmailed)) / rho
-    return row + _log_unmailed_factor(hist, rho), moments, np.array([d_alpha, d_beta, d_gamma, d_delta, d_rho])
+    return log_sums + _log_unmailed_factor(hist, rho), moments, np.array([d_alpha, d_beta, d_gamma, d_delta, d_rho])
 
 
 def history_log_likelihood(expansion: Expansion, params: tuple[float, float, float, float, float | None]) -> np.ndarray:

@@ -65,10 +65,12 @@ def require_file(path: str | Path, missing_hint: str, kind: str = "a CSV or Parq
     return path
 
 
-def read_table(path: str | Path) -> tuple[pd.DataFrame, bool, dict[str, int]]:
+def read_table(path: str | Path, dictionary: tuple[str, ...] = ()) -> tuple[pd.DataFrame, bool, dict[str, int]]:
     """Read a CSV or Parquet file into a DataFrame with its columns as found.
 
-    CSV columns come back as text; Parquet columns keep their types.
+    CSV columns come back as text; Parquet columns keep their types, and the
+    ``dictionary`` columns (ids) come back as categoricals, so that a file with
+    tens of millions of rows holds each distinct id once.
 
     Returns
     -------
@@ -81,15 +83,16 @@ def read_table(path: str | Path) -> tuple[pd.DataFrame, bool, dict[str, int]]:
     with open(path, "rb") as handle:
         head = handle.read(_SNIFF_BYTES)
     if head[:4] == b"PAR1":
-        return _read_parquet(path), False, {}
+        return _read_parquet(path, dictionary), False, {}
     return _read_csv(path, head)
 
 
-def _read_parquet(path: Path) -> pd.DataFrame:
+def _read_parquet(path: Path, dictionary: tuple[str, ...] = ()) -> pd.DataFrame:
     import pyarrow.parquet as pq
 
     try:
-        table = pq.read_table(path)
+        names = pq.read_schema(path).names
+        table = pq.read_table(path, read_dictionary=[c for c in names if c in dictionary or c.strip() in dictionary])
     except Exception as exc:  # pyarrow raises several types for damaged files
         raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]}); export it again") from None
     frame = table.to_pandas()
@@ -219,7 +222,7 @@ def _parse_dates(name: str, column_name: str, column: pd.Series, is_csv: bool, k
         if missing.any():
             row = _row_label(np.flatnonzero(missing)[0], is_csv)
             raise InputError(f"{name}, row {row}, column {column_name}: the date is blank; fill it in or remove the row")
-        _check_date_range(name, column_name, values, keep, is_csv, np.asarray(values.astype(str)))
+        _check_date_range(name, column_name, values, keep, is_csv, lambda row: str(column.iloc[row]))
         return values.values.astype("datetime64[ns]")
     text = column.astype(str).str.strip().where(keep, "1970-01-01")
     parsed = pd.to_datetime(text, format="ISO8601", errors="coerce", utc=True)
@@ -234,19 +237,17 @@ def _parse_dates(name: str, column_name: str, column: pd.Series, is_csv: bool, k
             f"{name}, row {row}, column {column_name}: '{shown[:40]}' is not a date; write dates as YYYY-MM-DD"
         )
     values = pd.DatetimeIndex(parsed.dt.tz_convert(None))
-    _check_date_range(name, column_name, values, keep, is_csv, text.to_numpy())
+    _check_date_range(name, column_name, values, keep, is_csv, lambda row: str(text.iloc[row]))
     return values.values.astype("datetime64[ns]")
 
 
-def _check_date_range(
-    name: str, column_name: str, values: pd.DatetimeIndex, keep: np.ndarray, is_csv: bool, shown: np.ndarray
-) -> None:
+def _check_date_range(name: str, column_name: str, values: pd.DatetimeIndex, keep: np.ndarray, is_csv: bool, shown) -> None:
     """Dates outside what datetime64[ns] holds (about 1678 to 2261) would wrap around silently; refuse them."""
     outside = np.asarray((values < pd.Timestamp.min) | (values > pd.Timestamp.max)) & keep
     if outside.any():
         first = np.flatnonzero(outside)[0]
         raise InputError(
-            f"{name}, row {_row_label(first, is_csv)}, column {column_name}: '{str(shown[first])[:40]}' "
+            f"{name}, row {_row_label(first, is_csv)}, column {column_name}: '{shown(first)[:40]}' "
             f"is outside the years {pd.Timestamp.min.year + 1} to {pd.Timestamp.max.year - 1}; fix or remove the row"
         )
 
@@ -303,7 +304,7 @@ def load_orders(
     rows with a blank id and rows with a blank amount are left out and counted.
     """
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, (id_column,))
     _require_columns(name, frame, {id_column: "--id-column", date_column: "--date-column", amount_column: "--amount-column"})
     _count_extra_columns(frame, [id_column, date_column, amount_column], repairs)
     duplicated = np.asarray(frame.duplicated(keep="first"))
@@ -338,7 +339,7 @@ def load_orders(
 def load_mailings(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
     """Read the mailings file: one row per piece mailed (``customer_id``, ``mail_date``, optional ``version``)."""
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, (id_column,))
     _require_columns(name, frame, {id_column: "--id-column", MAIL_DATE_COLUMN: ""})
     used = [id_column, MAIL_DATE_COLUMN] + ([VERSION_COLUMN] if VERSION_COLUMN in frame.columns else [])
     _count_extra_columns(frame, used, repairs)
@@ -347,14 +348,15 @@ def load_mailings(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
     dates = _parse_dates(name, MAIL_DATE_COLUMN, frame[MAIL_DATE_COLUMN], is_csv, keep)
     columns = {ID_COLUMN: ids[keep], MAIL_DATE_COLUMN: dates[keep]}
     if VERSION_COLUMN in frame.columns:
-        columns[VERSION_COLUMN] = frame[VERSION_COLUMN].astype(str).str.strip().to_numpy()[keep]
+        # Labels, held like ids: each distinct version once, spaces trimmed.
+        columns[VERSION_COLUMN] = _clean_ids(name, frame[VERSION_COLUMN], {})[keep]
     return Loaded(name, pd.DataFrame(columns).reset_index(drop=True), repairs)
 
 
 def load_id_list(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
     """Read a list of customer ids, such as a suppression list (opt-outs, deceased, undeliverable)."""
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, (id_column,))
     _require_columns(name, frame, {id_column: "--id-column"})
     _count_extra_columns(frame, [id_column], repairs)
     ids = _clean_ids(name, frame[id_column], repairs)
@@ -366,7 +368,7 @@ def load_id_list(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
 def load_attributes(path: str | Path, column: str, id_column: str = ID_COLUMN) -> Loaded:
     """Read a customer attributes file and keep one text column of it, one row per customer."""
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, (id_column,))
     _require_columns(name, frame, {id_column: "--id-column", column: "--segment-column"})
     ids = _clean_ids(name, frame[id_column], repairs)
     keep = _drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
@@ -429,7 +431,7 @@ def load_quarterly(path: str | Path, id_column: str = ID_COLUMN) -> tuple[Loaded
     Without a ``mailed`` column every quarter counts as mailed.
     """
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, (id_column,))
     _require_columns(name, frame, {id_column: "--id-column", QUARTER_COLUMN: "", PURCHASED_COLUMN: "", SPEND_COLUMN: ""})
     has_mailed = MAILED_COLUMN in frame.columns
     _count_extra_columns(frame, [id_column, QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN] + ([MAILED_COLUMN] if has_mailed else []), repairs)

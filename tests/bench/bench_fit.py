@@ -246,7 +246,7 @@ def run_stages(meter: Meter, paths: dict[str, Path], as_of: str, upto: str | Non
     if done("summarize"):
         return out
     expansion = meter.run("expand (inside churn fit)", churn.expand, out["histories"])
-    out["cells"] = len(expansion.cell_row)
+    out["cells"] = expansion.cells
     if done("expand"):
         out["expansion"] = expansion
         return out
@@ -398,7 +398,7 @@ def main() -> None:
         "customers in the panel": f"{panel.customers:,} ({panel.purchased.shape[1]} quarter columns)",
         "order rows / mailing rows": f"{meta['order_rows']:,} / {meta['mailing_rows']:,}",
         "distinct histories": f"{histories.size:,} ({panel.customers / histories.size:.1f} customers each on average)",
-        "likelihood cells (len(expand(histories).cell_row))": f"{cells:,}",
+        "likelihood cells (expand(histories).cells)": f"{cells:,}",
         "churn gradient evaluations": f"{out['gradient_calls']}",
         "repeat customers in the spend fit": f"{out['spend'].customers:,}",
         "floor (both files)": f"{floor:.2f} s",
