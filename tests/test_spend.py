@@ -310,3 +310,16 @@ def test_undefined_numbers_serialise_as_none():
     assert math.isnan(again.frequency_value_correlation)
     assert again.std_errors["p"] is None
     assert again.to_dict() == data
+
+
+def test_summed_likelihood_by_distinct_x_equals_the_per_customer_sum():
+    # The fit evaluates the likelihood through per-x sums; they must equal the plain per-customer sums.
+    from lapsewise.spend import _Sums, _log_likelihood_gradient
+
+    rng = np.random.default_rng(17)
+    x = rng.integers(1, 12, 5000).astype(float)
+    m_x = rng.gamma(3.0, 15.0, 5000)
+    for p, q, gamma in [(6.0, 4.0, 22.5), (0.7, 1.3, 3.0), (25.0, 9.0, 140.0)]:
+        value, gradient = _Sums.of(x, m_x).value_and_gradient(p, q, gamma)
+        assert np.isclose(value, spend_log_likelihood(p, q, gamma, x, m_x).sum(), rtol=1e-11)
+        np.testing.assert_allclose(gradient, _log_likelihood_gradient(p, q, gamma, x, m_x), rtol=1e-9)

@@ -39,6 +39,7 @@ from lapsewise.panel import Histories, compress_arrays
 PARAMETERS = ("alpha", "beta", "gamma", "delta", "rho")
 _LOG_BOUNDS = (math.log(1e-3), math.log(1e4))
 _RHO_BOUNDS = (1e-6, 1.0 - 1e-9)
+_SCOUT_STEPS = 6
 _STARTS = (
     (1.0, 1.0, 1.0, 1.0, 0.5),
     (0.5, 2.0, 0.5, 3.0, 0.3),
@@ -156,55 +157,72 @@ class Expansion:
         return int(self.terms.nnz)
 
 
+def _codes(keys: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Sorted distinct keys and each key's index among them (``np.unique`` with ``return_inverse``).
+
+    Keys are small non-negative integers (below ``size``), so a table of that size
+    replaces sorting when it fits comfortably in memory.
+    """
+    if size > 50_000_000:
+        distinct, inverse = np.unique(keys, return_inverse=True)
+        return distinct, inverse.ravel()
+    present = np.zeros(size, dtype=bool)
+    present[keys] = True
+    index = (np.cumsum(present) - 1).astype(np.int32 if size < 2**31 else np.int64)
+    return np.flatnonzero(present), index[keys]
+
+
 def expand(histories: Histories) -> Expansion:
     """Lay the histories out over their possible death quarters (done once per fit, not per evaluation).
 
-    Triples (x, a, b) and states are found as integer keys, so the work is a few
-    passes over the cells and a sort of small integers.
+    The cells of a history (one per quarter it may have stayed alive through) are
+    contiguous; triples (x, a, b) and states are found as integer keys, so the work
+    is a few passes over the cells and no sorting of rows.
     """
     silent = histories.silent_quarters
+    rows = len(silent)
     width = int(silent.max()) + 1
-    j = np.arange(width, dtype=np.int32)[None, :]
-    valid = j <= silent[:, None]
-    after = histories.after_last.astype(np.int32)
-    if after.shape[1] < width - 1:
-        after = np.pad(after, ((0, 0), (0, width - 1 - after.shape[1])))
-    mailed_after = np.zeros((len(silent), width), dtype=np.int32)
-    np.cumsum(after[:, : width - 1], axis=1, out=mailed_after[:, 1:])
-    a = histories.mailed_silent[:, None].astype(np.int32) + mailed_after
-    b = histories.unmailed_silent[:, None].astype(np.int32) + j - mailed_after
-    last = (np.arange(len(silent)), silent)
-    a_n, b_n = a[last].astype(np.int64), b[last].astype(np.int64)
-    x = histories.x.astype(np.int64)
+    indptr = np.zeros(rows + 1, dtype=np.int64)
+    np.cumsum(silent + 1, out=indptr[1:])
+    cells = int(indptr[-1])
+    # Mailed silent quarters after the last purchase, cumulated: column j counts quarters t_x+1 .. t_x+j.
+    mailed_after = np.zeros((rows, width), dtype=np.int32)
+    np.cumsum(histories.after_last[:, : width - 1], axis=1, out=mailed_after[:, 1:])
+    # Cell arrays are int32 (a million customers give tens of millions of cells).
+    cell_row = np.repeat(np.arange(rows, dtype=np.int32), silent + 1)
+    step = np.arange(cells, dtype=np.int32) - indptr[:-1].astype(np.int32)[cell_row]  # j: quarters after the last purchase
+    mailed = mailed_after.ravel()[cell_row.astype(np.int64) * width + step]
+    x = histories.x.astype(np.int32)
+    a = histories.mailed_silent.astype(np.int32)[cell_row] + mailed
+    b = histories.unmailed_silent.astype(np.int32)[cell_row] + step - mailed
+    last = indptr[1:] - 1
+    a_n, b_n = a[last], b[last]
     base = int(max(x.max() + 2, a.max() + 1, b.max() + 1))
+    wide = np.int64 if base**3 >= 2**31 else np.int32
 
     def key(x_, a_, b_):
-        return (x_ * base + a_) * base + b_
+        return (x_.astype(wide) * base + a_) * base + b_
 
-    cell_key = key(np.broadcast_to(x[:, None], a.shape)[valid], a[valid].astype(np.int64), b[valid].astype(np.int64))
-    keys = np.concatenate([cell_key, key(x, a_n, b_n), key(x + 1, a_n, b_n)])
-    unique_keys, inverse = np.unique(keys, return_inverse=True)
-    inverse = inverse.ravel()
-    triples = np.stack([unique_keys // (base * base), unique_keys // base % base, unique_keys % base], axis=1)
-    cells = len(cell_key)
+    keys = np.concatenate([key(x[cell_row], a, b), key(x, a_n, b_n), key(x + 1, a_n, b_n)])
+    unique_keys, inverse = _codes(keys, base**3)
+    triples = np.stack([unique_keys // (base * base), unique_keys // base % base, unique_keys % base], axis=1).astype(np.int64)
     cell_triple = inverse[:cells]
 
     max_quarter = int(histories.n.max()) + 1
-    tau = (histories.t_x[:, None].astype(np.int32) + j)[valid]
-    cell_row = np.repeat(np.arange(len(silent)), silent + 1)
-    cell_theta = np.where(tau == histories.n[cell_row], max_quarter + 1 + tau, tau).astype(np.int64)
-    state_key = cell_theta * len(triples) + cell_triple
-    states, cell_state = np.unique(state_key, return_inverse=True)
-    indptr = np.concatenate([[0], np.cumsum(silent + 1)])
-    terms = sparse.csr_matrix((np.ones(cells), cell_state.ravel(), indptr), shape=(len(silent), len(states)))
+    cell_theta = histories.t_x.astype(np.int32)[cell_row] + step  # tau: death after tau ...
+    cell_theta[last] += max_quarter + 1  # ... except the last cell of a history: alive through n
+    state_count = (2 * max_quarter + 2) * len(triples)
+    state_key = cell_theta.astype(np.int64 if state_count >= 2**31 else np.int32) * len(triples) + cell_triple
+    states, cell_state = _codes(state_key, state_count)
+    terms = sparse.csr_matrix((np.ones(cells), cell_state.astype(np.int32), indptr.astype(np.int32)), shape=(rows, len(states)))
     return Expansion(
         histories=histories,
         terms=terms,
         state_theta=states // len(triples),
         state_triple=states % len(triples),
         triples=triples,
-        alive_triple=inverse[cells : cells + len(silent)],
-        next_triple=inverse[cells + len(silent) :],
+        alive_triple=inverse[cells : cells + rows],
+        next_triple=inverse[cells + rows :],
         max_quarter=max_quarter,
     )
 
@@ -352,8 +370,8 @@ def _unpack(theta: np.ndarray, mailing_history: bool) -> tuple[float, float, flo
 def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     """Maximum-likelihood fit of the hidden-churn model on compressed histories.
 
-    Several deterministic starts are run with L-BFGS-B on log-parameters (rho on
-    [0, 1] directly) and the best is kept. Standard errors come from a central
+    Several deterministic starts each take a few L-BFGS-B steps on log-parameters
+    (rho on [0, 1] directly); the best of them is followed to convergence. Standard errors come from a central
     finite-difference Hessian of the log-likelihood in the natural parameters.
     The cost grows with the number of distinct histories, not customers.
 
@@ -377,14 +395,15 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
         return -value * scale, -chain * scale
 
     bounds = [_LOG_BOUNDS] * 4 + ([_RHO_BOUNDS] if mailing_history else [])
-    best = None
+    # Every start takes a few steps; the most promising one is then followed to convergence.
+    scouts = []
     for start in _STARTS:
         theta0 = np.log(np.array(start[:4]))
         if mailing_history:
             theta0 = np.append(theta0, start[4])
-        result = optimize.minimize(objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": 1000, "ftol": 1e-13, "gtol": 1e-8})
-        if best is None or result.fun < best.fun:
-            best = result
+        scouts.append(optimize.minimize(objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": _SCOUT_STEPS}))
+    lead = min(scouts, key=lambda result: result.fun)
+    best = optimize.minimize(objective, lead.x, jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": 1000, "ftol": 1e-13, "gtol": 1e-8})
     params = _unpack(best.x, mailing_history)
     names = PARAMETERS if mailing_history else PARAMETERS[:4]
     on_bound = _on_bounds(best.x, bounds, names)

@@ -65,12 +65,11 @@ def require_file(path: str | Path, missing_hint: str, kind: str = "a CSV or Parq
     return path
 
 
-def read_table(path: str | Path, dictionary: tuple[str, ...] = ()) -> tuple[pd.DataFrame, bool, dict[str, int]]:
+def read_table(path: str | Path) -> tuple[pd.DataFrame, bool, dict[str, int]]:
     """Read a CSV or Parquet file into a DataFrame with its columns as found.
 
-    CSV columns come back as text; Parquet columns keep their types, and the
-    ``dictionary`` columns (ids) come back as categoricals, so that a file with
-    tens of millions of rows holds each distinct id once.
+    CSV columns come back as text; Parquet columns keep their types (text as
+    Arrow-backed strings, which pandas factorizes without making Python objects).
 
     Returns
     -------
@@ -83,16 +82,15 @@ def read_table(path: str | Path, dictionary: tuple[str, ...] = ()) -> tuple[pd.D
     with open(path, "rb") as handle:
         head = handle.read(_SNIFF_BYTES)
     if head[:4] == b"PAR1":
-        return _read_parquet(path, dictionary), False, {}
+        return _read_parquet(path), False, {}
     return _read_csv(path, head)
 
 
-def _read_parquet(path: Path, dictionary: tuple[str, ...] = ()) -> pd.DataFrame:
+def _read_parquet(path: Path) -> pd.DataFrame:
     import pyarrow.parquet as pq
 
     try:
-        names = pq.read_schema(path).names
-        table = pq.read_table(path, read_dictionary=[c for c in names if c in dictionary or c.strip() in dictionary])
+        table = pq.read_table(path)
     except Exception as exc:  # pyarrow raises several types for damaged files
         raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]}); export it again") from None
     frame = table.to_pandas()
@@ -191,9 +189,12 @@ def _require_columns(name: str, frame: pd.DataFrame, wanted: dict[str, str]) -> 
             raise InputError(f"{name}: no column '{column}' (found {found}){hint}")
 
 
-def _clean_ids(name: str, column: pd.Series, repairs: dict[str, int]) -> pd.Categorical:
-    """Text ids with surrounding spaces removed, as a Categorical; blank ids become missing."""
-    codes, uniques = pd.factorize(column, use_na_sentinel=True)
+def _clean_ids(name: str, column: pd.Series, repairs: dict[str, int], factorized: tuple | None = None) -> pd.Categorical:
+    """Text ids with surrounding spaces removed, as a Categorical; blank ids become missing.
+
+    ``factorized`` is the column's ``pd.factorize`` result when the caller already has it.
+    """
+    codes, uniques = factorized if factorized is not None else pd.factorize(column, use_na_sentinel=True)
     text = pd.Index(uniques).astype(str)
     stripped = text.str.strip()
     blank_uniques = np.asarray((stripped == "") | (stripped.str.lower().isin(["nan", "none", "null"])))
@@ -201,11 +202,12 @@ def _clean_ids(name: str, column: pd.Series, repairs: dict[str, int]) -> pd.Cate
     if padded_uniques.any():
         padded_rows = int(np.isin(codes, np.flatnonzero(padded_uniques)).sum())
         repairs["ids with surrounding spaces trimmed"] = padded_rows
+    if not padded_uniques.any() and not blank_uniques.any():
+        # The common case: every id is already clean, so the codes stand as they are.
+        return pd.Categorical.from_codes(codes, categories=pd.Index(np.asarray(text, dtype=object), dtype=object))
     clean_codes, clean_uniques = pd.factorize(stripped)
+    clean_codes = np.where(blank_uniques, -1, clean_codes)  # blank ids become missing
     row_codes = np.where(codes < 0, -1, clean_codes[np.maximum(codes, 0)])
-    blank_codes = np.unique(clean_codes[blank_uniques]) if blank_uniques.any() else np.empty(0, dtype=np.int64)
-    if len(blank_codes):
-        row_codes = np.where(np.isin(row_codes, blank_codes), -1, row_codes)
     return pd.Categorical.from_codes(row_codes, categories=pd.Index(clean_uniques, dtype=object))
 
 
@@ -243,6 +245,9 @@ def _parse_dates(name: str, column_name: str, column: pd.Series, is_csv: bool, k
 
 def _check_date_range(name: str, column_name: str, values: pd.DatetimeIndex, keep: np.ndarray, is_csv: bool, shown) -> None:
     """Dates outside what datetime64[ns] holds (about 1678 to 2261) would wrap around silently; refuse them."""
+    kept = values[keep] if not keep.all() else values
+    if len(kept) == 0 or (kept.min() >= pd.Timestamp.min and kept.max() <= pd.Timestamp.max):
+        return
     outside = np.asarray((values < pd.Timestamp.min) | (values > pd.Timestamp.max)) & keep
     if outside.any():
         first = np.flatnonzero(outside)[0]
@@ -304,13 +309,15 @@ def load_orders(
     rows with a blank id and rows with a blank amount are left out and counted.
     """
     name = str(path)
-    frame, is_csv, repairs = read_table(path, (id_column,))
+    frame, is_csv, repairs = read_table(path)
     _require_columns(name, frame, {id_column: "--id-column", date_column: "--date-column", amount_column: "--amount-column"})
     _count_extra_columns(frame, [id_column, date_column, amount_column], repairs)
-    duplicated = np.asarray(frame.duplicated(keep="first"))
+    factorized = pd.factorize(frame[id_column], use_na_sentinel=True)
+    # Exact duplicate rows, compared with the ids as their codes (one hashing of the id text, not two).
+    duplicated = np.asarray(frame.assign(**{id_column: factorized[0]}).duplicated(keep="first"))
     if duplicated.any():
         repairs["exact duplicate rows dropped"] = int(duplicated.sum())
-    ids = _clean_ids(name, frame[id_column], repairs)
+    ids = _clean_ids(name, frame[id_column], repairs, factorized)
     keep = _drop_blank_ids(name, ids, ~duplicated, repairs)
     amounts, blank_amount = _parse_amounts(name, amount_column, frame[amount_column], is_csv)
     dropped_blank = blank_amount & keep
@@ -337,9 +344,13 @@ def load_orders(
 
 
 def load_mailings(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
-    """Read the mailings file: one row per piece mailed (``customer_id``, ``mail_date``, optional ``version``)."""
+    """Read the mailings file: one row per piece mailed (``customer_id``, ``mail_date``, optional ``version``).
+
+    The ``version`` column is recognised (not counted as an extra column) but not
+    kept: the model needs only whether a customer was mailed in a quarter.
+    """
     name = str(path)
-    frame, is_csv, repairs = read_table(path, (id_column,))
+    frame, is_csv, repairs = read_table(path)
     _require_columns(name, frame, {id_column: "--id-column", MAIL_DATE_COLUMN: ""})
     used = [id_column, MAIL_DATE_COLUMN] + ([VERSION_COLUMN] if VERSION_COLUMN in frame.columns else [])
     _count_extra_columns(frame, used, repairs)
@@ -347,16 +358,13 @@ def load_mailings(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
     keep = _drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
     dates = _parse_dates(name, MAIL_DATE_COLUMN, frame[MAIL_DATE_COLUMN], is_csv, keep)
     columns = {ID_COLUMN: ids[keep], MAIL_DATE_COLUMN: dates[keep]}
-    if VERSION_COLUMN in frame.columns:
-        # Labels, held like ids: each distinct version once, spaces trimmed.
-        columns[VERSION_COLUMN] = _clean_ids(name, frame[VERSION_COLUMN], {})[keep]
     return Loaded(name, pd.DataFrame(columns).reset_index(drop=True), repairs)
 
 
 def load_id_list(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
     """Read a list of customer ids, such as a suppression list (opt-outs, deceased, undeliverable)."""
     name = str(path)
-    frame, is_csv, repairs = read_table(path, (id_column,))
+    frame, is_csv, repairs = read_table(path)
     _require_columns(name, frame, {id_column: "--id-column"})
     _count_extra_columns(frame, [id_column], repairs)
     ids = _clean_ids(name, frame[id_column], repairs)
@@ -368,7 +376,7 @@ def load_id_list(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
 def load_attributes(path: str | Path, column: str, id_column: str = ID_COLUMN) -> Loaded:
     """Read a customer attributes file and keep one text column of it, one row per customer."""
     name = str(path)
-    frame, is_csv, repairs = read_table(path, (id_column,))
+    frame, is_csv, repairs = read_table(path)
     _require_columns(name, frame, {id_column: "--id-column", column: "--segment-column"})
     ids = _clean_ids(name, frame[id_column], repairs)
     keep = _drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
@@ -431,7 +439,7 @@ def load_quarterly(path: str | Path, id_column: str = ID_COLUMN) -> tuple[Loaded
     Without a ``mailed`` column every quarter counts as mailed.
     """
     name = str(path)
-    frame, is_csv, repairs = read_table(path, (id_column,))
+    frame, is_csv, repairs = read_table(path)
     _require_columns(name, frame, {id_column: "--id-column", QUARTER_COLUMN: "", PURCHASED_COLUMN: "", SPEND_COLUMN: ""})
     has_mailed = MAILED_COLUMN in frame.columns
     _count_extra_columns(frame, [id_column, QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN] + ([MAILED_COLUMN] if has_mailed else []), repairs)

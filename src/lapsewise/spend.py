@@ -120,6 +120,55 @@ def _log_likelihood_gradient(p: float, q: float, gamma: float, x: np.ndarray, m_
     return np.array([d_p.sum(), d_q.sum(), d_gamma.sum()])
 
 
+@dataclass(frozen=True)
+class _Sums:
+    """What the summed log-likelihood needs of the data, computed once per fit.
+
+    The gamma-function terms depend on a customer only through x, which takes few
+    values, so they are summed per distinct x; the only term that needs every
+    customer at every evaluation is ``log(gamma + m_x x)``.
+    """
+
+    x_values: np.ndarray
+    x_counts: np.ndarray
+    x: np.ndarray
+    spend_total: np.ndarray  # m_x * x per customer
+    sum_x_log_m: float
+    sum_log_m: float
+    sum_x_log_x: float
+
+    @classmethod
+    def of(cls, x: np.ndarray, m_x: np.ndarray) -> "_Sums":
+        values, counts = np.unique(x, return_counts=True)
+        log_m = np.log(m_x)
+        return cls(values, counts.astype(float), x, m_x * x, float(x @ log_m), float(log_m.sum()), float(x @ np.log(x)))
+
+    def value_and_gradient(self, p: float, q: float, gamma: float) -> tuple[float, np.ndarray]:
+        """The summed log-likelihood and its gradient by (p, q, gamma), equal to summing
+        ``spend_log_likelihood`` and ``_log_likelihood_gradient`` over the customers."""
+        count = float(self.x_counts.sum())
+        k, c = self.x_values, self.x_counts
+        total = gamma + self.spend_total
+        log_total = np.log(total)
+        inverse = 1.0 / total
+        sum_x_log_total = float(self.x @ log_total)
+        sum_log_total = float(log_total.sum())
+        value = (
+            float(c @ (gammaln(p * k + q) - gammaln(p * k)))
+            - count * gammaln(q)
+            + count * q * math.log(gamma)
+            + p * self.sum_x_log_m
+            - self.sum_log_m
+            + p * self.sum_x_log_x
+            - p * sum_x_log_total
+            - q * sum_log_total
+        )
+        d_p = float(c @ (k * (digamma(p * k + q) - digamma(p * k)))) + self.sum_x_log_m + self.sum_x_log_x - sum_x_log_total
+        d_q = float(c @ digamma(p * k + q)) - count * digamma(q) + count * math.log(gamma) - sum_log_total
+        d_gamma = count * q / gamma - p * float(self.x @ inverse) - q * float(inverse.sum())
+        return value, np.array([d_p, d_q, d_gamma])
+
+
 def _repeat_customers(x: np.ndarray, m_x: np.ndarray) -> np.ndarray:
     """Customers the model learns from: at least one repeat purchase and a positive, finite mean value."""
     with np.errstate(invalid="ignore"):
@@ -277,11 +326,12 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
     scaled = m_x / scale
     log_bounds = [(math.log(low), math.log(high)) for low, high in (_SEARCH_RANGE[name] for name in PARAMETER_NAMES)]
 
+    sums = _Sums.of(x, scaled)
+
     def objective(log_parameters: np.ndarray) -> tuple[float, np.ndarray]:
         p, q, gamma = np.exp(log_parameters)
-        value = -spend_log_likelihood(p, q, gamma, x, scaled).mean()
-        gradient = -_log_likelihood_gradient(p, q, gamma, x, scaled) * np.array([p, q, gamma]) / x.size
-        return float(value), gradient
+        value, gradient = sums.value_and_gradient(p, q, gamma)
+        return -value / x.size, -gradient * np.array([p, q, gamma]) / x.size
 
     results = []
     for p_start, q_start in _STARTING_SHAPES:
