@@ -184,3 +184,24 @@ def test_mail_list_segments_can_be_crossed_with_an_attribute(demo_dir, tmp_path)
     # A formula-like attribute is neutralised in the written file (OWASP CSV-injection guidance).
     assert rows.segment.str.startswith("'").any() or rows.segment.str.contains(", =north").any()
     assert not rows.segment.str.startswith("=").any()
+
+
+def test_every_command_says_when_there_is_no_mailings_file(demo_dir, tmp_path):
+    orders = demo_dir / "orders.csv"
+    model = tmp_path / "model.json"
+    note = "counted as mailed"
+    fitted = run("fit", orders, "--out", model)
+    assert fitted.returncode == 0 and note in fitted.stdout
+    commands = [
+        ("summary", orders),
+        ("backtest", orders, "--holdout-quarters", 2),
+        ("score", model, orders, "--out", tmp_path / "scores.csv"),
+        ("stop-table", model, "--policy", POLICY, "--horizon-quarters", 4),
+        ("simulate", model, "--policy", POLICY, "--horizon-quarters", 4, "--customers", 500),
+        ("plan", model, orders, "--policy", POLICY, "--horizon-quarters", 4, "--budget", 100),
+        ("mail-list", model, orders, "--policy", POLICY, "--horizon-quarters", 4, "--out", tmp_path / "list.csv"),
+    ]
+    for command in commands:
+        result = run(*command)
+        assert result.returncode == 0, (command[0], result.stderr)
+        assert note in result.stdout, command[0]

@@ -272,8 +272,10 @@ def simulate(
         with step(f"Simulating {customers:,} customers under every policy"):
             result = simulate_policies(beliefs, economics, typical_order_value(model, economics), customers, quarters or economics.horizon_quarters, seed)
     if json_output:
-        typer.echo(dumps_stable(result.to_dict()), nl=False)
+        typer.echo(dumps_stable({**result.to_dict(), "mailing_history": model.mailing_history}), nl=False)
         return
+    if not model.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
     render.print_simulation(console, result, economics)
     render.print_caution(console)
 
@@ -336,7 +338,7 @@ def plan(
         with step("Solving the budget integer program"):
             result = make_plan(values, policy, budget, frontier_points=10 if frontier else 0)
     if json_output:
-        typer.echo(dumps_stable(result.to_dict()), nl=False)
+        typer.echo(dumps_stable({**result.to_dict(), "mailing_history": panel.mailing_history}), nl=False)
         return
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)

@@ -119,7 +119,7 @@ class Meter:
         seconds = time.perf_counter() - began
         peak_mb = _status_mb("VmHWM") if self.exact_peaks else _maxrss_mb()
         self.stages.append(Stage(name, seconds, peak_mb, peak_mb - start_mb, note))
-        print(f"  {name:<28} {seconds:9.2f} s   peak {peak_mb:8.0f} MB  (+{peak_mb - start_mb:.0f})", flush=True)
+        print(f"  {name:<32} {seconds:9.2f} s   peak {peak_mb:8.0f} MB  (+{peak_mb - start_mb:.0f})", flush=True)
         return result
 
 
@@ -199,28 +199,42 @@ def read_and_count(path: Path) -> pd.Series:
 # ---------------------------------------------------------------- the stages
 
 
-class CountedGradient:
-    """Wraps churn.total_gradient to count likelihood evaluations (the function itself is unchanged)."""
+class CountedCalls:
+    """Inside a ``with`` block, replaces ``module.name`` by a wrapper that counts and times its calls.
 
-    def __init__(self) -> None:
-        self.original = churn.total_gradient
-        self.calls = 0
-        self.seconds = 0.0
+    The function itself is unchanged; ``durations`` holds the seconds of each call
+    and, with ``keep_arguments``, ``arguments`` the ``(args, kwargs)`` of each.
+    """
+
+    def __init__(self, module, name: str, keep_arguments: bool = False) -> None:
+        self.module, self.name, self.keep_arguments = module, name, keep_arguments
+        self.original = getattr(module, name)
+        self.durations: list[float] = []
+        self.arguments: list[tuple[tuple, dict]] = []
+
+    @property
+    def calls(self) -> int:
+        return len(self.durations)
+
+    @property
+    def seconds(self) -> float:
+        return sum(self.durations)
 
     def __call__(self, *args, **kwargs):
-        self.calls += 1
+        if self.keep_arguments:
+            self.arguments.append((args, kwargs))
         began = time.perf_counter()
         try:
             return self.original(*args, **kwargs)
         finally:
-            self.seconds += time.perf_counter() - began
+            self.durations.append(time.perf_counter() - began)
 
     def __enter__(self):
-        churn.total_gradient = self
+        setattr(self.module, self.name, self)
         return self
 
     def __exit__(self, *exc):
-        churn.total_gradient = self.original
+        setattr(self.module, self.name, self.original)
 
 
 def run_stages(meter: Meter, paths: dict[str, Path], as_of: str, upto: str | None = None) -> dict:
@@ -251,7 +265,7 @@ def run_stages(meter: Meter, paths: dict[str, Path], as_of: str, upto: str | Non
         out["expansion"] = expansion
         return out
     del expansion  # fit_churn builds its own; holding this one would inflate the fit's memory figure
-    with CountedGradient() as counter:
+    with CountedCalls(churn, "total_gradient") as counter:
         out["churn"] = meter.run("churn_fit", churn.fit_churn, out["histories"], out["panel"].mailing_history)
     meter.stages[-1].note = f"{counter.calls} gradient evaluations, {counter.seconds / max(counter.calls, 1):.2f} s each"
     out["gradient_calls"] = counter.calls
@@ -262,34 +276,38 @@ def run_stages(meter: Meter, paths: dict[str, Path], as_of: str, upto: str | Non
     return out
 
 
+def run_command(label: str, arguments: list[str]) -> Stage:
+    """A ``lapsewise`` command in a fresh process (``python -m lapsewise ARGUMENTS``): wall time and peak RSS."""
+    command = [sys.executable, "-m", "lapsewise", *arguments]
+    timer = Path("/usr/bin/time").exists()
+    if timer:
+        command = ["/usr/bin/time", "-v", *command]
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    began = time.perf_counter()
+    finished = subprocess.run(command, capture_output=True, text=True)
+    seconds = time.perf_counter() - began
+    if finished.returncode != 0:
+        print(finished.stdout[-3000:], finished.stderr[-3000:], sep="\n")
+        raise SystemExit(f"{label} failed with exit code {finished.returncode}")
+    found = re.search(r"Maximum resident set size \(kbytes\): (\d+)", finished.stderr) if timer else None
+    if found:
+        peak_mb = int(found.group(1)) / 1024
+        how = "/usr/bin/time -v"
+    else:
+        # ru_maxrss of children is the largest child so far; valid when this child is the largest.
+        peak_mb = max(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss, before) / 1024
+        how = "getrusage(RUSAGE_CHILDREN)"
+    print(f"  {label:<32} {seconds:9.2f} s   peak {peak_mb:8.0f} MB  ({how})", flush=True)
+    return Stage(label, seconds, peak_mb, float("nan"), f"peak by {how}")
+
+
 def run_cli(paths: dict[str, Path], as_of: str) -> Stage:
     """The whole ``lapsewise fit`` command in a fresh process: wall time and peak RSS."""
     with tempfile.TemporaryDirectory() as folder:
-        command = [
-            sys.executable, "-m", "lapsewise", "fit", str(paths["orders"]),
-            "--mailings", str(paths["mailings"]), "--as-of", as_of,
+        return run_command("lapsewise fit (subprocess)", [
+            "fit", str(paths["orders"]), "--mailings", str(paths["mailings"]), "--as-of", as_of,
             "--out", str(Path(folder) / "model.json"),
-        ]
-        timer = Path("/usr/bin/time").exists()
-        if timer:
-            command = ["/usr/bin/time", "-v", *command]
-        before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-        began = time.perf_counter()
-        finished = subprocess.run(command, capture_output=True, text=True)
-        seconds = time.perf_counter() - began
-        if finished.returncode != 0:
-            print(finished.stdout[-3000:], finished.stderr[-3000:], sep="\n")
-            raise SystemExit(f"lapsewise fit failed with exit code {finished.returncode}")
-        found = re.search(r"Maximum resident set size \(kbytes\): (\d+)", finished.stderr) if timer else None
-        if found:
-            peak_mb = int(found.group(1)) / 1024
-            how = "/usr/bin/time -v"
-        else:
-            # ru_maxrss of children is the largest child so far; valid when this child is the largest.
-            peak_mb = max(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss, before) / 1024
-            how = "getrusage(RUSAGE_CHILDREN)"
-    print(f"  {'lapsewise fit (subprocess)':<28} {seconds:9.2f} s   peak {peak_mb:8.0f} MB  ({how})", flush=True)
-    return Stage("lapsewise fit (subprocess)", seconds, peak_mb, float("nan"), f"peak by {how}")
+        ])
 
 
 # ---------------------------------------------------------------- report
@@ -349,40 +367,55 @@ def profile_stage(paths: dict[str, Path], as_of: str, stage: str, lines: int) ->
         print(buffer.getvalue())
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0], formatter_class=argparse.RawDescriptionHelpFormatter)
+def add_data_options(parser: argparse.ArgumentParser) -> None:
+    """The options every benchmark on the simulated base shares: where the data live, how they are drawn, what to skip."""
     parser.add_argument("--dir", type=Path, default=Path("bench-data"), help="data folder (default ./bench-data)")
     parser.add_argument("--regenerate", action="store_true", help="draw the data again even if the files exist")
     parser.add_argument("--customers", type=int, default=1_000_000)
     parser.add_argument("--quarters", type=int, default=40)
     parser.add_argument("--seed", type=int, default=20240601)
-    parser.add_argument("--no-cli", action="store_true", help="skip the 'lapsewise fit' subprocess")
+    parser.add_argument("--no-cli", action="store_true", help="skip the 'lapsewise' subprocesses")
+    parser.add_argument("--json", type=Path, help="also write the figures to this JSON file")
+
+
+def open_data(options: argparse.Namespace) -> tuple[dict, dict[str, Path]]:
+    """Draw or reuse the data the options describe, say what they are, and return their description and paths."""
+    meta = prepare_data(options.dir, options.customers, options.quarters, options.seed, options.regenerate)
+    paths = _data_paths(options.dir)
+    print(f"orders.parquet: {meta['order_rows']:,} rows ({paths['orders'].stat().st_size / 2**20:.0f} MB); "
+          f"mailings.parquet: {meta['mailing_rows']:,} rows ({paths['mailings'].stat().st_size / 2**20:.0f} MB); as of {meta['as_of']}")
+    return meta, paths
+
+
+def measure_floor(meter: Meter, paths: dict[str, Path]) -> float:
+    """Warm the page cache, then time the floor on both files; returns its seconds (both stages stay in ``meter``)."""
+    for path in (paths["orders"], paths["mailings"]):
+        path.read_bytes()  # so that the floor and the stages read from the same place
+    print("\nFloor (pyarrow read_table + pandas value_counts on customer_id):")
+    meter.run("floor: orders", read_and_count, paths["orders"])
+    meter.run("floor: mailings", read_and_count, paths["mailings"])
+    return meter.stages[-2].seconds + meter.stages[-1].seconds
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0], formatter_class=argparse.RawDescriptionHelpFormatter)
+    add_data_options(parser)
     parser.add_argument("--profile", choices=STAGES,
                         help="instead of the benchmark, profile this stage with cProfile")
     parser.add_argument("--profile-lines", type=int, default=25)
-    parser.add_argument("--json", type=Path, help="also write the figures to this JSON file")
-    parser.add_argument("--generate-only", action="store_true", help=argparse.SUPPRESS)
+    parser.add_argument("--generate-only", action="store_true", help=argparse.SUPPRESS)  # prepare_data's child process
     options = parser.parse_args()
     if options.generate_only:
         generate(options.dir, options.customers, options.quarters, options.seed)
         return
 
-    meta = prepare_data(options.dir, options.customers, options.quarters, options.seed, options.regenerate)
-    paths = _data_paths(options.dir)
-    print(f"orders.parquet: {meta['order_rows']:,} rows ({paths['orders'].stat().st_size / 2**20:.0f} MB); "
-          f"mailings.parquet: {meta['mailing_rows']:,} rows ({paths['mailings'].stat().st_size / 2**20:.0f} MB); as of {meta['as_of']}")
+    meta, paths = open_data(options)
     if options.profile:
         profile_stage(paths, meta["as_of"], options.profile, options.profile_lines)
         return
 
-    for path in (paths["orders"], paths["mailings"]):
-        path.read_bytes()  # warm the page cache so that the floor and the stages read from the same place
-
     meter = Meter()
-    print("\nFloor (pyarrow read_table + pandas value_counts on customer_id):")
-    meter.run("floor: orders", read_and_count, paths["orders"])
-    meter.run("floor: mailings", read_and_count, paths["mailings"])
-    floor = meter.stages[0].seconds + meter.stages[1].seconds
+    floor = measure_floor(meter, paths)
     print("\nStages of fit, in this process:")
     out = run_stages(meter, paths, meta["as_of"])
     stage_total = sum(s.seconds for s in meter.stages[2:] if not s.name.startswith("expand"))
