@@ -294,21 +294,23 @@ class Program:
         return self.beliefs.rho
 
 
-def log_moment_grid(beliefs: Beliefs, n_max: int, b_max: int) -> np.ndarray:
+def log_moment_grid(beliefs: Beliefs, n_max: int, b_max: int, x_max: int | None = None) -> np.ndarray:
     """``log E[p^x (1-p)^a (1-rho p)^b]`` on the grid ``[b, x, n]`` with ``a = n - x - b``.
 
     Built by the recursion ``M(x, a, b+1) = M(x, a+1, b) + (1 - rho) M(x+1, a, b)``
     (from ``1 - rho p = (1 - p) + (1 - rho) p``), which has no cancellation, from
-    ``M(x, a, 0) = B(alpha + x, beta + a) / B(alpha, beta)``.
+    ``M(x, a, 0) = B(alpha + x, beta + a) / B(alpha, beta)``. x runs to ``x_max``
+    (default ``n_max + 1``).
     """
+    columns = n_max + 2 if x_max is None else min(n_max + 2, x_max + 1)
     size = n_max + b_max + 2
     x = np.arange(size)[:, None]
     a = np.arange(size)[None, :]
     layer = special.betaln(beliefs.alpha + x, beliefs.beta + a) - special.betaln(beliefs.alpha, beliefs.beta)
     log_rest = math.log1p(-beliefs.rho) if beliefs.rho < 1 else -np.inf
-    grid = np.full((n_max + 1, n_max + 2, b_max + 1), -np.inf)
+    grid = np.full((n_max + 1, columns, b_max + 1), -np.inf)
     n = np.arange(n_max + 1)[:, None]
-    xs = np.arange(n_max + 2)[None, :]
+    xs = np.arange(columns)[None, :]
     for b in range(b_max + 1):
         a_index = n - xs - b
         valid = a_index >= 0
@@ -363,7 +365,8 @@ def solve(
     # Held quarters add to b; with rho = 0 nothing is learnt from them but n still grows.
     b_grid = b_max + 1 + (horizon if rho > 0 else 0)
     n_grid = n_max + horizon + 1
-    log_moment = log_moment_grid(beliefs, n_grid + 1, b_grid + 1)
+    # x never exceeds the largest x asked about plus one per quarter ahead (and one more for x + 1).
+    log_moment = log_moment_grid(beliefs, n_grid + 1, b_grid + 1, (n_max if x_max is None else x_max) + horizon + 3)
     steps = np.arange(horizon + 2)
     ns = np.arange(log_moment.shape[2])
     # log P(alive through n + i | alive through n) = log B(gamma, delta + n + i) - log B(gamma, delta + n)
