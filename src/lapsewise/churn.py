@@ -40,6 +40,7 @@ PARAMETERS = ("alpha", "beta", "gamma", "delta", "rho")
 _LOG_BOUNDS = (math.log(1e-3), math.log(1e4))
 _RHO_BOUNDS = (1e-6, 1.0 - 1e-9)
 _SCOUT_STEPS = 6
+_SCOUT_SAMPLE = 50_000
 _STARTS = (
     (1.0, 1.0, 1.0, 1.0, 0.5),
     (0.5, 2.0, 0.5, 3.0, 0.3),
@@ -382,28 +383,43 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     """
     expansion = expand(histories)
     customers = int(histories.count.sum())
-    scale = 1.0 / max(customers, 1)
-
-    def objective(theta: np.ndarray) -> tuple[float, np.ndarray]:
-        params = _unpack(theta, mailing_history)
-        value, grad = total_gradient(expansion, params)
-        if not np.isfinite(value):
-            return 1e10, np.zeros_like(theta)
-        chain = np.array(params[:4]) * grad[:4]  # d/d log(parameter)
-        if mailing_history:
-            chain = np.append(chain, grad[4])
-        return -value * scale, -chain * scale
-
     bounds = [_LOG_BOUNDS] * 4 + ([_RHO_BOUNDS] if mailing_history else [])
-    # Every start takes a few steps; the most promising one is then followed to convergence.
+
+    def objective_on(part: Expansion):
+        scale = 1.0 / max(int(part.histories.count.sum()), 1)
+
+        def objective(theta: np.ndarray) -> tuple[float, np.ndarray]:
+            params = _unpack(theta, mailing_history)
+            value, grad = total_gradient(part, params)
+            if not np.isfinite(value):
+                return 1e10, np.zeros_like(theta)
+            chain = np.array(params[:4]) * grad[:4]  # d/d log(parameter)
+            if mailing_history:
+                chain = np.append(chain, grad[4])
+            return -value * scale, -chain * scale
+
+        return objective
+
+    objective = objective_on(expansion)
+    scale = 1.0 / max(customers, 1)
+    # Every start takes a few steps (on a fixed sample of histories when there are many);
+    # the most promising one is then followed to convergence on all of them.
+    sample = expansion if histories.size <= _SCOUT_SAMPLE else expand(_sample(histories, _SCOUT_SAMPLE))
+    scout_objective = objective_on(sample)
     scouts = []
     for start in _STARTS:
         theta0 = np.log(np.array(start[:4]))
         if mailing_history:
             theta0 = np.append(theta0, start[4])
-        scouts.append(optimize.minimize(objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": _SCOUT_STEPS}))
+        scouts.append(optimize.minimize(scout_objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": _SCOUT_STEPS}))
     lead = min(scouts, key=lambda result: result.fun)
-    best = optimize.minimize(objective, lead.x, jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": 1000, "ftol": 1e-13, "gtol": 1e-8})
+    options = {"maxiter": 1000, "ftol": 1e-13, "gtol": 1e-8}
+    best = optimize.minimize(objective, lead.x, jac=True, method="L-BFGS-B", bounds=bounds, options=options)
+    if not best.success:
+        # A line search that stalls at the optimum reports failure; a restart from there settles it.
+        again = optimize.minimize(objective, best.x, jac=True, method="L-BFGS-B", bounds=bounds, options=options)
+        if again.fun <= best.fun:
+            best = again
     params = _unpack(best.x, mailing_history)
     names = PARAMETERS if mailing_history else PARAMETERS[:4]
     on_bound = _on_bounds(best.x, bounds, names)
@@ -430,6 +446,15 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
         histories=histories.size,
         converged=bool(best.success),
         warnings=tuple(warnings),
+    )
+
+
+def _sample(histories: Histories, size: int) -> Histories:
+    """A fixed random sample of distinct histories (seeded, so the fit is deterministic)."""
+    rows = np.sort(np.random.default_rng(0).choice(histories.size, size=size, replace=False))
+    return Histories(
+        **{name: getattr(histories, name)[rows] for name in ("x", "x_unmailed", "t_x", "n", "mailed_silent", "unmailed_silent", "after_last", "count")},
+        inverse=np.arange(size),
     )
 
 

@@ -57,6 +57,7 @@ LARGEST_CORRELATION = 0.3
 _SEARCH_RANGE = {"p": (1e-4, 1e4), "q": (1e-4, 1e4), "gamma": (1e-6, 1e8)}
 # Starting (p, q); gamma starts where the population mean equals the sample mean.
 _STARTING_SHAPES = ((1.0, 2.0), (3.0, 4.0), (10.0, 11.0), (0.5, 1.5))
+_SCOUT_STEPS = 8
 # How close (in log space) an estimate must be to an end of its range to count as on it.
 _ON_BOUND = 1e-3
 # Mean negative log-likelihoods this close (relative) are the same optimum.
@@ -279,8 +280,8 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
     Only customers with at least one repeat purchase and a finite, positive mean
     repeat value are used; the others are ignored, and the number used is
     reported. The log-likelihood is maximised with L-BFGS-B over the logarithms
-    of ``p``, ``q`` and ``gamma`` from several fixed starting points, keeping the
-    best. Spend is divided by its median while searching (``gamma`` scales with
+    of ``p``, ``q`` and ``gamma``: several fixed starting points each take a few
+    steps and the best is followed to convergence. Spend is divided by its median while searching (``gamma`` scales with
     spend; ``p`` and ``q`` do not), so the search behaves the same in any currency.
     Standard errors come from the observed information: a central
     finite-difference Hessian (of the analytic gradient) of the negative
@@ -333,26 +334,23 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
         value, gradient = sums.value_and_gradient(p, q, gamma)
         return -value / x.size, -gradient * np.array([p, q, gamma]) / x.size
 
-    results = []
+    def search(start: np.ndarray, steps: int):
+        return minimize(objective, start, jac=True, method="L-BFGS-B", bounds=log_bounds, options={"maxiter": steps, "ftol": 1e-12, "gtol": 1e-7})
+
+    # Every start takes a few steps; the most promising is followed to convergence.
+    scouts = []
     for p_start, q_start in _STARTING_SHAPES:
         gamma_start = float(np.mean(scaled)) * (q_start - 1.0) / p_start
         start = np.clip(np.log([p_start, q_start, gamma_start]), [b[0] for b in log_bounds], [b[1] for b in log_bounds])
-        result = minimize(
-            objective,
-            start,
-            jac=True,
-            method="L-BFGS-B",
-            bounds=log_bounds,
-            options={"maxiter": 2000, "ftol": 1e-12, "gtol": 1e-7},
-        )
-        if np.isfinite(result.fun):
-            results.append(result)
-    best = min(results, key=lambda r: r.fun)
-    # Starts that end at the same optimum differ only by rounding; prefer one the optimizer
-    # reports as converged (a line search that stalls at the optimum says "ABNORMAL").
-    settled = [r for r in results if r.success and r.fun <= best.fun + _SAME_OPTIMUM * max(1.0, abs(best.fun))]
-    if settled:
-        best = min(settled, key=lambda r: r.fun)
+        scout = search(start, _SCOUT_STEPS)
+        if np.isfinite(scout.fun):
+            scouts.append(scout)
+    best = search(min(scouts, key=lambda r: r.fun).x, 2000)
+    if not best.success:
+        # A line search that stalls at the optimum says "ABNORMAL"; a restart from there settles it.
+        again = search(best.x, 2000)
+        if again.fun <= best.fun + _SAME_OPTIMUM * max(1.0, abs(best.fun)):
+            best = again
 
     p, q, gamma_scaled = (float(v) for v in np.exp(best.x))
     gamma = gamma_scaled * scale
