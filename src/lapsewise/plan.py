@@ -19,14 +19,17 @@ version, how many customers to mail::
                 sum_v m[s,v] >= ceil(min_share[s] * customers[s])           (policy's minimum shares)
                 sum_v m[s,v] <= floor(max_share[s] * customers[s])          (policy's maximum shares)
                 sum_{s,v} piece_cost[v] * m[s,v] + sum_v setup[v] * use[v] <= budget
+                sum_v z[s,v,k] <= size[s,k]                                   (each rank range once: valid, tightens)
                 m integer, pick and use binary
 
 The value of taking ``m`` customers of a segment is the sum of the ``m`` best
 values; it is concave in ``m`` and is held as the prefix sums at chunk
-boundaries. Every customer is a chunk when a segment's customers worth mailing
-(or those not worth it) number at most ``CHUNKS``; larger groups are cut into
-``CHUNKS`` chunks of equal size, exact at their boundaries and linear within,
-which never overstates the value. The plan's objective is therefore the true
+boundaries. Every customer is a chunk in a segment of at most ``CHUNKS``
+customers; larger segments are cut into up to ``CHUNKS`` chunks of equal size
+(fewer when there are many segments, so that about ``CHUNK_BUDGET`` chunks are
+shared among them), plus a cut where any version's values turn from positive to
+not positive. The value is exact at chunk boundaries and linear within, which
+never overstates it. The plan's objective is therefore the true
 optimum of this model; the mail list then takes the best ``m`` customers of
 each segment and reports their own values.
 """
@@ -50,6 +53,8 @@ from lapsewise.policy import Beliefs, Policy, band_index, decide, mail_value_wit
 from lapsewise.spend import expected_order_value
 
 CHUNKS = 40
+CHUNK_BUDGET = 4_000  # rank chunks over all segments: many segments get fewer chunks each (at least MIN_CHUNKS)
+MIN_CHUNKS = 10
 
 
 # ---------------------------------------------------------------- value of a mailing per customer
@@ -201,29 +206,29 @@ class PlanSolution:
     gap_tolerance: float = 1e-9
 
 
-def chunk_values(sorted_values: np.ndarray, chunks: int = CHUNKS) -> tuple[np.ndarray, np.ndarray]:
-    """Chunk sizes and total values of customers sorted best first (every customer a chunk when few).
+def chunk_edges(sorted_values: np.ndarray, chunks: int | None = None) -> np.ndarray:
+    """Rank boundaries of a segment's chunks, shared by all versions (columns of ``sorted_values``, each best first).
 
-    Customers worth mailing and customers not worth it never share a chunk, so a
-    plan with money to spare mails exactly the customers with a positive value.
+    Every customer is a chunk when there are at most ``chunks``; otherwise the ranks are
+    cut into ``chunks`` equal parts, plus a cut where each version's values turn from
+    positive to not positive, so that customers worth mailing and customers not worth
+    it never share a chunk.
     """
-    positive = int((sorted_values > 0).sum())
-    sizes, totals = [], []
-    for part in (sorted_values[:positive], sorted_values[positive:]):
-        count = len(part)
-        if count == 0:
-            continue
-        if count <= chunks:
-            sizes.append(np.ones(count, dtype=np.int64))
-            totals.append(part.astype(float))
-            continue
-        edges = np.unique(np.linspace(0, count, chunks + 1).round().astype(np.int64))
-        prefix = np.concatenate([[0.0], np.cumsum(part)])
-        sizes.append(np.diff(edges))
-        totals.append(np.diff(prefix[edges]))
-    if not sizes:
-        return np.zeros(0, dtype=np.int64), np.zeros(0)
-    return np.concatenate(sizes), np.concatenate(totals)
+    chunks = CHUNKS if chunks is None else chunks
+    count = len(sorted_values)
+    if count <= chunks:
+        return np.arange(count + 1)
+    cuts = np.linspace(0, count, chunks + 1).round().astype(np.int64)
+    positive = (sorted_values > 0).sum(axis=0)
+    return np.unique(np.concatenate([cuts, positive]))
+
+
+def chunk_values(sorted_values: np.ndarray, edges: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Chunk sizes and total values of customers sorted best first (one version's values)."""
+    if edges is None:
+        edges = chunk_edges(sorted_values[:, None])
+    prefix = np.concatenate([[0.0], np.cumsum(sorted_values)])
+    return np.diff(edges), np.diff(prefix[edges])
 
 
 def build_problem(values: CustomerValues, policy: Policy, budget: float | None) -> PlanProblem:
@@ -237,12 +242,15 @@ def build_problem(values: CustomerValues, policy: Policy, budget: float | None) 
             f"{policy.source}: [segments] names segment '{unknown[0]}', which has no customers; segments are named like '{names[0] if names else '0 repeat, 0 silent'}'"
         )
     sizes, chunk_sizes, chunk_totals = [], [], []
+    per_segment = max(MIN_CHUNKS, min(CHUNKS, CHUNK_BUDGET // max(len(names), 1)))
     segment_of = pd.Categorical(values.segment[eligible], categories=list(names)).codes
     eligible_values = values.values[eligible]
     for s in range(len(names)):
         rows = eligible_values[segment_of == s]
         sizes.append(len(rows))
-        chunked = [chunk_values(np.sort(rows[:, v])[::-1]) for v in range(len(values.versions))]
+        ranked = -np.sort(-rows, axis=0)  # each version's values, best first
+        edges = chunk_edges(ranked, per_segment)
+        chunked = [chunk_values(ranked[:, v], edges) for v in range(len(values.versions))]
         chunk_sizes.append(tuple(size for size, _ in chunked))
         chunk_totals.append(tuple(total for _, total in chunked))
     return PlanProblem(
@@ -294,6 +302,11 @@ def _formulate(problem: PlanProblem, relax: set[str]) -> tuple[pulp.LpProblem, d
             model += mailed[s, v] <= count * pick[s, v], f"version_of_segment_{s}_{v}"
             model += mailed[s, v] <= count * use[v], f"version_in_use_{s}_{v}"
         model += pulp.lpSum(pick[s, v] for v in versions) <= 1, f"one_version_{s}"
+        if all(np.array_equal(problem.chunk_size[s][0], problem.chunk_size[s][v]) for v in versions):
+            # One version per segment means each rank range is mailed with one version at most: a valid
+            # cut that keeps the relaxation from counting a segment's best customers once per version.
+            for k, size in enumerate(problem.chunk_size[s][0]):
+                model += pulp.lpSum(take[s, v, k] for v in versions) <= int(size), f"rank_{s}_{k}"
         if "min_share" not in relax and problem.min_count[s] > 0:
             model += pulp.lpSum(mailed[s, v] for v in versions) >= int(problem.min_count[s]), f"min_share_{s}"
         if problem.max_count[s] < count:
@@ -389,13 +402,20 @@ class Plan:
         return data
 
 
+def _members(values: CustomerValues, problem: PlanProblem) -> list[np.ndarray]:
+    """Row indices of the customers who may be mailed in each segment (one grouping pass, not one per segment)."""
+    codes = pd.Categorical(values.segment, categories=list(problem.segments)).codes
+    rows = np.flatnonzero((codes >= 0) & ~values.suppressed)
+    rows = rows[np.argsort(codes[rows], kind="stable")]
+    bounds = np.searchsorted(codes[rows], np.arange(len(problem.segments) + 1))
+    return [rows[bounds[s] : bounds[s + 1]] for s in range(len(problem.segments))]
+
+
 def assign(values: CustomerValues, problem: PlanProblem, solution: PlanSolution) -> np.ndarray:
     """Which version each customer gets (-1: not mailed): in each segment, the best ``mailed`` customers by that version's value."""
     assignment = np.full(len(values.customer_ids), -1, dtype=np.int64)
-    segment_of = pd.Categorical(values.segment, categories=list(problem.segments)).codes
-    for s in range(len(problem.segments)):
+    for s, rows in enumerate(_members(values, problem)):
         for v in np.flatnonzero(solution.mailed[s]):
-            rows = np.flatnonzero((segment_of == s) & ~values.suppressed)
             order = rows[np.argsort(-values.values[rows, v], kind="stable")]
             assignment[order[: solution.mailed[s, v]]] = v
     return assignment
@@ -403,15 +423,13 @@ def assign(values: CustomerValues, problem: PlanProblem, solution: PlanSolution)
 
 def segment_report(values: CustomerValues, problem: PlanProblem, solution: PlanSolution, assignment: np.ndarray) -> pd.DataFrame:
     rows = []
-    for s, name in enumerate(problem.segments):
-        in_segment = values.segment == name
-        mailed = assignment >= 0
+    for s, candidates in enumerate(_members(values, problem)):
+        members = candidates[assignment[candidates] >= 0]
         chosen = np.flatnonzero(solution.mailed[s])
         v = int(chosen[0]) if len(chosen) else -1
-        members = np.flatnonzero(in_segment & mailed)
         rows.append(
             {
-                "segment": name,
+                "segment": problem.segments[s],
                 "version": problem.versions[v] if v >= 0 else "-",
                 "customers": int(problem.customers[s]),
                 "mailed": int(len(members)),
@@ -475,12 +493,12 @@ def mail_list(values: CustomerValues, assignment: np.ndarray) -> pd.DataFrame:
     return pd.DataFrame(
         {
             "customer_id": values.customer_ids,
-            "segment": values.segment,
-            "version": np.asarray(values.versions, dtype=object)[version_index],
+            "segment": pd.Categorical(values.segment),
+            "version": pd.Categorical.from_codes(version_index, categories=list(values.versions)),
             "p_alive": values.p_alive,
             "p_buy": values.p_buy * values.responses[version_index],
             "value_of_mailing": value,
-            "decision": decision,
+            "decision": pd.Categorical(decision, categories=list(DECISIONS)),
         }
     )
 
@@ -492,8 +510,17 @@ def neutralise_formulas(frame: pd.DataFrame) -> pd.DataFrame:
     """Prefix text cells that a spreadsheet would run as a formula with a single quote (OWASP CSV-injection guidance)."""
     out = frame.copy()
     for column in out.columns:
-        if out[column].dtype == object or pd.api.types.is_string_dtype(out[column]):
-            text = out[column].astype(str)
+        values = out[column]
+        if isinstance(values.dtype, pd.CategoricalDtype):
+            # Few distinct labels: neutralise the categories, not every row.
+            labels = pd.Series(values.cat.categories.astype(str))
+            safe = np.where(labels.str.startswith(_FORMULA_START), "'" + labels, labels)
+            if len(set(safe)) == len(safe):
+                out[column] = values.cat.rename_categories(safe)
+                continue
+            values = values.astype(str)
+        if values.dtype == object or pd.api.types.is_string_dtype(values):
+            text = values.astype(str)
             risky = text.str.startswith(_FORMULA_START)
-            out[column] = np.where(risky, "'" + text, text)
+            out[column] = text.where(~risky, "'" + text)
     return out
