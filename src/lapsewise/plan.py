@@ -49,7 +49,7 @@ from lapsewise.churn import posterior
 from lapsewise.errors import PlanError
 from lapsewise.model import Model
 from lapsewise.panel import Panel, band_labels, band_of, compress, summarize
-from lapsewise.policy import Beliefs, Policy, band_index, decide, mail_value_with, solve, spend_bands
+from lapsewise.policy import Beliefs, Policy, band_index, hold_value, mail_value_with, solve, spend_bands
 from lapsewise.spend import expected_order_value
 
 CHUNKS = 40
@@ -142,7 +142,7 @@ def customer_values(
             x_max=int(x[members].max()),
         )
         args = (n[members], x[members], b[members], alive[members])
-        hold = decide(program, *args).hold_value
+        hold = hold_value(program, *args)
         for column, version in enumerate(policy.versions):
             values[members, column] = mail_value_with(program, *args, version.response, version.piece_cost) - hold
     return CustomerValues(

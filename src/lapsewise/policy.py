@@ -453,22 +453,35 @@ def _plan_values(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, 
     """Values of "mail J quarters, then hold" for J = 0..horizon from states with given alive and total weights.
 
     ``alive`` is the chance of being alive through quarter n and ``total`` the
-    chance of the path so far (so costs are paid on ``total`` minus the purchases,
-    rewards earned on ``alive``). Returns an array (states, horizon + 1).
+    chance of the path so far: rewards are earned on ``alive``, piece costs paid on
+    ``total`` less the purchases. A plan's value is therefore
+    ``alive * per_alive[J] - total * costs[J]``, where ``per_alive`` depends only on
+    (n, x, b): it is computed once per distinct state. Returns (states, horizon + 1).
     """
+    n, x, b = (np.asarray(v, dtype=np.int64) for v in (n, x, b))
+    keys = (b * program.log_moment.shape[1] + x) * program.log_moment.shape[2] + n
+    distinct, first, inverse = np.unique(keys, return_index=True, return_inverse=True)
+    per_alive = _plan_values_per_alive(program, n[first], x[first], b[first], horizon)
+    costs = program.piece_cost * np.concatenate([[0.0], np.cumsum(program.discount ** np.arange(1, horizon + 1))])
+    return np.asarray(alive)[:, None] * per_alive[inverse.ravel()] - np.asarray(total)[:, None] * costs[None, :]
+
+
+def _plan_values_per_alive(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, horizon: int) -> np.ndarray:
+    """For a customer alive through n in state (n, x, b): plan values without the piece costs a dead customer would
+    also pay (those are ``total * costs[J]``), i.e. margins, later values, and the costs saved by purchases."""
     d, margin, cost = program.discount, program.margin, program.piece_cost
     here = program.log_moment[b, x, n]
     values = np.empty((len(n), horizon + 1))
-    values[:, 0] = alive * (program.hold[horizon][b, x, n] if horizon < len(program.hold) else _hold_value(program, n, x, b, horizon))
+    values[:, 0] = program.hold[horizon][b, x, n] if horizon < len(program.hold) else _hold_value(program, n, x, b, horizon)
     plan = np.zeros(len(n))
-    no_purchase_yet = total.copy()
+    purchased = np.zeros(len(n))  # chance of a purchase so far in the stretch (no piece is paid after it)
     for i in range(1, horizon + 1):
-        first_purchase = alive * np.exp(program.log_alive[n, i] + program.log_moment[b, x + 1, n + i] - here)
+        first_purchase = np.exp(program.log_alive[n, i] + program.log_moment[b, x + 1, n + i] - here)
         after = program.best[horizon - i][b, x + 1, n + i] if horizon - i < len(program.best) else 0.0
-        plan += d**i * (first_purchase * (margin + after) - cost * no_purchase_yet)
-        no_purchase_yet = no_purchase_yet - first_purchase
+        plan += d**i * (first_purchase * (margin + after) + cost * purchased)
+        purchased += first_purchase
         if i < horizon:
-            silent_alive = alive * np.exp(program.log_alive[n, i] + program.log_moment[b, x, n + i] - here)
+            silent_alive = np.exp(program.log_alive[n, i] + program.log_moment[b, x, n + i] - here)
             values[:, i] = plan + d**i * silent_alive * program.hold[horizon - i][b, x, n + i]
         else:
             values[:, i] = plan
@@ -494,27 +507,25 @@ def decide(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, alive:
     """
     n, x, b = (np.asarray(v, dtype=np.int64) for v in (n, x, b))
     alive = np.asarray(alive, dtype=float)
+    mail_plans = _plan_values(program, n, x, b, alive, np.ones_like(alive), program.horizon)
+    return Decisions(mail_plans[:, 1:].max(axis=1), hold_value(program, n, x, b, alive), 1 + mail_plans[:, 1:].argmax(axis=1))
+
+
+def hold_value(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, alive: np.ndarray) -> np.ndarray:
+    """Value of holding this quarter (an unprompted purchase, rho p, or silence), then the best "mail J, then hold"."""
+    n, x, b = (np.asarray(v, dtype=np.int64) for v in (n, x, b))
+    alive = np.asarray(alive, dtype=float)
     horizon = program.horizon
-    b_state = b
-    mail_plans = _plan_values(program, n, x, b_state, alive, np.ones_like(alive), horizon)
-    mail_value = mail_plans[:, 1:].max(axis=1)
-    mail_quarters = 1 + mail_plans[:, 1:].argmax(axis=1)
     if horizon == 1:
-        hold_value = alive * _hold_value(program, n, x, b_state, 1)
-        return Decisions(mail_value, hold_value, mail_quarters)
-    # Hold this quarter: an unprompted purchase (rho p) or silence, then the best "mail J, then hold".
+        return alive * _hold_value(program, n, x, b, 1)
     d, rho = program.discount, program.rho
-    here = program.log_moment[b_state, x, n]
-    if rho > 0:
-        buy = alive * rho * np.exp(program.log_alive[n, 1] + program.log_moment[b_state, x + 1, n + 1] - here)
-        silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[b_state + 1, x, n + 1] - here)
-        later = _plan_values(program, n + 1, x, b_state + 1, silent_alive, 1.0 - buy, horizon - 1).max(axis=1)
-        hold_value = d * buy * (program.margin + program.best[horizon - 1][b_state, x + 1, n + 1]) + d * later
-    else:
-        silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[b_state + 1, x, n + 1] - here)
-        later = _plan_values(program, n + 1, x, b_state + 1, silent_alive, np.ones_like(alive), horizon - 1).max(axis=1)
-        hold_value = d * later
-    return Decisions(mail_value, hold_value, mail_quarters)
+    here = program.log_moment[b, x, n]
+    silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[b + 1, x, n + 1] - here)
+    if rho == 0:
+        return d * _plan_values(program, n + 1, x, b + 1, silent_alive, np.ones_like(alive), horizon - 1).max(axis=1)
+    buy = alive * rho * np.exp(program.log_alive[n, 1] + program.log_moment[b, x + 1, n + 1] - here)
+    later = _plan_values(program, n + 1, x, b + 1, silent_alive, 1.0 - buy, horizon - 1).max(axis=1)
+    return d * buy * (program.margin + program.best[horizon - 1][b, x + 1, n + 1]) + d * later
 
 
 def decide_at(program: Program, n, x, b, alive, horizon: int) -> Decisions:
