@@ -341,6 +341,15 @@ def _ratios(log_moment: np.ndarray, log_alive: np.ndarray, i: int, shift_x: int,
     return out
 
 
+def _shifted(table: np.ndarray, quarters: int) -> np.ndarray:
+    """``table`` read ``quarters`` later along n (zero beyond the grid)."""
+    if quarters == 0:
+        return table
+    out = np.zeros_like(table)
+    out[:, :, :-quarters] = table[:, :, quarters:]
+    return out
+
+
 def solve(
     beliefs: Beliefs,
     margin: float,
@@ -374,18 +383,23 @@ def solve(
     # Along a mailed silent stretch from any state, the chance of a first purchase in the i-th quarter
     # and of being alive and silent after i quarters do not depend on the horizon: compute them once,
     # discounted, with the part of a plan's value that needs no later table (its margins and costs).
+    # One quarter's chances are exponentials; i quarters' are products of them along n.
+    buy_next = _ratios(log_moment, log_alive, 1, 1, 0)  # alive next quarter and buys, when mailed
+    silent_next = _ratios(log_moment, log_alive, 1, 0, 0)  # alive next quarter and silent, when mailed
     purchase_after, silent_after, known_part = [None], [None], [None]
     no_purchase_yet = np.ones_like(log_moment)
     margins_and_costs = np.zeros_like(log_moment)
+    still_silent = np.ones_like(log_moment)  # alive and silent through i - 1 mailed quarters
     for i in range(1, horizon + 1):
-        first_purchase = _ratios(log_moment, log_alive, i, 1, 0)
+        first_purchase = still_silent * _shifted(buy_next, i - 1)
         margins_and_costs += discount**i * (margin * first_purchase - piece_cost * no_purchase_yet)
         no_purchase_yet -= first_purchase
         purchase_after.append(discount**i * first_purchase)
         known_part.append(margins_and_costs.copy())
+        still_silent = still_silent * _shifted(silent_next, i - 1)
         if rho > 0:
-            silent_after.append(discount**i * _ratios(log_moment, log_alive, i, 0, 0))
-    del no_purchase_yet, margins_and_costs
+            silent_after.append(discount**i * still_silent)
+    del no_purchase_yet, margins_and_costs, still_silent
     if rho > 0:
         held_buy = rho * _ratios(log_moment, log_alive, 1, 1, 0)
         held_silent = _ratios(log_moment, log_alive, 1, 0, 1)

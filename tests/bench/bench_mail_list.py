@@ -133,8 +133,8 @@ def run_mail_list_stages(meter: Meter, paths: dict[str, Path], meta: dict, refit
 
     with contextlib.ExitStack() as stack:
         parts = {
-            name: stack.enter_context(CountedCalls(plan_module, name, keep_arguments=name in ("solve", "decide")))
-            for name in ("compress", "posterior", "summarize", "solve", "decide", "mail_value_with")
+            name: stack.enter_context(CountedCalls(plan_module, name, keep_arguments=name in ("solve", "hold_value")))
+            for name in ("compress", "posterior", "summarize", "solve", "hold_value", "mail_value_with")
         }
         values = meter.run("customer values", plan_module.customer_values, model, panel, policy)
     meter.stages[-1].note = "inside: " + ", ".join(
@@ -142,7 +142,7 @@ def run_mail_list_stages(meter: Meter, paths: dict[str, Path], meta: dict, refit
     )
     solves = parts["solve"]
     out["solve_calls"] = [(kwargs, seconds) for (_, kwargs), seconds in zip(solves.arguments, solves.durations)]
-    out["program_states"] = sum(len(args[1]) for args, _ in parts["decide"].arguments)
+    out["program_states"] = sum(len(args[1]) for args, _ in parts["hold_value"].arguments)
     slowest = int(np.argmax(solves.durations))
     args, kwargs = solves.arguments[slowest]
     meter.run("policy.solve (one spend band)", policy_module.solve, *args, note=f"the slowest band's call again: {_size(kwargs)}", **kwargs)
