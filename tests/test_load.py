@@ -337,3 +337,9 @@ def test_load_orders_accepts_or_refuses_any_file(content):
             build_panel(loaded)
         except InputError:
             pass
+
+
+def test_an_implausibly_large_amount_is_refused(write_file):
+    # Above 1e12 an amount is an export error, and would overflow the panel's float32 spend.
+    with pytest.raises(InputError, match="row 2, column amount: 1e\\+38 is implausibly large"):
+        load_orders(write_file("orders.csv", orders_text("A1,2023-01-15,1e38")))

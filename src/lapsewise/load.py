@@ -29,6 +29,7 @@ MAIL_DATE_COLUMN = "mail_date"
 VERSION_COLUMN = "version"
 
 _SNIFF_BYTES = 64 * 1024
+MAX_AMOUNT = 1e12  # no single order is worth a trillion; larger values are export errors (and overflow the panel)
 
 
 @dataclass(frozen=True)
@@ -273,6 +274,13 @@ def _parse_amounts(name: str, column_name: str, column: pd.Series, is_csv: bool)
                 f"{name}, row {_row_label(first, is_csv)}, column {column_name}: '{str(text.iloc[first])[:40]}' "
                 "is not a number; write amounts like 42.50 with no currency sign or thousands separator"
             )
+    huge = (np.abs(values) > MAX_AMOUNT) & np.isfinite(values)
+    if huge.any():
+        first = np.flatnonzero(huge)[0]
+        raise InputError(
+            f"{name}, row {_row_label(first, is_csv)}, column {column_name}: {values[first]:.3g} is implausibly large "
+            f"(above {MAX_AMOUNT:.0e}); fix or remove the row"
+        )
     infinite = np.isinf(values)
     if infinite.any():
         first = np.flatnonzero(infinite)[0]
