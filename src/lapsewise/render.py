@@ -57,14 +57,15 @@ def print_panel_summary(console: Console, panel: Panel) -> None:
     )
     if not panel.mailing_history:
         console.print(ALL_MAILED_NOTE)
-    table = Table(
-        title="Customers (count) and mean order value (currency units) by repeat purchases and silent quarters",
-        title_justify="left",
+    console.print(
+        "Customers (count) and their mean order value (currency units) by repeat purchases (rows) "
+        "and silent quarters since the last purchase (columns):"
     )
-    table.add_column("Repeat purchases")
+    table = Table(box=box.SIMPLE_HEAD, show_edge=False)
+    table.add_column("Repeat", no_wrap=True)
     silent_labels = list(dict.fromkeys(cells["silent_band"]))
     for label in silent_labels:
-        table.add_column(f"{label} silent q", justify="right")
+        table.add_column(f"{label} silent", justify="right", no_wrap=True)
     for frequency, rows in cells.groupby("frequency_band", sort=False):
         row = [str(frequency)]
         for _, cell in rows.iterrows():
