@@ -256,3 +256,11 @@ def test_formula_cells_are_neutralised(text):
     out = neutralise_formulas(frame)
     assert out.customer_id.tolist() == ["'" + text, "A1"]
     assert out.value_of_mailing.tolist() == [-1.5, 2.0]  # numbers stay numbers
+
+
+def test_everyone_suppressed_gives_an_empty_plan_not_an_error():
+    rng = np.random.default_rng(8)
+    values = synthetic_values(rng, customers=50, suppressed_share=1.1)  # every customer on the list
+    plan = make_plan(values, one_version_policy(), budget=100.0)
+    assert plan.solution.objective == 0.0 and (plan.assignment < 0).all()
+    assert set(mail_list(values, plan.assignment).decision) == {"suppressed"}

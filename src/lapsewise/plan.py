@@ -336,7 +336,8 @@ def solve_plan(problem: PlanProblem) -> PlanSolution:
     counts = np.array([[round(mailed[s, v].value() or 0) for v in range(len(problem.versions))] for s in range(len(problem.segments))], dtype=np.int64)
     used = np.array([round(use[v].value() or 0) == 1 for v in range(len(problem.versions))])
     spent = float((counts * problem.piece_cost[None, :]).sum() + problem.setup_cost[used].sum())
-    return PlanSolution(status, float(pulp.value(model.objective)), counts, used, spent, seconds)
+    objective = pulp.value(model.objective)  # None when nothing can be mailed (no segment has a customer)
+    return PlanSolution(status, float(objective or 0.0), counts.reshape(len(problem.segments), len(problem.versions)), used, spent, seconds)
 
 
 def _infeasible_reason(problem: PlanProblem) -> str:
