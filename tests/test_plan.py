@@ -9,7 +9,7 @@ from numpy.testing import assert_allclose
 from scipy.optimize import Bounds, LinearConstraint, milp
 
 from lapsewise.errors import PlanError
-from lapsewise.plan import CHUNKS, CustomerValues, PlanProblem, build_problem, chunk_values, make_plan, mail_list, neutralise_formulas, solve_plan
+from lapsewise.plan import CHUNKS, CustomerValues, PlanProblem, chunk_values, make_plan, mail_list, neutralise_formulas, solve_plan
 from lapsewise.policy import Economics, Policy, Segments, Version
 
 

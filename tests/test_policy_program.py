@@ -1,12 +1,10 @@
 """The stop-rule program against brute force, the breakeven rule and the margin multiple."""
 
-import itertools
-
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from lapsewise.churn import ChurnFit, posterior
+from lapsewise.churn import posterior
 from lapsewise.panel import compress_arrays, history_arrays
 from lapsewise.policy import Beliefs, decide, solve
 

@@ -579,13 +579,6 @@ def dert(fit: ChurnFit, post: Posterior, discount_rate: float) -> np.ndarray:
     return np.exp(post.log_buy_factor + head) * series
 
 
-def purchase_chance(fit: ChurnFit, post: Posterior, ahead: np.ndarray, mailed: np.ndarray) -> np.ndarray:
-    """Chance of a purchase in quarter n + ahead, given whether that quarter is mailed (rows: histories)."""
-    survival = np.exp(log_survival(fit.gamma, fit.delta, post.n[:, None] + ahead))
-    response = np.where(mailed, 1.0, fit.unmailed_response)
-    return np.exp(post.log_buy_factor)[:, None] * survival * response
-
-
 # ---------------------------------------------------------------- the return curve
 
 

@@ -36,10 +36,9 @@ each segment and reports their own values.
 
 from __future__ import annotations
 
-import math
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd

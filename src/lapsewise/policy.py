@@ -49,7 +49,7 @@ from pathlib import Path
 import numpy as np
 from scipy import special
 
-from lapsewise.churn import ChurnFit, log_survival
+from lapsewise.churn import ChurnFit
 from lapsewise.errors import InputError
 from lapsewise.load import require_file
 
