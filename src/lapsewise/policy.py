@@ -321,23 +321,21 @@ def log_moment_grid(beliefs: Beliefs, n_max: int, b_max: int, x_max: int | None 
     return np.ascontiguousarray(grid.transpose(2, 1, 0))
 
 
-def _ratios(log_moment: np.ndarray, log_alive: np.ndarray, i: int, shift_x: int, shift_b: int) -> np.ndarray:
-    """``P(alive through n + i | alive through n) * M(state i quarters on) / M(state now)`` on the whole grid.
+def _next_quarter(log_moment: np.ndarray, log_alive: np.ndarray, shift_x: int, shift_b: int) -> np.ndarray:
+    """``P(alive next quarter | alive through n) * M(state next quarter) / M(state now)`` on the whole grid.
 
-    The state i quarters on is ``(n + i, x + shift_x, b + shift_b)`` (tables are ``[b, x, n]``); with
-    ``shift_x = 1`` (and b unchanged) this is the chance that i mailed quarters end in
-    a first purchase in the i-th; with both shifts 0 the chance of being alive and
-    silent after i mailed quarters; with ``shift_b = 1`` and i = 1 the chance of being
-    alive and silent after one held quarter (before rho is applied to purchases).
+    The next state is ``(n + 1, x + shift_x, b + shift_b)`` (tables are ``[b, x, n]``):
+    with ``shift_x = 1`` the chance of a purchase when mailed (times rho when held);
+    with both shifts 0 the chance of being alive and silent after a mailed quarter;
+    with ``shift_b = 1`` alive and silent after a held quarter.
     """
     depth, columns, rows = log_moment.shape
-    here = log_moment[: depth - shift_b, : columns - shift_x, : rows - i]
-    there = log_moment[shift_b:, shift_x:, i:]
+    here = log_moment[: depth - shift_b, : columns - shift_x, : rows - 1]
+    there = log_moment[shift_b:, shift_x:, 1:]
     with np.errstate(invalid="ignore"):
-        ratio = np.exp(log_alive[None, None, : rows - i, i] + there - here)
-    ratio = np.where(np.isfinite(here), ratio, 0.0)
+        ratio = np.exp(log_alive[None, None, : rows - 1, 1] + there - here)
     out = np.zeros_like(log_moment)
-    out[: depth - shift_b, : columns - shift_x, : rows - i] = ratio
+    out[: depth - shift_b, : columns - shift_x, : rows - 1] = np.where(np.isfinite(here), ratio, 0.0)
     return out
 
 
@@ -384,8 +382,8 @@ def solve(
     # and of being alive and silent after i quarters do not depend on the horizon: compute them once,
     # discounted, with the part of a plan's value that needs no later table (its margins and costs).
     # One quarter's chances are exponentials; i quarters' are products of them along n.
-    buy_next = _ratios(log_moment, log_alive, 1, 1, 0)  # alive next quarter and buys, when mailed
-    silent_next = _ratios(log_moment, log_alive, 1, 0, 0)  # alive next quarter and silent, when mailed
+    buy_next = _next_quarter(log_moment, log_alive, 1, 0)  # alive next quarter and buys, when mailed
+    silent_next = _next_quarter(log_moment, log_alive, 0, 0)  # alive next quarter and silent, when mailed
     purchase_after, silent_after, known_part = [None], [None], [None]
     no_purchase_yet = np.ones_like(log_moment)
     margins_and_costs = np.zeros_like(log_moment)
@@ -401,8 +399,8 @@ def solve(
             silent_after.append(discount**i * still_silent)
     del no_purchase_yet, margins_and_costs, still_silent
     if rho > 0:
-        held_buy = rho * _ratios(log_moment, log_alive, 1, 1, 0)
-        held_silent = _ratios(log_moment, log_alive, 1, 0, 1)
+        held_buy = rho * buy_next
+        held_silent = _next_quarter(log_moment, log_alive, 0, 1)
     shape = log_moment.shape
     best = [np.zeros(shape)]
     hold = [np.zeros(shape)]
