@@ -205,3 +205,10 @@ def test_every_command_says_when_there_is_no_mailings_file(demo_dir, tmp_path):
         result = run(*command)
         assert result.returncode == 0, (command[0], result.stderr)
         assert note in " ".join(result.stdout.split()), command[0]  # rich wraps lines at 80 columns
+
+
+def test_demo_runs_on_the_shortest_history_it_accepts(tmp_path):
+    # Four quarters leave room for a one-quarter backtest; every step must still run.
+    result = run("demo", "--dir", tmp_path / "d", "--customers", 100, "--quarters", 4)
+    assert result.returncode == 0, result.stderr
+    assert "last 1 quarters held out" in result.stdout

@@ -209,8 +209,9 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
     render.print_truth_comparison(console, model, data.truth)
     console.print(f"Model written to {paths['model']}.")
 
-    console.rule("Backtest: the last 4 quarters held out")
-    render.print_backtest(console, run_backtest(panel, 4))
+    holdout = max(1, min(4, quarters // 4))  # a short demo history keeps enough calibration quarters
+    console.rule(f"Backtest: the last {holdout} quarters held out")
+    render.print_backtest(console, run_backtest(panel, holdout))
 
     console.rule("When to stop mailing: the stop table (policy: full catalog)")
     economics = Economics(**DEMO_ECONOMICS)
