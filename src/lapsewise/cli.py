@@ -27,29 +27,75 @@ app = typer.Typer(
 MailingsOption = typer.Option(None, "--mailings", help="Mailings file (CSV or Parquet): customer_id, mail_date[, version].")
 AsOfOption = typer.Option(None, "--as-of", help="Last day to use (YYYY-MM-DD); default: end of the last complete quarter in the orders.")
 FiscalOption = typer.Option(1, "--fiscal-year-start", help="Month (1-12) in which the first quarter of the year starts.")
-IdOption = typer.Option("customer_id", "--id-column", help="Name of the customer id column in every input file.")
-DateOption = typer.Option("order_date", "--date-column", help="Name of the order date column in the orders file.")
-AmountOption = typer.Option("amount", "--amount-column", help="Name of the order amount column in the orders file.")
 
 
 def _console(json_output: bool = False) -> Console:
     return Console(no_color=json_output, highlight=False, soft_wrap=False)
 
 
+_ECONOMICS_OPTIONS = (
+    ("gross_margin", float, "share of order value left after cost of goods"),
+    ("order_cost", float, "pick, pack and payment cost per order"),
+    ("piece_cost", float, "print and postage per piece"),
+    ("annual_discount_rate", float, "annual discount rate"),
+    ("horizon_quarters", int, "quarters each decision looks ahead"),
+    ("order_value", float, "a fixed value per order instead of the spend model"),
+    ("unmailed_response", float, "rho, the share of response left without a piece"),
+)
+
+
+def option_group(group: str, options):
+    """Give a command one option per entry of ``options`` ((name, annotation, typer option) triples);
+    the command receives their values together as the dict ``group``. One definition, many commands."""
+
+    def decorate(command):
+        signature = inspect.signature(command)
+        kept = [p for name, p in signature.parameters.items() if name != group]
+        added = [inspect.Parameter(name, inspect.Parameter.KEYWORD_ONLY, default=option, annotation=kind) for name, kind, option in options]
+
+        @functools.wraps(command)
+        def wrapper(*args, **kwargs):
+            values = {name: kwargs.pop(name) for name, _, _ in options}
+            return command(*args, **{group: values}, **kwargs)
+
+        hints = typing.get_type_hints(command)
+        hints.pop(group, None)
+        hints.update({name: kind for name, kind, _ in options})
+        wrapper.__annotations__ = hints
+        wrapper.__signature__ = signature.replace(parameters=kept + added)
+        return wrapper
+
+    return decorate
+
+
+economics_overrides = option_group(
+    "overrides",
+    [
+        (name, Optional[kind], typer.Option(None, f"--{name.replace('_', '-')}", help=f"Override the policy economics key {name}: {text}."))
+        for name, kind, text in _ECONOMICS_OPTIONS
+    ],
+)
+column_names = option_group(
+    "columns",
+    [
+        ("id_column", str, typer.Option("customer_id", "--id-column", help="Name of the customer id column in every input file.")),
+        ("date_column", str, typer.Option("order_date", "--date-column", help="Name of the order date column in the orders file.")),
+        ("amount_column", str, typer.Option("amount", "--amount-column", help="Name of the order amount column in the orders file.")),
+    ],
+)
+
+
 @app.command()
+@column_names
 def summary(
     orders: Path = typer.Argument(..., help="Orders file (CSV or Parquet): customer_id, order_date, amount."),
     mailings: Optional[Path] = MailingsOption,
     as_of: Optional[str] = AsOfOption,
     fiscal_year_start: int = FiscalOption,
-    id_column: str = IdOption,
-    date_column: str = DateOption,
-    amount_column: str = AmountOption,
+    columns: dict | None = None,
 ) -> None:
     """Show the customer base by repeat purchases and silent quarters. Writes nothing."""
-    from lapsewise.panel import panel_from_files
-
-    panel = panel_from_files(str(orders), str(mailings) if mailings else None, as_of, fiscal_year_start, id_column, date_column, amount_column)
+    panel = _panel(orders, mailings, as_of, fiscal_year_start, columns)
     console = _console()
     render.print_panel_summary(console, panel)
     render.print_caution(console)
@@ -69,10 +115,10 @@ def demo(
     run_demo(_console(), folder, customers, quarters, seed, force)
 
 
-def _panel(orders: Path, mailings: Optional[Path], as_of: Optional[str], fiscal_year_start: int, id_column: str, date_column: str, amount_column: str):
+def _panel(orders: Path, mailings: Optional[Path], as_of: Optional[str], fiscal_year_start: int, columns: dict):
     from lapsewise.panel import panel_from_files
 
-    return panel_from_files(str(orders), str(mailings) if mailings else None, as_of, fiscal_year_start, id_column, date_column, amount_column)
+    return panel_from_files(str(orders), str(mailings) if mailings else None, as_of, fiscal_year_start, **columns)
 
 
 OrdersArgument = typer.Argument(..., help="Orders file (CSV or Parquet): customer_id, order_date, amount.")
@@ -81,15 +127,14 @@ JsonOption = typer.Option(False, "--json", help="Print machine-readable JSON ins
 
 
 @app.command()
+@column_names
 def fit(
     orders: Path = OrdersArgument,
     out: Path = typer.Option(..., "--out", help="Model file to write (JSON)."),
     mailings: Optional[Path] = MailingsOption,
     as_of: Optional[str] = AsOfOption,
     fiscal_year_start: int = FiscalOption,
-    id_column: str = IdOption,
-    date_column: str = DateOption,
-    amount_column: str = AmountOption,
+    columns: dict | None = None,
     force: bool = ForceOption,
 ) -> None:
     """Fit the hidden-churn and order-value models and write the model file."""
@@ -100,7 +145,7 @@ def fit(
     console = _console()
     with render.progress(console, 2) as step:
         with step("Reading the files and building the quarterly panel"):
-            panel = _panel(orders, mailings, as_of, fiscal_year_start, id_column, date_column, amount_column)
+            panel = _panel(orders, mailings, as_of, fiscal_year_start, columns)
         with step(f"Fitting the models on {panel.customers:,} customers"):
             model = fit_model(panel)
     write_text_atomic(out, dumps_stable(model.to_dict()), force)
@@ -112,6 +157,7 @@ def fit(
 
 
 @app.command()
+@column_names
 def score(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     orders: Path = OrdersArgument,
@@ -120,9 +166,7 @@ def score(
     as_of: Optional[str] = typer.Option(None, "--as-of", help="Last day to use (YYYY-MM-DD); default: the model's as-of date."),
     horizon: int = typer.Option(4, "--horizon", min=1, max=400, help="Quarters ahead for expected purchases."),
     annual_discount_rate: float = typer.Option(0.10, "--annual-discount-rate", min=0.0, max=10.0, help="Annual rate for DERT."),
-    id_column: str = IdOption,
-    date_column: str = DateOption,
-    amount_column: str = AmountOption,
+    columns: dict | None = None,
     force: bool = ForceOption,
 ) -> None:
     """Write per-customer P(alive), P(order next quarter), expected purchases, DERT and expected order value."""
@@ -131,7 +175,7 @@ def score(
 
     check_writable(out, force)
     model = load_model(model_file)
-    panel = _panel(orders, mailings, as_of or model.as_of, model.fiscal_year_start, id_column, date_column, amount_column)
+    panel = _panel(orders, mailings, as_of or model.as_of, model.fiscal_year_start, columns)
     scores = score_customers(model, panel, horizon, annual_discount_rate)
     write_atomic(out, lambda p: scores.to_csv(p, index=False, float_format="%.6g"), force)
     console = _console()
@@ -142,15 +186,14 @@ def score(
 
 
 @app.command()
+@column_names
 def backtest(
     orders: Path = OrdersArgument,
     holdout_quarters: int = typer.Option(..., "--holdout-quarters", help="Quarters at the end to hold out and predict."),
     mailings: Optional[Path] = MailingsOption,
     as_of: Optional[str] = AsOfOption,
     fiscal_year_start: int = FiscalOption,
-    id_column: str = IdOption,
-    date_column: str = DateOption,
-    amount_column: str = AmountOption,
+    columns: dict | None = None,
     json_output: bool = JsonOption,
 ) -> None:
     """Fit on all but the last quarters and compare predicted with actual repeat purchases."""
@@ -159,7 +202,7 @@ def backtest(
     console = _console(json_output)
     with render.progress(console, 2, not json_output) as step:
         with step("Reading the files and building the quarterly panel"):
-            panel = _panel(orders, mailings, as_of, fiscal_year_start, id_column, date_column, amount_column)
+            panel = _panel(orders, mailings, as_of, fiscal_year_start, columns)
         with step("Fitting on the calibration quarters and predicting the holdout"):
             result = run_backtest(panel, holdout_quarters)
     if json_output:
@@ -174,44 +217,6 @@ def backtest(
 
 
 PolicyOption = typer.Option(..., "--policy", help="Policy file (TOML); see policies/.")
-
-
-_ECONOMICS_OPTIONS = (
-    ("gross_margin", float, "share of order value left after cost of goods"),
-    ("order_cost", float, "pick, pack and payment cost per order"),
-    ("piece_cost", float, "print and postage per piece"),
-    ("annual_discount_rate", float, "annual discount rate"),
-    ("horizon_quarters", int, "quarters each decision looks ahead"),
-    ("order_value", float, "a fixed value per order instead of the spend model"),
-    ("unmailed_response", float, "rho, the share of response left without a piece"),
-)
-
-
-def economics_overrides(command):
-    """Give a command one ``--<key>`` option per [economics] key; it receives them as ``overrides``."""
-    signature = inspect.signature(command)
-    kept = [p for name, p in signature.parameters.items() if name != "overrides"]
-    added = [
-        inspect.Parameter(
-            name,
-            inspect.Parameter.KEYWORD_ONLY,
-            default=typer.Option(None, f"--{name.replace('_', '-')}", help=f"Override the policy economics key {name}: {text}."),
-            annotation=Optional[kind],
-        )
-        for name, kind, text in _ECONOMICS_OPTIONS
-    ]
-
-    @functools.wraps(command)
-    def wrapper(*args, **kwargs):
-        overrides = {name: kwargs.pop(name, None) for name, _, _ in _ECONOMICS_OPTIONS}
-        return command(*args, overrides=overrides, **kwargs)
-
-    hints = typing.get_type_hints(command)
-    hints.pop("overrides", None)
-    hints.update({name: Optional[kind] for name, kind, _ in _ECONOMICS_OPTIONS})
-    wrapper.__annotations__ = hints
-    wrapper.__signature__ = signature.replace(parameters=kept + added)
-    return wrapper
 
 
 def _policy(path: Path, overrides: dict):
@@ -285,7 +290,7 @@ AttributesOption = typer.Option(None, "--attributes", help="Customer attributes 
 SegmentColumnOption = typer.Option(None, "--segment-column", help="Column of the attributes file to cross segments with.")
 
 
-def _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides):
+def _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides):
     """Load everything a plan needs and compute every customer's value of mailing (the stages, in order)."""
     from lapsewise.errors import InputError
     from lapsewise.load import load_attributes, load_id_list
@@ -294,22 +299,23 @@ def _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, att
 
     model = load_model(model_file)
     policy = _policy(policy_file, overrides)
-    panel = _panel(orders, mailings, as_of, model.fiscal_year_start, id_column, date_column, amount_column)
+    panel = _panel(orders, mailings, as_of, model.fiscal_year_start, columns)
     suppressed = None
     if suppress:
-        ids = load_id_list(suppress, id_column).frame["customer_id"].to_numpy()
+        ids = load_id_list(suppress, columns["id_column"]).frame["customer_id"].to_numpy()
         suppressed = np.isin(panel.customer_ids, ids)
     attribute = None
     if attributes or segment_column:
         if not (attributes and segment_column):
             raise InputError("--attributes and --segment-column go together; give both or neither")
-        table = load_attributes(attributes, segment_column, id_column).frame.set_index("customer_id")[segment_column]
+        table = load_attributes(attributes, segment_column, columns["id_column"]).frame.set_index("customer_id")[segment_column]
         attribute = table.reindex(panel.customer_ids).fillna("unknown").to_numpy(dtype=object)
     values = customer_values(model, panel, policy, suppressed, attribute)
     return model, policy, panel, values
 
 
 @app.command()
+@column_names
 @economics_overrides
 def plan(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
@@ -322,9 +328,7 @@ def plan(
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
     frontier: bool = typer.Option(False, "--frontier", help="Also show expected value over a range of budgets."),
-    id_column: str = IdOption,
-    date_column: str = DateOption,
-    amount_column: str = AmountOption,
+    columns: dict | None = None,
     json_output: bool = JsonOption,
     overrides: dict | None = None,
 ) -> None:
@@ -334,7 +338,7 @@ def plan(
     console = _console(json_output)
     with render.progress(console, 2, not json_output) as step:
         with step("Reading the files and valuing a mailing to every customer"):
-            model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides)
+            model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
         with step("Solving the budget integer program"):
             result = make_plan(values, policy, budget, frontier_points=10 if frontier else 0)
     if json_output:
@@ -347,6 +351,7 @@ def plan(
 
 
 @app.command("mail-list")
+@column_names
 @economics_overrides
 def mail_list_command(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
@@ -359,9 +364,7 @@ def mail_list_command(
     suppress: Optional[Path] = SuppressOption,
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
-    id_column: str = IdOption,
-    date_column: str = DateOption,
-    amount_column: str = AmountOption,
+    columns: dict | None = None,
     force: bool = ForceOption,
     overrides: dict | None = None,
 ) -> None:
@@ -373,7 +376,7 @@ def mail_list_command(
     console = _console()
     with render.progress(console, 3) as step:
         with step("Reading the files and valuing a mailing to every customer"):
-            model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, id_column, date_column, amount_column, overrides)
+            model, policy, panel, values = _plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
         with step("Solving the budget integer program"):
             result = make_plan(values, policy, budget)
         with step("Writing the mail list"):
