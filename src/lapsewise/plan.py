@@ -52,6 +52,7 @@ from lapsewise.policy import Beliefs, Policy, band_index, hold_value, mail_value
 from lapsewise.spend import expected_order_value
 
 CHUNKS = 40
+GAP_TOLERANCE = 1e-9  # CBC's relative optimality gap: the plan is the optimum of its model
 CHUNK_BUDGET = 4_000  # rank chunks over all segments: many segments get fewer chunks each (at least MIN_CHUNKS)
 MIN_CHUNKS = 10
 
@@ -202,7 +203,7 @@ class PlanSolution:
     used: np.ndarray  # (versions,) bool
     spent: float
     solve_seconds: float
-    gap_tolerance: float = 1e-9
+    gap_tolerance: float = GAP_TOLERANCE
 
 
 def chunk_edges(sorted_values: np.ndarray, chunks: int | None = None) -> np.ndarray:
@@ -277,7 +278,7 @@ def _model(problem: PlanProblem, relax: set[str] = frozenset()) -> tuple[pulp.Lp
 def _cbc() -> pulp.LpSolver:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DeprecationWarning)
-        return pulp.PULP_CBC_CMD(msg=False, gapRel=1e-9, timeLimit=120)
+        return pulp.PULP_CBC_CMD(msg=False, gapRel=GAP_TOLERANCE, timeLimit=120)
 
 
 def _formulate(problem: PlanProblem, relax: set[str]) -> tuple[pulp.LpProblem, dict, dict]:

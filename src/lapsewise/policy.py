@@ -441,12 +441,11 @@ class Decisions:
 
     ``mail_value`` is the best plan that mails now, ``hold_value`` the best that
     holds now; ``mail`` is True where mailing is at least as good; ``value_of_mailing``
-    is their difference; ``mail_quarters`` the number of quarters the best plan mails.
+    is their difference.
     """
 
     mail_value: np.ndarray
     hold_value: np.ndarray
-    mail_quarters: np.ndarray
 
     @property
     def mail(self) -> np.ndarray:
@@ -520,7 +519,7 @@ def decide(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, alive:
     n, x, b = (np.asarray(v, dtype=np.int64) for v in (n, x, b))
     alive = np.asarray(alive, dtype=float)
     mail_plans = _plan_values(program, n, x, b, alive, np.ones_like(alive), program.horizon)
-    return Decisions(mail_plans[:, 1:].max(axis=1), hold_value(program, n, x, b, alive), 1 + mail_plans[:, 1:].argmax(axis=1))
+    return Decisions(mail_plans[:, 1:].max(axis=1), hold_value(program, n, x, b, alive))
 
 
 def hold_value(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, alive: np.ndarray) -> np.ndarray:
