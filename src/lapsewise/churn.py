@@ -28,19 +28,21 @@ with Discrete-Time Transaction Data. Marketing Science, 29(6), 1086-1108.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import optimize, sparse, special
+from scipy import sparse, special
 
+from lapsewise import optimum
 from lapsewise.panel import Histories, compress_arrays
 
 PARAMETERS = ("alpha", "beta", "gamma", "delta", "rho")
 _LOG_BOUNDS = (math.log(1e-3), math.log(1e4))
 _RHO_BOUNDS = (1e-6, 1.0 - 1e-9)
 _SCOUT_STEPS = 6
-_SCOUT_SAMPLE = 50_000
+_SCOUT_SAMPLE = 20_000
 _STARTS = (
     (1.0, 1.0, 1.0, 1.0, 0.5),
     (0.5, 2.0, 0.5, 3.0, 0.3),
@@ -157,6 +159,19 @@ class Expansion:
     def cells(self) -> int:
         return int(self.terms.nnz)
 
+    @functools.cached_property
+    def moment_terms(self) -> "MomentTerms":
+        """The triples' moment terms, laid out once for every evaluation of a fit."""
+        return MomentTerms.of(self.triples)
+
+    @functools.cached_property
+    def moment_terms_all_mailed(self) -> "MomentTerms":
+        """The same with every quarter counted as mailed (rho None)."""
+        return MomentTerms.of(self.triples, unmailed=False)
+
+    def moments_layout(self, rho: float | None) -> "MomentTerms":
+        return self.moment_terms if rho is not None else self.moment_terms_all_mailed
+
 
 def _codes(keys: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
     """Sorted distinct keys and each key's index among them (``np.unique`` with ``return_inverse``).
@@ -173,65 +188,133 @@ def _codes(keys: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
     return np.flatnonzero(present), index[keys]
 
 
+def _restarting_sums(start: np.ndarray, increments: np.ndarray, totals: np.ndarray, first: np.ndarray) -> np.ndarray:
+    """Running sums over the cells that restart with every history.
+
+    A history's first cell (``first``) holds ``start``; each later cell adds its
+    entry of ``increments`` (the entries at first cells are ignored). ``totals``
+    is the sum of a history's increments, so one cumulative sum does it all.
+    """
+    jumps = increments.astype(np.int32)
+    jumps[first] = start
+    jumps[first[1:]] -= start[:-1] + totals[:-1]  # cancel what the previous history ran up to
+    return np.cumsum(jumps, dtype=np.int32)
+
+
 def expand(histories: Histories) -> Expansion:
     """Lay the histories out over their possible death quarters (done once per fit, not per evaluation).
 
-    The cells of a history (one per quarter it may have stayed alive through) are
-    contiguous; triples (x, a, b) and states are found as integer keys, so the work
-    is a few passes over the cells and no sorting of rows.
+    Cell ``j`` (``0 <= j <= n - t_x``) of a history is the quarter ``tau = t_x + j``
+    through which the customer stayed alive; its mailed and unmailed silent
+    quarters are running sums of the mail flags after the last purchase. The cells
+    of a history are contiguous, every per-cell quantity is one cumulative sum
+    over them, and states are found as integer keys: a few passes over the cells,
+    no sorting of rows.
     """
-    silent = histories.silent_quarters
+    silent = histories.silent_quarters.astype(np.int32)
     rows = len(silent)
-    width = int(silent.max()) + 1
     indptr = np.zeros(rows + 1, dtype=np.int64)
     np.cumsum(silent + 1, out=indptr[1:])
     cells = int(indptr[-1])
-    # Mailed silent quarters after the last purchase, cumulated: column j counts quarters t_x+1 .. t_x+j.
-    mailed_after = np.zeros((rows, width), dtype=np.int32)
-    np.cumsum(histories.after_last[:, : width - 1], axis=1, out=mailed_after[:, 1:])
-    # Cell arrays are int32 (a million customers give tens of millions of cells).
-    cell_row = np.repeat(np.arange(rows, dtype=np.int32), silent + 1)
-    step = np.arange(cells, dtype=np.int32) - indptr[:-1].astype(np.int32)[cell_row]  # j: quarters after the last purchase
-    mailed = mailed_after.ravel()[cell_row.astype(np.int64) * width + step]
+    first, last = indptr[:-1], indptr[1:] - 1
+    # The mail flag of the quarter each cell adds (none for a history's first cell).
+    width = histories.after_last.shape[1]
+    flags = np.zeros((rows, width + 1), dtype=np.int8)
+    flags[:, 1:] = histories.after_last
+    flags = flags[np.arange(width + 1)[None, :] <= silent[:, None]]
+    mailed_after = histories.after_last.sum(axis=1, dtype=np.int32)
     x = histories.x.astype(np.int32)
-    a = histories.mailed_silent.astype(np.int32)[cell_row] + mailed
-    b = histories.unmailed_silent.astype(np.int32)[cell_row] + step - mailed
-    last = indptr[1:] - 1
+    a = _restarting_sums(histories.mailed_silent.astype(np.int32), flags, mailed_after, first)
+    b = _restarting_sums(histories.unmailed_silent.astype(np.int32), 1 - flags, silent - mailed_after, first)
+    max_quarter = int(histories.n.max()) + 1
+    tau = _restarting_sums(histories.t_x.astype(np.int32), np.ones(cells, dtype=np.int8), silent, first)
+    tau[last] += max_quarter + 1  # death after tau, except the last cell of a history: alive through n
     a_n, b_n = a[last], b[last]
-    base = int(max(x.max() + 2, a.max() + 1, b.max() + 1))
-    wide = np.int64 if base**3 >= 2**31 else np.int32
+
+    # States (theta index, x, a, b) as integer keys; triples (x, a, b) from the few distinct states.
+    base = int(max(x.max() + 2, a_n.max() + 1, b_n.max() + 1))
+    state_count = (2 * max_quarter + 2) * base**3
+    wide = np.int64 if state_count >= 2**31 else np.int32
+    state_key = tau.astype(wide, copy=False)  # ((tau * base + x) * base + a) * base + b, built in place
+    state_key *= base
+    state_key += np.repeat(x, silent + 1)
+    state_key *= base
+    state_key += a
+    state_key *= base
+    state_key += b
+    states, cell_state = _codes(state_key, state_count)
+    del state_key
+    state_triples = states % base**3
 
     def key(x_, a_, b_):
-        return (x_.astype(wide) * base + a_) * base + b_
+        return (x_.astype(np.int64) * base + a_) * base + b_
 
-    keys = np.concatenate([key(x[cell_row], a, b), key(x, a_n, b_n), key(x + 1, a_n, b_n)])
-    unique_keys, inverse = _codes(keys, base**3)
-    triples = np.stack([unique_keys // (base * base), unique_keys // base % base, unique_keys % base], axis=1).astype(np.int64)
-    cell_triple = inverse[:cells]
-
-    max_quarter = int(histories.n.max()) + 1
-    cell_theta = histories.t_x.astype(np.int32)[cell_row] + step  # tau: death after tau ...
-    cell_theta[last] += max_quarter + 1  # ... except the last cell of a history: alive through n
-    state_count = (2 * max_quarter + 2) * len(triples)
-    state_key = cell_theta.astype(np.int64 if state_count >= 2**31 else np.int32) * len(triples) + cell_triple
-    states, cell_state = _codes(state_key, state_count)
-    terms = sparse.csr_matrix((np.ones(cells), cell_state.astype(np.int32), indptr.astype(np.int32)), shape=(rows, len(states)))
+    unique_triples, inverse = _codes(np.concatenate([state_triples, key(x, a_n, b_n), key(x + 1, a_n, b_n)]), base**3)
+    triples = np.stack([unique_triples // (base * base), unique_triples // base % base, unique_triples % base], axis=1).astype(np.int64)
+    data = np.ones(cells)
+    terms = sparse.csr_matrix((data, cell_state.astype(np.int32, copy=False), indptr.astype(np.int32)), shape=(rows, len(states)))
     return Expansion(
         histories=histories,
         terms=terms,
-        state_theta=states // len(triples),
-        state_triple=states % len(triples),
+        state_theta=states // base**3,
+        state_triple=inverse[: len(states)],
         triples=triples,
-        alive_triple=inverse[cells : cells + rows],
-        next_triple=inverse[cells + rows :],
+        alive_triple=inverse[len(states) : len(states) + rows],
+        next_triple=inverse[len(states) + rows :],
         max_quarter=max_quarter,
     )
 
 
 # ---------------------------------------------------------------- the pieces of the likelihood
 
+@dataclass(frozen=True)
+class MomentTerms:
+    """The terms of :func:`log_p_moments` for a set of triples, laid out flat once (they do not depend on the parameters).
+
+    Triple ``(x, a, b)`` has ``b + 1`` terms ``c = 0..b`` (one, c = 0, when ``b`` is
+    ignored), stored contiguously from ``start``. A term's Beta function
+    ``B(alpha + x + c, beta + a + b - c)`` needs gammaln at ``alpha + k_alpha``,
+    ``beta + k_beta`` and ``alpha + beta + k_total``, integer offsets, so an
+    evaluation computes the special functions once per offset and gathers.
+    """
+
+    start: np.ndarray
+    owner: np.ndarray
+    c: np.ndarray
+    log_binomial: np.ndarray
+    k_alpha: np.ndarray
+    k_beta: np.ndarray
+    k_total: np.ndarray
+
+    @classmethod
+    def of(cls, triples: np.ndarray, unmailed: bool = True) -> "MomentTerms":
+        x, a, b = (np.asarray(triples[:, i], dtype=np.int64) for i in range(3))
+        if not unmailed:
+            b = np.zeros_like(b)
+        length = b + 1
+        start = np.zeros(len(b), dtype=np.int64)
+        np.cumsum(length[:-1], out=start[1:])
+        owner = np.repeat(np.arange(len(b)), length)
+        c = np.arange(int(length.sum())) - start[owner]
+        b_term = b[owner]
+        log_binomial = special.gammaln(b_term + 1.0) - special.gammaln(c + 1.0) - special.gammaln(b_term - c + 1.0)
+        return cls(
+            start=start,
+            owner=owner,
+            c=c.astype(float),
+            log_binomial=log_binomial,
+            k_alpha=x[owner] + c,
+            k_beta=(a + b)[owner] - c,
+            k_total=(x + a + b)[owner],
+        )
+
+    @property
+    def rows(self) -> int:
+        return len(self.start)
+
+
 def log_p_moments(
-    triples: np.ndarray, alpha: float, beta: float, rho: float | None, gradient: bool = False
+    triples: np.ndarray | MomentTerms, alpha: float, beta: float, rho: float | None, gradient: bool = False
 ) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
     """log E_p[p^x (1-p)^a (1-rho p)^b] under p ~ Beta(alpha, beta), for each row (x, a, b).
 
@@ -243,28 +326,35 @@ def log_p_moments(
     which is exact (as Gauss-Jacobi quadrature with ``n // 2 + 1`` nodes would be,
     the integrand being a polynomial of degree at most n) and free of cancellation.
     With ``rho`` None (no mailing history) b is 0 and only the c = 0 term remains.
-    With ``gradient`` also returns the derivatives by (alpha, beta, rho), shape (rows, 3).
+    ``triples`` may be given already laid out as :class:`MomentTerms` (built with
+    ``unmailed=False`` when rho is None). With ``gradient`` also returns the
+    derivatives by (alpha, beta, rho), shape (rows, 3).
     """
-    x, a, b = (triples[:, i].astype(float)[:, None] for i in range(3))
+    layout = triples if isinstance(triples, MomentTerms) else MomentTerms.of(np.asarray(triples), unmailed=rho is not None)
+    if layout.rows == 0:
+        return (np.zeros(0), np.zeros((0, 3))) if gradient else np.zeros(0)
     if rho is None:
-        b = np.zeros_like(b)
         rho = 1.0
-    c = np.arange(int(b.max()) + 1 if len(triples) else 1, dtype=float)[None, :]
-    inside = c <= b
+    size = int(max(layout.k_alpha.max(), layout.k_beta.max(), layout.k_total.max())) + 1
+    offsets = np.arange(size, dtype=float)
     with np.errstate(divide="ignore", invalid="ignore"):
-        log_share = np.where(c == 0, 0.0, c * np.log1p(-rho)) if rho < 1.0 else np.where(c == 0, 0.0, -np.inf)
-        terms = special.gammaln(b + 1) - special.gammaln(c + 1) - special.gammaln(np.maximum(b - c, 0) + 1) + log_share
-        terms = terms + special.betaln(alpha + x + c, beta + np.maximum(a + b - c, 0)) - special.betaln(alpha, beta)
-    terms = np.where(inside, terms, -np.inf)
-    value = special.logsumexp(terms, axis=1)
+        log_share = np.where(layout.c == 0, 0.0, layout.c * np.log1p(-rho)) if rho < 1.0 else np.where(layout.c == 0, 0.0, -np.inf)
+    log_gamma_alpha, log_gamma_beta = special.gammaln(alpha + offsets), special.gammaln(beta + offsets)
+    log_gamma_total = special.gammaln(alpha + beta + offsets)
+    terms = layout.log_binomial + log_share + log_gamma_alpha[layout.k_alpha] + log_gamma_beta[layout.k_beta] - log_gamma_total[layout.k_total]
+    peak = np.maximum.reduceat(terms, layout.start)
+    share = np.exp(terms - peak[layout.owner])
+    total = np.add.reduceat(share, layout.start)
+    # B(alpha, beta) from the same table entries, so that a triple (0, 0, 0) gives exactly 0.
+    value = np.log(total) + peak - (log_gamma_alpha[0] + log_gamma_beta[0] - log_gamma_total[0])
     if not gradient:
         return value
-    share = np.exp(terms - value[:, None])
+    share /= total[layout.owner]
     psi = special.digamma
-    total = psi(alpha + beta + x + a + b)
-    d_alpha = (share * (psi(alpha + x + c) - total)).sum(axis=1) - (psi(alpha) - psi(alpha + beta))
-    d_beta = (share * (psi(beta + np.maximum(a + b - c, 0)) - total)).sum(axis=1) - (psi(beta) - psi(alpha + beta))
-    d_rho = -(share * c).sum(axis=1) / (1.0 - rho) if rho < 1.0 else np.zeros(len(value))
+    psi_total = psi(alpha + beta + offsets)[layout.k_total]
+    d_alpha = np.add.reduceat(share * (psi(alpha + offsets)[layout.k_alpha] - psi_total), layout.start) - (psi(alpha) - psi(alpha + beta))
+    d_beta = np.add.reduceat(share * (psi(beta + offsets)[layout.k_beta] - psi_total), layout.start) - (psi(beta) - psi(alpha + beta))
+    d_rho = -np.add.reduceat(share * layout.c, layout.start) / (1.0 - rho) if rho < 1.0 else np.zeros(len(value))
     return value, np.stack([d_alpha, d_beta, d_rho], axis=1)
 
 
@@ -325,11 +415,11 @@ def _evaluate(expansion: Expansion, params: tuple, gradient: bool = False):
     alpha, beta, gamma, delta, rho = params
     hist = expansion.histories
     if not gradient:
-        moments = log_p_moments(expansion.triples, alpha, beta, rho)
+        moments = log_p_moments(expansion.moments_layout(rho), alpha, beta, rho)
         theta = _theta_vector(gamma, delta, expansion.max_quarter)
         log_sums, _, _ = _history_sums(expansion, theta[expansion.state_theta] + moments[expansion.state_triple])
         return log_sums + _log_unmailed_factor(hist, rho), moments
-    moments, d_moments = log_p_moments(expansion.triples, alpha, beta, rho, gradient=True)
+    moments, d_moments = log_p_moments(expansion.moments_layout(rho), alpha, beta, rho, gradient=True)
     theta, d_theta = _theta_vector(gamma, delta, expansion.max_quarter, gradient=True)
     log_sums, scaled, sums = _history_sums(expansion, theta[expansion.state_theta] + moments[expansion.state_triple])
     # d log L_h / d value_s = terms[h, s] * exp(value_s) / L_h; weighted by the customers per history.
@@ -371,10 +461,14 @@ def _unpack(theta: np.ndarray, mailing_history: bool) -> tuple[float, float, flo
 def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     """Maximum-likelihood fit of the hidden-churn model on compressed histories.
 
-    Several deterministic starts each take a few L-BFGS-B steps on log-parameters
-    (rho on [0, 1] directly); the best of them is followed to convergence. Standard errors come from a central
-    finite-difference Hessian of the log-likelihood in the natural parameters.
-    The cost grows with the number of distinct histories, not customers.
+    The search runs on log-parameters (rho on [0, 1] directly): several
+    deterministic starts each take a few L-BFGS-B steps, on the likelihood of a
+    fixed random sample of the customers when there are many; the best is
+    followed to convergence there and finished by Newton steps on the exact
+    likelihood of all of them (see :mod:`lapsewise.optimum`). Standard errors come
+    from the observed information, the Hessian of the log-likelihood by finite
+    differences of its exact gradient. The cost grows with the number of
+    distinct histories, not customers.
 
     References
     ----------
@@ -384,42 +478,12 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     expansion = expand(histories)
     customers = int(histories.count.sum())
     bounds = [_LOG_BOUNDS] * 4 + ([_RHO_BOUNDS] if mailing_history else [])
-
-    def objective_on(part: Expansion):
-        scale = 1.0 / max(int(part.histories.count.sum()), 1)
-
-        def objective(theta: np.ndarray) -> tuple[float, np.ndarray]:
-            params = _unpack(theta, mailing_history)
-            value, grad = total_gradient(part, params)
-            if not np.isfinite(value):
-                return 1e10, np.zeros_like(theta)
-            chain = np.array(params[:4]) * grad[:4]  # d/d log(parameter)
-            if mailing_history:
-                chain = np.append(chain, grad[4])
-            return -value * scale, -chain * scale
-
-        return objective
-
-    objective = objective_on(expansion)
-    scale = 1.0 / max(customers, 1)
-    # Every start takes a few steps (on a fixed sample of histories when there are many);
-    # the most promising one is then followed to convergence on all of them.
-    sample = expansion if histories.size <= _SCOUT_SAMPLE else expand(_sample(histories, _SCOUT_SAMPLE))
-    scout_objective = objective_on(sample)
-    scouts = []
-    for start in _STARTS:
-        theta0 = np.log(np.array(start[:4]))
-        if mailing_history:
-            theta0 = np.append(theta0, start[4])
-        scouts.append(optimize.minimize(scout_objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": _SCOUT_STEPS}))
-    lead = min(scouts, key=lambda result: result.fun)
-    options = {"maxiter": 1000, "ftol": 1e-13, "gtol": 1e-8}
-    best = optimize.minimize(objective, lead.x, jac=True, method="L-BFGS-B", bounds=bounds, options=options)
-    if not best.success:
-        # A line search that stalls at the optimum reports failure; a restart from there settles it.
-        again = optimize.minimize(objective, best.x, jac=True, method="L-BFGS-B", bounds=bounds, options=options)
-        if again.fun <= best.fun:
-            best = again
+    objective = _objective(expansion, mailing_history)
+    stand_in = None
+    if histories.size > _SCOUT_SAMPLE:
+        stand_in = _objective(expand(_sample(histories, _SCOUT_SAMPLE)), mailing_history)
+    starts = [np.append(np.log(start[:4]), start[4:] if mailing_history else []) for start in _STARTS]
+    best = optimum.maximize(objective, starts, bounds, customers, _SCOUT_STEPS, stand_in)
     params = _unpack(best.x, mailing_history)
     names = PARAMETERS if mailing_history else PARAMETERS[:4]
     on_bound = _on_bounds(best.x, bounds, names)
@@ -428,11 +492,12 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     if mailing_history and not _has_unmailed_quarter(histories):
         unidentified.append("rho")
         warnings.append("no customer has an unmailed quarter, so rho is not identified by the data")
-    std_errors = _standard_errors(expansion, params, mailing_history, on_bound + unidentified)
+    free = [name not in on_bound + unidentified for name in names]
+    errors = optimum.standard_errors(best.hessian, best.x, customers, logged=[name != "rho" for name in names], free=free)
     repeaters = int(histories.count[histories.x > 0].sum())
     if repeaters < 100:
         warnings.append(f"only {repeaters} customers have a repeat purchase; the estimates rest on thin data")
-    if not best.success:
+    if not best.converged:
         warnings.append(f"the optimiser did not report convergence ({best.message})")
     return ChurnFit(
         alpha=params[0],
@@ -440,21 +505,45 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
         gamma=params[2],
         delta=params[3],
         rho=params[4],
-        std_errors=std_errors,
-        log_likelihood=-best.fun / scale,
+        std_errors=dict(zip(names, errors)),
+        log_likelihood=-best.fun * customers,
         customers=customers,
         histories=histories.size,
-        converged=bool(best.success),
+        converged=best.converged,
         warnings=tuple(warnings),
     )
 
 
+def _objective(expansion: Expansion, mailing_history: bool) -> optimum.Objective:
+    """The negative log-likelihood per customer of the expanded histories and its gradient, in search coordinates."""
+    scale = 1.0 / max(float(expansion.histories.count.sum()), 1.0)
+
+    def objective(theta: np.ndarray) -> tuple[float, np.ndarray]:
+        params = _unpack(theta, mailing_history)
+        value, grad = total_gradient(expansion, params)
+        if not np.isfinite(value):
+            return 1e10, np.zeros_like(theta)
+        chain = np.array(params[:4]) * grad[:4]  # d/d log(parameter)
+        if mailing_history:
+            chain = np.append(chain, grad[4])
+        return -value * scale, -chain * scale
+
+    return objective
+
+
 def _sample(histories: Histories, size: int) -> Histories:
-    """A fixed random sample of distinct histories (seeded, so the fit is deterministic)."""
-    rows = np.sort(np.random.default_rng(0).choice(histories.size, size=size, replace=False))
+    """The histories of ``size`` customers drawn at random (seeded, so the fit is deterministic).
+
+    Each history's count becomes its draws times ``customers / size``, so the
+    sample's log-likelihood per customer estimates the whole base's without bias.
+    """
+    customers = float(histories.count.sum())
+    draws = np.random.default_rng(0).choice(histories.size, size=size, p=histories.count / customers)
+    rows, drawn = np.unique(draws, return_counts=True)
     return Histories(
-        **{name: getattr(histories, name)[rows] for name in ("x", "x_unmailed", "t_x", "n", "mailed_silent", "unmailed_silent", "after_last", "count")},
-        inverse=np.arange(size),
+        **{name: getattr(histories, name)[rows] for name in ("x", "x_unmailed", "t_x", "n", "mailed_silent", "unmailed_silent", "after_last")},
+        count=drawn * (customers / size),
+        inverse=np.arange(len(rows)),
     )
 
 
@@ -472,38 +561,6 @@ def _on_bounds(theta: np.ndarray, bounds: list[tuple[float, float]], names: tupl
         elif value <= low + 1e-3 or value >= high - 1e-3:
             hits.append(name)
     return hits
-
-
-def _standard_errors(
-    expansion: Expansion,
-    params: tuple[float, float, float, float, float | None],
-    mailing_history: bool,
-    on_bound: list[str],
-) -> dict[str, float | None]:
-    """Standard errors from the observed information: the Hessian of the log-likelihood by central
-    differences of its exact gradient, in the natural parameters, inverted over the parameters not on a bound."""
-    names = list(PARAMETERS if mailing_history else PARAMETERS[:4])
-    free = [names.index(name) for name in names if name not in on_bound]
-    point = np.array([p if p is not None else 0.0 for p in params[: len(names)]], dtype=float)
-    hessian = np.zeros((len(names), len(names)))
-    for i in range(len(names)):
-        step = 1e-5 * max(abs(point[i]), 1e-2)
-        up, down = point.copy(), point.copy()
-        up[i] += step
-        down[i] -= step
-        grad_up = total_gradient(expansion, (*up[:4], up[4] if mailing_history else None))[1][: len(names)]
-        grad_down = total_gradient(expansion, (*down[:4], down[4] if mailing_history else None))[1][: len(names)]
-        hessian[:, i] = (grad_up - grad_down) / (2 * step)
-    hessian = (hessian + hessian.T) / 2
-    errors: dict[str, float | None] = {name: None for name in names}
-    try:
-        covariance = np.linalg.inv(-hessian[np.ix_(free, free)])
-    except np.linalg.LinAlgError:
-        return errors
-    for position, index in enumerate(free):
-        variance = covariance[position, position]
-        errors[names[index]] = float(math.sqrt(variance)) if variance > 0 and np.isfinite(variance) else None
-    return errors
 
 
 # ---------------------------------------------------------------- posterior quantities

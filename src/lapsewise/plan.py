@@ -405,7 +405,7 @@ class Plan:
 
 def _members(values: CustomerValues, problem: PlanProblem) -> list[np.ndarray]:
     """Row indices of the customers who may be mailed in each segment (one grouping pass, not one per segment)."""
-    codes = pd.Categorical(values.segment, categories=list(problem.segments)).codes
+    codes = pd.Index(list(problem.segments)).get_indexer(np.asarray(values.segment))
     rows = np.flatnonzero((codes >= 0) & ~values.suppressed)
     rows = rows[np.argsort(codes[rows], kind="stable")]
     bounds = np.searchsorted(codes[rows], np.arange(len(problem.segments) + 1))

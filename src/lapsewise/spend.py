@@ -39,9 +39,9 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.optimize import minimize
 from scipy.special import digamma, gammaln
 
+from lapsewise import optimum
 from lapsewise.errors import InputError
 
 PARAMETER_NAMES = ("p", "q", "gamma")
@@ -60,10 +60,6 @@ _STARTING_SHAPES = ((1.0, 2.0), (3.0, 4.0), (10.0, 11.0), (0.5, 1.5))
 _SCOUT_STEPS = 8
 # How close (in log space) an estimate must be to an end of its range to count as on it.
 _ON_BOUND = 1e-3
-# Mean negative log-likelihoods this close (relative) are the same optimum.
-_SAME_OPTIMUM = 1e-10
-# Relative step of the finite-difference Hessian.
-_HESSIAN_STEP = 1e-5
 
 
 # ---------------------------------------------------------------- likelihood
@@ -279,13 +275,14 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
 
     Only customers with at least one repeat purchase and a finite, positive mean
     repeat value are used; the others are ignored, and the number used is
-    reported. The log-likelihood is maximised with L-BFGS-B over the logarithms
-    of ``p``, ``q`` and ``gamma``: several fixed starting points each take a few
-    steps and the best is followed to convergence. Spend is divided by its median while searching (``gamma`` scales with
-    spend; ``p`` and ``q`` do not), so the search behaves the same in any currency.
-    Standard errors come from the observed information: a central
-    finite-difference Hessian (of the analytic gradient) of the negative
-    log-likelihood in ``p``, ``q`` and ``gamma``, inverted.
+    reported. The log-likelihood is maximised over the logarithms of ``p``,
+    ``q`` and ``gamma`` (:func:`lapsewise.optimum.maximize`): several fixed
+    starting points each take a few L-BFGS-B steps, the best is followed to
+    convergence and finished by Newton steps. Spend is divided by its median
+    while searching (``gamma`` scales with spend; ``p`` and ``q`` do not), so the
+    search behaves the same in any currency. Standard errors come from the
+    observed information, the finite-difference Hessian (of the analytic
+    gradient) of the log-likelihood, by the delta method.
 
     Parameters
     ----------
@@ -334,23 +331,12 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
         value, gradient = sums.value_and_gradient(p, q, gamma)
         return -value / x.size, -gradient * np.array([p, q, gamma]) / x.size
 
-    def search(start: np.ndarray, steps: int):
-        return minimize(objective, start, jac=True, method="L-BFGS-B", bounds=log_bounds, options={"maxiter": steps, "ftol": 1e-12, "gtol": 1e-7})
-
-    # Every start takes a few steps; the most promising is followed to convergence.
-    scouts = []
-    for p_start, q_start in _STARTING_SHAPES:
-        gamma_start = float(np.mean(scaled)) * (q_start - 1.0) / p_start
-        start = np.clip(np.log([p_start, q_start, gamma_start]), [b[0] for b in log_bounds], [b[1] for b in log_bounds])
-        scout = search(start, _SCOUT_STEPS)
-        if np.isfinite(scout.fun):
-            scouts.append(scout)
-    best = search(min(scouts, key=lambda r: r.fun).x, 2000)
-    if not best.success:
-        # A line search that stalls at the optimum says "ABNORMAL"; a restart from there settles it.
-        again = search(best.x, 2000)
-        if again.fun <= best.fun + _SAME_OPTIMUM * max(1.0, abs(best.fun)):
-            best = again
+    # Gamma starts where the population mean equals the sample mean.
+    starts = [
+        np.clip(np.log([p_start, q_start, float(np.mean(scaled)) * (q_start - 1.0) / p_start]), *np.transpose(log_bounds))
+        for p_start, q_start in _STARTING_SHAPES
+    ]
+    best = optimum.maximize(objective, starts, log_bounds, x.size, _SCOUT_STEPS)
 
     p, q, gamma_scaled = (float(v) for v in np.exp(best.x))
     gamma = gamma_scaled * scale
@@ -359,11 +345,14 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
         for name, value, (low, high) in zip(PARAMETER_NAMES, best.x, log_bounds)
         if value - low < _ON_BOUND or high - value < _ON_BOUND
     ]
-    std_errors = _standard_errors(np.array([p, q, gamma]), x, m_x, free=[name not in on_bound for name in PARAMETER_NAMES])
+    errors = optimum.standard_errors(best.hessian, best.x, x.size, logged=[True] * 3, free=[name not in on_bound for name in PARAMETER_NAMES])
+    if errors[2] is not None:
+        errors[2] *= scale  # gamma was searched in units of the median spend
+    std_errors = dict(zip(PARAMETER_NAMES, errors))
     correlation = _correlation(x, m_x)
 
     warnings = []
-    if not best.success:
+    if not best.converged:
         warnings.append(f"the optimizer did not converge ({best.message}); treat the spend estimates with caution")
     for name in on_bound:
         value = {"p": p, "q": q, "gamma": gamma}[name]
@@ -400,39 +389,10 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
         std_errors=std_errors,
         log_likelihood=float(spend_log_likelihood(p, q, gamma, x, m_x).sum()),
         customers=int(x.size),
-        converged=bool(best.success),
+        converged=best.converged,
         frequency_value_correlation=correlation,
         warnings=tuple(warnings),
     )
-
-
-def _standard_errors(estimates: np.ndarray, x: np.ndarray, m_x: np.ndarray, free: list[bool]) -> dict[str, float | None]:
-    """Standard errors of the free parameters from the inverted finite-difference observed information."""
-    hessian = np.empty((3, 3))
-    for j in range(3):
-        step = _HESSIAN_STEP * estimates[j]
-        up, down = estimates.copy(), estimates.copy()
-        up[j] += step
-        down[j] -= step
-        # Rows of the Hessian of the negative log-likelihood: differences of its gradient.
-        hessian[:, j] = -(_log_likelihood_gradient(*up, x, m_x) - _log_likelihood_gradient(*down, x, m_x)) / (2 * step)
-    hessian = (hessian + hessian.T) / 2
-    errors: dict[str, float | None] = {name: None for name in PARAMETER_NAMES}
-    index = np.flatnonzero(free)
-    if index.size == 0:
-        return errors
-    information = hessian[np.ix_(index, index)]
-    if not np.all(np.isfinite(information)):
-        return errors
-    try:
-        np.linalg.cholesky(information)
-    except np.linalg.LinAlgError:
-        return errors
-    variances = np.diag(np.linalg.inv(information))
-    for i, variance in zip(index, variances):
-        if np.isfinite(variance) and variance > 0:
-            errors[PARAMETER_NAMES[i]] = float(math.sqrt(variance))
-    return errors
 
 
 def _correlation(x: np.ndarray, m_x: np.ndarray) -> float:
