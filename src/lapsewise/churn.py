@@ -36,7 +36,7 @@ import numpy as np
 from scipy import sparse, special
 
 from lapsewise import optimum
-from lapsewise.panel import Histories, compress_arrays
+from lapsewise.panel import Histories, compress_arrays, integer_codes
 
 PARAMETERS = ("alpha", "beta", "gamma", "delta", "rho")
 _LOG_BOUNDS = (math.log(1e-3), math.log(1e4))
@@ -173,21 +173,6 @@ class Expansion:
         return self.moment_terms if rho is not None else self.moment_terms_all_mailed
 
 
-def _codes(keys: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
-    """Sorted distinct keys and each key's index among them (``np.unique`` with ``return_inverse``).
-
-    Keys are small non-negative integers (below ``size``), so a table of that size
-    replaces sorting when it fits comfortably in memory.
-    """
-    if size > 50_000_000:
-        distinct, inverse = np.unique(keys, return_inverse=True)
-        return distinct, inverse.ravel()
-    present = np.zeros(size, dtype=bool)
-    present[keys] = True
-    index = (np.cumsum(present) - 1).astype(np.int32 if size < 2**31 else np.int64)
-    return np.flatnonzero(present), index[keys]
-
-
 def _restarting_sums(start: np.ndarray, increments: np.ndarray, totals: np.ndarray, first: np.ndarray) -> np.ndarray:
     """Running sums over the cells that restart with every history.
 
@@ -242,14 +227,14 @@ def expand(histories: Histories) -> Expansion:
     state_key += a
     state_key *= base
     state_key += b
-    states, cell_state = _codes(state_key, state_count)
+    states, cell_state = integer_codes(state_key, state_count)
     del state_key
     state_triples = states % base**3
 
     def key(x_, a_, b_):
         return (x_.astype(np.int64) * base + a_) * base + b_
 
-    unique_triples, inverse = _codes(np.concatenate([state_triples, key(x, a_n, b_n), key(x + 1, a_n, b_n)]), base**3)
+    unique_triples, inverse = integer_codes(np.concatenate([state_triples, key(x, a_n, b_n), key(x + 1, a_n, b_n)]), base**3)
     triples = np.stack([unique_triples // (base * base), unique_triples // base % base, unique_triples % base], axis=1).astype(np.int64)
     data = np.ones(cells)
     terms = sparse.csr_matrix((data, cell_state.astype(np.int32, copy=False), indptr.astype(np.int32)), shape=(rows, len(states)))

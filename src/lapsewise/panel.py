@@ -82,10 +82,55 @@ class Panel:
 MAX_QUARTERS = 400  # a century of quarters: the panel is customers x quarters, so this bounds its memory
 
 
+_PER_DAY = {"h": 24, "m": 24 * 60, "s": 86_400, "ms": 86_400_000, "us": 86_400_000_000, "ns": 86_400_000_000_000}
+
+
+def _day_numbers(dates: np.ndarray) -> np.ndarray:
+    """Days since 1970-01-01 of a datetime64 array (an integer division for units finer than a day)."""
+    unit, count = np.datetime_data(dates.dtype)
+    if unit in _PER_DAY and _PER_DAY[unit] % count == 0:
+        return dates.view(np.int64) // (_PER_DAY[unit] // count)
+    return dates.astype("datetime64[D]").astype(np.int64)
+
+
 def quarter_index(dates: np.ndarray, fiscal_year_start: int = 1) -> np.ndarray:
-    """Absolute quarter index of each date (datetime64 array)."""
-    months = dates.astype("datetime64[M]").astype(np.int64) + 1970 * 12  # months since January of year 0
+    """Absolute quarter index of each date (datetime64 array).
+
+    Calendar arithmetic is done once per distinct day in the dates' range (a
+    lookup table), not once per date: millions of dates span a few thousand days.
+    """
+    dates = np.asarray(dates)
+    if dates.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    days = _day_numbers(dates)
+    low, high = int(days.min()), int(days.max())
+    if high - low < 1_000_000:  # under about 2,700 years of days
+        calendar = np.arange(low, high + 1).astype("datetime64[D]")
+        table = _quarter_of_month(calendar.astype("datetime64[M]").astype(np.int64), fiscal_year_start)
+        days -= low
+        return table.astype(np.int32)[days]
+    return _quarter_of_month(dates.astype("datetime64[M]").astype(np.int64), fiscal_year_start)
+
+
+def _quarter_of_month(months_since_1970: np.ndarray, fiscal_year_start: int) -> np.ndarray:
+    months = months_since_1970 + 1970 * 12  # months since January of year 0
     return (months - (fiscal_year_start - 1)) // 3
+
+
+def integer_codes(keys: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Sorted distinct keys and each key's index among them (``np.unique`` with ``return_inverse``).
+
+    Keys are non-negative integers below ``size``; when a table of that size fits
+    comfortably in memory it replaces sorting.
+    """
+    if size > 50_000_000:
+        distinct, inverse = np.unique(keys, return_inverse=True)
+        return distinct, inverse.ravel()
+    present = np.zeros(size, dtype=bool)
+    present[keys] = True
+    index = np.cumsum(present, dtype=np.int32 if size < 2**31 else np.int64)
+    index -= 1
+    return np.flatnonzero(present), index[keys]
 
 
 def quarter_start(quarter: int, fiscal_year_start: int = 1) -> dt.date:
@@ -184,8 +229,7 @@ def build_panel(
     # Net spend per customer and quarter.
     base = quarters.min()
     span = end_quarter - base + 1
-    cell = codes * span + (quarters - base)
-    cells, inverse = np.unique(cell, return_inverse=True)
+    cells, inverse = integer_codes(codes * span + (quarters - base), len(ids.categories) * span)
     net = np.bincount(inverse, weights=amounts, minlength=len(cells))
     cell_code = cells // span
     cell_quarter = cells % span + base
@@ -220,16 +264,16 @@ def build_panel(
     row = new_code[cell_code[bought]]
     live = row >= 0
     row = row[live]
-    column = cell_quarter[bought][live] - first_quarter[row]
-    purchased[row, column] = 1
-    spend[row, column] = net[bought][live]
+    flat = row * width + (cell_quarter[bought][live] - first_quarter[row])
+    purchased.ravel()[flat] = 1
+    spend.ravel()[flat] = net[bought][live]
 
     n = end_quarter - first_quarter
     if mailings is None:
         mailed = (np.arange(width)[None, :] >= 1) & (np.arange(width)[None, :] <= n[:, None])
         mailed = mailed.astype(np.uint8)
     else:
-        mailed, mail_counts = _mailed_quarters(mailings, category_text, new_code, customer_ids, first_quarter, end_quarter, width, fiscal_year_start)
+        mailed, mail_counts = _mailed_quarters(mailings, ids.categories, new_code, first_quarter, end_quarter, width, fiscal_year_start)
         counts.update(mail_counts)
     return Panel(
         customer_ids=customer_ids,
@@ -246,22 +290,25 @@ def build_panel(
 
 def _mailed_quarters(
     mailings: Loaded,
-    order_id_text: np.ndarray,
+    order_ids: pd.Index,
     order_new_code: np.ndarray,
-    customer_ids: np.ndarray,
     first_quarter: np.ndarray,
     end_quarter: int,
     width: int,
     fiscal_year_start: int,
 ) -> tuple[np.ndarray, dict[str, int]]:
-    """Mark each customer-quarter in which at least one piece was mailed."""
+    """Mark each customer-quarter in which at least one piece was mailed.
+
+    The mailings' own id categories are looked up once in the orders' categories
+    (whose hash table pandas already built), then every mailing row maps to its
+    panel row through integer codes.
+    """
     counts = {f"mailings file: {k}": v for k, v in mailings.repairs.items()}
     frame = mailings.frame
     ids = frame[ID_COLUMN].array
-    mail_codes = np.asarray(ids.codes, dtype=np.int64)
-    # Map the mailings' own id categories onto panel rows through the id text.
-    lookup = pd.Index(customer_ids).get_indexer(np.asarray(ids.categories).astype(str))
-    row = lookup[mail_codes]
+    position = order_ids.get_indexer(ids.categories)
+    lookup = np.where(position >= 0, order_new_code[position], -1).astype(np.int32)
+    row = lookup[np.asarray(ids.codes)]
     unknown = row < 0
     if unknown.any():
         counts["mailing rows for customers not in the orders left out"] = int(unknown.sum())
@@ -269,12 +316,15 @@ def _mailed_quarters(
     after = (quarters > end_quarter) & ~unknown
     if after.any():
         counts["mailing rows after the as-of quarter ignored"] = int(after.sum())
-    keep = ~unknown & ~after
-    row = row[keep]
-    column = quarters[keep] - first_quarter[row]
-    inside = column >= 1
-    mailed = np.zeros((len(customer_ids), width), dtype=np.uint8)
-    mailed[row[inside], column[inside]] = 1
+    if unknown.any() or after.any():
+        keep = ~unknown & ~after
+        row, quarters = row[keep], quarters[keep]
+    column = quarters - first_quarter.astype(np.int32)[row]
+    mailed = np.zeros((len(first_quarter), width), dtype=np.uint8)
+    flat = row.astype(np.int32 if mailed.size < 2**31 else np.int64)
+    flat *= width
+    flat += column
+    mailed.ravel()[flat[column >= 1]] = 1
     return mailed, counts
 
 
@@ -422,8 +472,16 @@ def history_arrays(purchased: np.ndarray, mailed: np.ndarray, n: np.ndarray) -> 
     silent = observed & ~bought
     silent_quarters = n - t_x
     after_width = max(int(silent_quarters.max()), 1) if len(n) else 1
-    gather = np.minimum(t_x[:, None] + 1 + np.arange(after_width)[None, :], width - 1)
-    after_last = np.take_along_axis(was_mailed, gather, axis=1) & (np.arange(after_width)[None, :] < silent_quarters[:, None])
+    # Rows that share t_x share the shift that left-aligns their quarters after it: one slice per t_x.
+    after_last = np.zeros((len(n), after_width), dtype=bool)
+    by_last = np.argsort(t_x, kind="stable")
+    bounds = np.searchsorted(t_x[by_last], np.arange(width + 1))
+    for last in range(width - 1):
+        rows = by_last[bounds[last] : bounds[last + 1]]
+        if len(rows):
+            shifted = was_mailed[rows, last + 1 :]
+            after_last[rows, : shifted.shape[1]] = shifted[:, :after_width]
+    after_last &= np.arange(after_width)[None, :] < silent_quarters[:, None]
     return {
         "x": bought.sum(axis=1, dtype=np.int64),
         "x_unmailed": (bought & ~was_mailed).sum(axis=1, dtype=np.int64),
@@ -442,17 +500,31 @@ def compress(panel: Panel) -> Histories:
 
 
 def compress_arrays(arrays: dict[str, np.ndarray]) -> Histories:
+    """Distinct rows of the sufficient statistics, in order of first appearance, with counts and each row's history."""
     scalars = ["x", "x_unmailed", "t_x", "n", "mailed_silent", "unmailed_silent"]
+    if len(arrays["x"]) == 0:
+        empty = np.zeros(0, dtype=np.int64)
+        return Histories(**{s: empty for s in scalars}, after_last=arrays["after_last"], count=empty, inverse=empty)
+    stacked = np.stack([np.asarray(arrays[s], dtype=np.int64) for s in scalars], axis=1)
+    # The statistics as 64-bit words: the six counts in one word (9 bits each) when they fit, then the mail flags, 64 to a word.
+    if stacked.size and stacked.min() >= 0 and stacked.max() < 512:
+        words = [(stacked << (9 * np.arange(len(scalars)))).sum(axis=1)]
+    else:
+        words = list(stacked.T)
     packed = np.packbits(arrays["after_last"], axis=1)
-    key = np.concatenate([np.stack([arrays[s] for s in scalars], axis=1).astype(np.int16).view(np.uint8), packed], axis=1)
-    key = np.ascontiguousarray(key)
-    rows = key.view(np.dtype((np.void, key.shape[1]))).ravel()
-    _, first, inverse, count = np.unique(rows, return_index=True, return_inverse=True, return_counts=True)
+    packed = np.pad(packed, ((0, 0), (0, -packed.shape[1] % 8)))
+    words += list(np.ascontiguousarray(packed).view(np.uint64).T)
+    codes = pd.factorize(words[0])[0]
+    for word in words[1:]:
+        word_codes = pd.factorize(word)[0]
+        codes = pd.factorize(codes * (int(word_codes.max()) + 1) + word_codes)[0]
+    # factorize numbers patterns as they first appear, so a row starts a pattern where the running maximum grows.
+    first = np.flatnonzero(np.diff(np.maximum.accumulate(codes), prepend=-1) > 0)
     return Histories(
-        **{s: arrays[s][first] for s in scalars},
+        **{s: np.asarray(arrays[s])[first] for s in scalars},
         after_last=arrays["after_last"][first],
-        count=count.astype(np.int64),
-        inverse=inverse.ravel().astype(np.int64),
+        count=np.bincount(codes, minlength=len(first)).astype(np.int64),
+        inverse=codes.astype(np.int64),
     )
 
 
