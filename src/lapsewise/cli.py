@@ -171,13 +171,13 @@ def score(
 ) -> None:
     """Write per-customer P(alive), P(order next quarter), expected purchases, DERT and expected order value."""
     from lapsewise.model import load_model, score_customers
-    from lapsewise.output import check_writable, write_atomic
+    from lapsewise.output import check_writable, write_atomic, write_csv
 
     check_writable(out, force)
     model = load_model(model_file)
     panel = _panel(orders, mailings, as_of or model.as_of, model.fiscal_year_start, columns)
     scores = score_customers(model, panel, horizon, annual_discount_rate)
-    write_atomic(out, lambda p: scores.to_csv(p, index=False, float_format="%.6g"), force)
+    write_atomic(out, lambda p: write_csv(p, scores), force)
     console = _console()
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
@@ -369,7 +369,7 @@ def mail_list_command(
     overrides: dict | None = None,
 ) -> None:
     """Write this quarter's mail list: one row per customer with the decision."""
-    from lapsewise.output import check_writable, write_atomic
+    from lapsewise.output import check_writable, write_atomic, write_csv
     from lapsewise.plan import mail_list, make_plan, neutralise_formulas
 
     check_writable(out, force)
@@ -381,7 +381,7 @@ def mail_list_command(
             result = make_plan(values, policy, budget)
         with step("Writing the mail list"):
             rows = neutralise_formulas(mail_list(values, result.assignment))
-            write_atomic(out, lambda p: rows.to_csv(p, index=False, float_format="%.6g"), force)
+            write_atomic(out, lambda p: write_csv(p, rows), force)
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_mail_list(console, rows, result, out)

@@ -186,7 +186,7 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
     from lapsewise.model import fit_model, return_curves
     from lapsewise.output import dumps_stable, write_text_atomic
     from lapsewise.panel import panel_from_files
-    from lapsewise.output import write_atomic
+    from lapsewise.output import write_atomic, write_csv
     from lapsewise.plan import customer_values, mail_list, make_plan, neutralise_formulas
     from lapsewise.policy import Beliefs, Economics, Policy, Segments, Version, build_stop_table, typical_order_value
     from lapsewise.simulate import simulate_policies
@@ -229,6 +229,6 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
     plan = make_plan(values, policy, DEMO_BUDGET)
     render.print_plan(console, plan, panel, values)
     rows = neutralise_formulas(mail_list(values, plan.assignment))
-    write_atomic(paths["mail_list"], lambda p: rows.to_csv(p, index=False, float_format="%.6g"), force)
+    write_atomic(paths["mail_list"], lambda p: write_csv(p, rows), force)
     render.print_mail_list(console, rows, plan, paths["mail_list"])
     render.print_caution(console)

@@ -10,9 +10,14 @@ import json
 import os
 import tempfile
 from pathlib import Path
-from typing import Callable
+from typing import TYPE_CHECKING, Callable
+
+import numpy as np
 
 from lapsewise.errors import InputError
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 
 def check_writable(path: str | Path, force: bool) -> Path:
@@ -49,3 +54,101 @@ def write_text_atomic(path: str | Path, text: str, force: bool = False) -> Path:
 def dumps_stable(data: object) -> str:
     """JSON with sorted keys and a trailing newline: the same input always gives the same bytes."""
     return json.dumps(data, indent=2, sort_keys=True, allow_nan=False) + "\n"
+
+
+# ---------------------------------------------------------------- CSV
+
+_CSV_BLOCK = 500_000  # rows turned into text at a time, to bound memory
+
+
+def write_csv(path: str | Path, frame: "pd.DataFrame", significant: int = 6) -> None:
+    """Write ``frame`` as CSV: a header, then one line per row.
+
+    Fields are quoted only when they hold a comma, a quote or a line break (as
+    Python's csv module does), numbers are rounded to ``significant`` digits,
+    missing values are empty. Each column becomes text through pyarrow's
+    vectorised kernels and the lines are joined in blocks, so a million rows take
+    a fraction of the time a row-by-row writer needs.
+    """
+    import pyarrow as pa
+
+    header = ",".join(_quote_text(str(name)) for name in frame.columns) + "\n"
+    with open(path, "wb") as handle:
+        handle.write(header.encode("utf-8"))
+        for start in range(0, len(frame), _CSV_BLOCK):
+            block = frame.iloc[start : start + _CSV_BLOCK]
+            fields = [_csv_field(block[name], significant) for name in block.columns]
+            lines = _pc().binary_join_element_wise(*fields, ",")
+            lines = _pc().binary_join_element_wise(lines, pa.scalar(""), "\n")  # each line ends in a newline
+            handle.write(_string_bytes(lines))
+
+
+def _pc():
+    import pyarrow.compute
+
+    return pyarrow.compute
+
+
+def _quote_text(text: str) -> str:
+    return '"' + text.replace('"', '""') + '"' if any(c in text for c in ',"\r\n') else text
+
+
+def _csv_field(series: "pd.Series", significant: int):
+    """One column as a pyarrow string array of CSV fields (missing values empty)."""
+    import pandas as pd
+    import pyarrow as pa
+
+    pc = _pc()
+    if isinstance(series.dtype, pd.CategoricalDtype):
+        labels = _quote_strings(pa.array(series.cat.categories.astype(str).to_numpy(dtype=object), type=pa.string()))
+        codes = series.cat.codes.to_numpy()
+        text = pc.take(labels, pa.array(codes, mask=codes < 0))
+    elif pd.api.types.is_bool_dtype(series.dtype):
+        text = pa.array(np.where(series.to_numpy(dtype=bool), "True", "False"), type=pa.string())
+    elif pd.api.types.is_float_dtype(series.dtype):
+        values = round_significant(series.to_numpy(dtype=np.float64), significant)
+        text = pc.cast(pa.array(values, from_pandas=True), pa.string())
+    elif pd.api.types.is_integer_dtype(series.dtype):
+        text = pc.cast(pa.array(series.to_numpy()), pa.string())
+    else:
+        values = series.to_numpy()
+        missing = pd.isna(values)
+        strings = pa.array(np.where(missing, "", values.astype(str)) if missing.any() else values.astype(str), type=pa.string())
+        text = _quote_strings(strings)
+    return pc.fill_null(text, "")
+
+
+def _quote_strings(strings):
+    """Quote the strings that hold a comma, quote or line break, doubling their quotes."""
+    pc = _pc()
+    needs = pc.match_substring_regex(strings, '[,"\\r\\n]')
+    if not pc.any(needs).as_py():
+        return strings
+    quoted = pc.binary_join_element_wise('"', pc.replace_substring(strings, '"', '""'), '"', "")
+    return pc.if_else(needs, quoted, strings)
+
+
+def _string_bytes(strings) -> memoryview:
+    """The characters of a pyarrow string array, concatenated (its data buffer between the first and last offsets)."""
+    strings = strings.combine_chunks() if hasattr(strings, "combine_chunks") else strings
+    offsets = np.frombuffer(strings.buffers()[1], dtype=np.int32)[strings.offset : strings.offset + len(strings) + 1]
+    data = strings.buffers()[2]
+    if data is None:
+        return memoryview(b"")
+    return memoryview(data)[int(offsets[0]) : int(offsets[-1])]
+
+
+def round_significant(values: np.ndarray, digits: int) -> np.ndarray:
+    """Round each finite, non-zero value to ``digits`` significant digits (NaN and infinities pass through)."""
+    out = np.array(values, dtype=np.float64, copy=True)
+    finite = np.isfinite(out) & (out != 0)
+    if not finite.any():
+        return out
+    shown = out[finite]
+    decimals = digits - 1 - np.floor(np.log10(np.abs(shown)))
+    power = 10.0 ** np.abs(decimals)  # an exact power of ten up to 1e22
+    up = decimals >= 0
+    # Scale by an exact power of ten, round, scale back: the result is the double nearest the rounded decimal.
+    shown = np.where(up, np.round(shown * power) / power, np.round(shown / power) * power)
+    out[finite] = shown
+    return out
