@@ -110,6 +110,8 @@ def _csv_field(series: "pd.Series", significant: int):
         text = pc.cast(pa.array(values, from_pandas=True), pa.string())
     elif pd.api.types.is_integer_dtype(series.dtype):
         text = pc.cast(pa.array(series.to_numpy()), pa.string())
+    elif hasattr(series.array, "__arrow_array__"):  # text already held by pyarrow: no conversion
+        text = _quote_strings(pc.cast(pa.array(series.array), pa.string()))
     else:
         values = series.to_numpy()
         missing = pd.isna(values)

@@ -47,8 +47,8 @@ import pulp
 from lapsewise.churn import posterior
 from lapsewise.errors import PlanError
 from lapsewise.model import Model
-from lapsewise.panel import Panel, band_labels, band_of, compress, summarize
-from lapsewise.policy import Beliefs, Policy, band_index, hold_value, mail_value_with, solve, spend_bands
+from lapsewise.panel import Panel, band_labels, band_of, compress, integer_codes, summarize
+from lapsewise.policy import Beliefs, Policy, band_index, each_band, hold_value, mail_value_with, solve, spend_bands
 from lapsewise.spend import expected_order_value
 
 CHUNKS = 40
@@ -81,12 +81,16 @@ class CustomerValues:
 
 def segment_labels(summary, policy: Policy, attribute: np.ndarray | None = None) -> np.ndarray:
     """Segment names such as '2-3 repeat, 1 silent' (and ', <attribute>' when given)."""
-    frequency = np.asarray(band_labels(policy.segments.frequency_bands))[band_of(summary.x, policy.segments.frequency_bands)]
-    silent = np.asarray(band_labels(policy.segments.silent_bands))[band_of(summary.silent_quarters, policy.segments.silent_bands)]
-    labels = pd.Series(frequency).str.cat(pd.Series(silent), sep=" repeat, ") + " silent"
+    frequency_labels = band_labels(policy.segments.frequency_bands)
+    silent_labels = band_labels(policy.segments.silent_bands)
+    # Few distinct segments: name each (frequency band, silent band[, attribute]) once and index the names.
+    code = band_of(summary.x, policy.segments.frequency_bands) * len(silent_labels) + band_of(summary.silent_quarters, policy.segments.silent_bands)
+    names = [f"{f} repeat, {s} silent" for f in frequency_labels for s in silent_labels]
     if attribute is not None:
-        labels = labels + ", " + pd.Series(attribute)
-    return labels.to_numpy(dtype=object)
+        attribute_code, attribute_names = pd.factorize(np.asarray(attribute, dtype=object))
+        code = code * len(attribute_names) + attribute_code
+        names = [f"{name}, {extra}" for name in names for extra in attribute_names]
+    return np.asarray(names, dtype=object)[code]
 
 
 def reference_piece_cost(policy: Policy) -> float:
@@ -120,19 +124,20 @@ def customer_values(
         order_values = np.full(panel.customers, economics.order_value)
     band = band_index(bands, order_values)
     key = histories.inverse * len(bands) + band
-    distinct, first, inverse = np.unique(key, return_index=True, return_inverse=True)
+    distinct, inverse = integer_codes(key, histories.size * len(bands))
     state = distinct // len(bands)
     n, x, b = histories.n[state], histories.x[state], histories.unmailed_quarters[state]
     alive = post.alive_now[state]
     values = np.empty((len(distinct), len(policy.versions)))
     piece = reference_piece_cost(policy)
-    for index, spend in enumerate(bands):
+
+    def value_band(index: int) -> None:
         members = (distinct % len(bands)) == index
         if not members.any():
-            continue
+            return
         program = solve(
             beliefs,
-            economics.margin(spend.order_value),
+            economics.margin(bands[index].order_value),
             piece,
             economics.discount,
             economics.horizon_quarters,
@@ -145,6 +150,8 @@ def customer_values(
         hold = hold_value(program, *args)
         for column, version in enumerate(policy.versions):
             values[members, column] = mail_value_with(program, *args, version.response, version.piece_cost) - hold
+
+    each_band(value_band, range(len(bands)))
     return CustomerValues(
         customer_ids=panel.customer_ids,
         segment=segment_labels(summary, policy, attribute),
@@ -486,10 +493,10 @@ def mail_list(values: CustomerValues, assignment: np.ndarray) -> pd.DataFrame:
     best = values.values.argmax(axis=1)
     version_index = np.where(assignment >= 0, assignment, best)
     value = values.values[np.arange(len(version_index)), version_index]
-    decision = np.where(
-        values.suppressed,
-        "suppressed",
-        np.where(assignment >= 0, "mail", np.where(value > 0, "over-budget", "drop")),
+    decision = np.select(
+        [values.suppressed, assignment >= 0, value > 0],
+        [DECISIONS.index("suppressed"), DECISIONS.index("mail"), DECISIONS.index("over-budget")],
+        DECISIONS.index("drop"),
     )
     return pd.DataFrame(
         {
@@ -499,7 +506,7 @@ def mail_list(values: CustomerValues, assignment: np.ndarray) -> pd.DataFrame:
             "p_alive": values.p_alive,
             "p_buy": values.p_buy * values.responses[version_index],
             "value_of_mailing": value,
-            "decision": pd.Categorical(decision, categories=list(DECISIONS)),
+            "decision": pd.Categorical.from_codes(decision, categories=list(DECISIONS)),
         }
     )
 

@@ -42,6 +42,8 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import os
+from concurrent.futures import ThreadPoolExecutor
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -339,12 +341,12 @@ def _next_quarter(log_moment: np.ndarray, log_alive: np.ndarray, shift_x: int, s
     return out
 
 
-def _shifted(table: np.ndarray, quarters: int) -> np.ndarray:
-    """``table`` read ``quarters`` later along n (zero beyond the grid)."""
-    if quarters == 0:
-        return table
-    out = np.zeros_like(table)
-    out[:, :, :-quarters] = table[:, :, quarters:]
+def _times_shifted(table: np.ndarray, factor: np.ndarray, quarters: int) -> np.ndarray:
+    """``table`` times ``factor`` read ``quarters`` later along n (zero beyond the grid), without a shifted copy."""
+    out = np.empty_like(table)
+    rows = table.shape[2] - quarters
+    np.multiply(table[:, :, :rows], factor[:, :, quarters:], out=out[:, :, :rows])
+    out[:, :, rows:] = 0.0
     return out
 
 
@@ -389,12 +391,13 @@ def solve(
     margins_and_costs = np.zeros_like(log_moment)
     still_silent = np.ones_like(log_moment)  # alive and silent through i - 1 mailed quarters
     for i in range(1, horizon + 1):
-        first_purchase = still_silent * _shifted(buy_next, i - 1)
+        first_purchase = _times_shifted(still_silent, buy_next, i - 1)
         margins_and_costs += discount**i * (margin * first_purchase - piece_cost * no_purchase_yet)
         no_purchase_yet -= first_purchase
-        purchase_after.append(discount**i * first_purchase)
+        first_purchase *= discount**i
+        purchase_after.append(first_purchase)
         known_part.append(margins_and_costs.copy())
-        still_silent = still_silent * _shifted(silent_next, i - 1)
+        still_silent = _times_shifted(still_silent, silent_next, i - 1)
         if rho > 0:
             silent_after.append(discount**i * still_silent)
     del no_purchase_yet, margins_and_costs, still_silent
@@ -601,6 +604,16 @@ def typical_order_value(model, economics: Economics) -> float:
     return float(spend.population_mean)
 
 
+def each_band(function, bands):
+    """``[function(band) for band in bands]``, two bands at a time.
+
+    The bands' programs are independent and their work is numpy operations that
+    release the GIL, so two threads keep both cores of a laptop busy.
+    """
+    with ThreadPoolExecutor(max_workers=min(2, os.cpu_count() or 1)) as pool:
+        return list(pool.map(function, bands))
+
+
 def band_index(bands: tuple[SpendBand, ...], order_values: np.ndarray) -> np.ndarray:
     """Which band each expected order value falls in."""
     edges = np.array([band.low for band in bands[1:]])
@@ -654,11 +667,14 @@ def build_stop_table(model, economics: Economics, band_count: int = 3) -> StopTa
     histories = mailed_silent_histories(x, t_x, k)
     post = posterior(beliefs.churn_fit(), histories)
     alive, p_buy = post.alive_now[histories.inverse], post.p_buy[histories.inverse]
+
+    def band_decisions(band: SpendBand) -> Decisions:
+        program = solve(beliefs, economics.margin(band.order_value), economics.piece_cost, economics.discount, horizon, n_max=2 * horizon, b_max=0, n_min=0, x_max=horizon)
+        return decide(program, t_x + k, x, np.zeros_like(x), alive)
+
     row_frames, cell_frames = [], []
-    for band in bands:
+    for band, decisions in zip(bands, each_band(band_decisions, bands)):
         margin = economics.margin(band.order_value)
-        program = solve(beliefs, margin, economics.piece_cost, economics.discount, horizon, n_max=2 * horizon, b_max=0, n_min=0, x_max=horizon)
-        decisions = decide(program, t_x + k, x, np.zeros_like(x), alive)
         mail = decisions.mail.reshape(len(x_rows), len(silent))
         breakeven = (p_buy * margin >= economics.piece_cost).reshape(len(x_rows), len(silent))
         row_frames.append(
