@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from hypothesis import given
+from hypothesis import given, settings, strategies as st
 
 from conftest import (
     ANY_FILE,
@@ -26,7 +26,7 @@ from conftest import (
     repair_count,
 )
 from lapsewise.errors import InputError
-from lapsewise.load import load_id_list, load_mailings, load_orders
+from lapsewise.load import duplicate_rows, load_id_list, load_mailings, load_orders
 from lapsewise.panel import build_panel, panel_from_files
 
 
@@ -343,3 +343,22 @@ def test_an_implausibly_large_amount_is_refused(write_file):
     # Above 1e12 an amount is an export error, and would overflow the panel's float32 spend.
     with pytest.raises(InputError, match="row 2, column amount: 1e\\+38 is implausibly large"):
         load_orders(write_file("orders.csv", orders_text("A1,2023-01-15,1e38")))
+
+
+@settings(max_examples=80, deadline=None)
+@given(
+    st.lists(
+        st.tuples(
+            st.sampled_from(["A1", "B2", "C3", ""]),
+            st.sampled_from([0.0, -0.0, 1.5, float("nan"), 10.0]),
+            st.sampled_from(["2024-01-01", "2024-01-02"]),
+            st.integers(min_value=0, max_value=2),
+        ),
+        max_size=40,
+    )
+)
+def test_duplicate_rows_agree_with_pandas(rows):
+    # Reference: pandas DataFrame.duplicated(keep="first"), which duplicate_rows computes faster.
+    frame = pd.DataFrame(rows, columns=["customer_id", "amount", "order_date", "count"])
+    frame["order_date"] = pd.to_datetime(frame["order_date"])
+    assert duplicate_rows(frame).tolist() == frame.duplicated(keep="first").tolist()

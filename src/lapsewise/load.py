@@ -181,6 +181,36 @@ def _rows_with_surplus_fields(path: Path, width: int) -> int:
     return surplus
 
 
+def duplicate_rows(frame: pd.DataFrame) -> np.ndarray:
+    """``frame.duplicated(keep="first")`` as a boolean array, without hashing every row into a table.
+
+    Each row gets a 64-bit key mixed from its columns (numbers by their bits,
+    text by pandas' vectorised hash); sorting the keys finds the few that repeat,
+    and only the rows with a repeated key are compared exactly. Sorting millions of
+    integers is several times faster than building a hash table of them.
+    """
+    key = np.zeros(len(frame), dtype=np.uint64)
+    for position, name in enumerate(frame.columns):
+        column = frame[name]
+        if pd.api.types.is_datetime64_any_dtype(column):
+            bits = pd.DatetimeIndex(column).asi8.view(np.uint64)
+        elif pd.api.types.is_numeric_dtype(column):
+            # As doubles (+ 0.0 makes -0.0 and 0.0 alike): equal values give equal bits; the exact check settles the rest.
+            bits = (column.to_numpy(dtype=np.float64, na_value=np.nan) + 0.0).view(np.uint64)
+        else:
+            bits = pd.util.hash_array(column.to_numpy(dtype=object))
+        with np.errstate(over="ignore"):
+            key = (key ^ bits) * np.uint64(0x9E3779B97F4A7C15 + 2 * position)  # mix, then spread the bits
+            key ^= key >> np.uint64(29)
+    ordered = np.sort(key)
+    repeated = np.unique(ordered[1:][ordered[1:] == ordered[:-1]])
+    out = np.zeros(len(frame), dtype=bool)
+    if len(repeated):
+        candidates = np.flatnonzero(pd.Series(key).isin(repeated).to_numpy())  # a hash set of the few repeated keys
+        out[candidates[frame.iloc[candidates].duplicated(keep="first").to_numpy()]] = True
+    return out
+
+
 def _require_columns(name: str, frame: pd.DataFrame, wanted: dict[str, str]) -> None:
     """Check that every wanted column exists. ``wanted`` maps column name to the option that renames it."""
     for column, option in wanted.items():
@@ -322,7 +352,7 @@ def load_orders(
     _count_extra_columns(frame, [id_column, date_column, amount_column], repairs)
     factorized = pd.factorize(frame[id_column], use_na_sentinel=True)
     # Exact duplicate rows, compared with the ids as their codes (one hashing of the id text, not two).
-    duplicated = np.asarray(frame.assign(**{id_column: factorized[0]}).duplicated(keep="first"))
+    duplicated = duplicate_rows(frame.assign(**{id_column: factorized[0]}))
     if duplicated.any():
         repairs["exact duplicate rows dropped"] = int(duplicated.sum())
     ids = _clean_ids(name, frame[id_column], repairs, factorized)
