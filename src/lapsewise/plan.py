@@ -238,11 +238,22 @@ def chunk_values(sorted_values: np.ndarray, edges: np.ndarray | None = None) -> 
     return np.diff(edges), np.diff(prefix[edges])
 
 
+def segment_codes(segment: np.ndarray, names) -> np.ndarray:
+    """Each customer's position in ``names`` (-1 when not there).
+
+    Factorizing the object array hashes each of the few distinct label objects once
+    (Python caches a string's hash); an Index of a million labels would convert them all.
+    """
+    codes, labels = pd.factorize(np.asarray(segment, dtype=object))
+    position = {name: i for i, name in enumerate(names)}
+    lookup = np.array([position.get(label, -1) for label in labels] + [-1], dtype=np.int64)
+    return lookup[codes]  # code -1 (a missing label) reads the final -1
+
+
 def build_problem(values: CustomerValues, policy: Policy, budget: float | None) -> PlanProblem:
     """Group the customers who may be mailed into segments and chunk their values per version."""
     eligible = ~values.suppressed
-    frame = pd.DataFrame({"segment": values.segment[eligible]})
-    names = tuple(sorted(frame["segment"].unique()))
+    names = tuple(sorted(pd.unique(np.asarray(values.segment[eligible], dtype=object))))
     unknown = [s for s in list(policy.segments.min_share) + list(policy.segments.max_share) if s not in names]
     if unknown:
         raise PlanError(
@@ -250,7 +261,7 @@ def build_problem(values: CustomerValues, policy: Policy, budget: float | None) 
         )
     sizes, chunk_sizes, chunk_totals = [], [], []
     per_segment = max(MIN_CHUNKS, min(CHUNKS, CHUNK_BUDGET // max(len(names), 1)))
-    segment_of = pd.Categorical(values.segment[eligible], categories=list(names)).codes
+    segment_of = segment_codes(values.segment[eligible], names)
     eligible_values = values.values[eligible]
     for s in range(len(names)):
         rows = eligible_values[segment_of == s]
@@ -412,7 +423,7 @@ class Plan:
 
 def _members(values: CustomerValues, problem: PlanProblem) -> list[np.ndarray]:
     """Row indices of the customers who may be mailed in each segment (one grouping pass, not one per segment)."""
-    codes = pd.Index(list(problem.segments)).get_indexer(np.asarray(values.segment))
+    codes = segment_codes(values.segment, problem.segments)
     rows = np.flatnonzero((codes >= 0) & ~values.suppressed)
     rows = rows[np.argsort(codes[rows], kind="stable")]
     bounds = np.searchsorted(codes[rows], np.arange(len(problem.segments) + 1))
@@ -501,7 +512,7 @@ def mail_list(values: CustomerValues, assignment: np.ndarray) -> pd.DataFrame:
     return pd.DataFrame(
         {
             "customer_id": values.customer_ids,
-            "segment": pd.Categorical(values.segment),
+            "segment": _categorical(values.segment),
             "version": pd.Categorical.from_codes(version_index, categories=list(values.versions)),
             "p_alive": values.p_alive,
             "p_buy": values.p_buy * values.responses[version_index],
@@ -509,6 +520,12 @@ def mail_list(values: CustomerValues, assignment: np.ndarray) -> pd.DataFrame:
             "decision": pd.Categorical.from_codes(decision, categories=list(DECISIONS)),
         }
     )
+
+
+def _categorical(labels: np.ndarray) -> pd.Categorical:
+    """A Categorical of an object array of few distinct labels, sorted, without converting every row to text."""
+    names = sorted(pd.unique(np.asarray(labels, dtype=object)))
+    return pd.Categorical.from_codes(segment_codes(labels, names), categories=names)
 
 
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")

@@ -425,12 +425,14 @@ def solve(
         chosen = at(held).copy()
         after_purchases = np.zeros_like(chosen)
         candidate = np.empty_like(chosen)
+        tail = np.empty_like(chosen)
         for i in range(1, h + 1):
             np.multiply(at(purchase_after[i]), at(best[h - i], i, 1), out=candidate)
             after_purchases += candidate
             np.add(after_purchases, at(known_part[i]), out=candidate)
             if rho > 0 and i < h:
-                candidate += at(silent_after[i]) * at(hold[h - i], i)
+                np.multiply(at(silent_after[i]), at(hold[h - i], i), out=tail)
+                candidate += tail
             np.maximum(chosen, candidate, out=chosen)
         values = np.zeros(shape)
         at(values)[...] = np.where(np.isfinite(at(log_moment)), chosen, 0.0)
