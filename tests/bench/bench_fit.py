@@ -403,6 +403,23 @@ def measure_floor(meter: Meter, paths: dict[str, Path]) -> float:
     return meter.stages[-2].seconds + meter.stages[-1].seconds
 
 
+def machine_reference() -> float:
+    """Seconds for a fixed numpy workload (sort 10 million doubles, then 20 multiply-adds over them), best of three.
+
+    Printed beside the figures so that runs on different machines, or on one
+    machine whose speed varies, can be compared; it is not part of any ratio.
+    """
+    values = np.random.default_rng(0).random(10_000_000)
+    best = float("inf")
+    for _ in range(3):
+        start = time.perf_counter()
+        work = np.sort(values)
+        for _ in range(20):
+            work = work * 1.0000001 + 1e-9
+        best = min(best, time.perf_counter() - start)
+    return best
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0], formatter_class=argparse.RawDescriptionHelpFormatter)
     add_data_options(parser)
@@ -441,6 +458,7 @@ def main() -> None:
         "churn gradient evaluations": f"{out['gradient_calls']}",
         "repeat customers in the spend fit": f"{out['spend'].customers:,}",
         "floor (both files)": f"{floor:.2f} s",
+        "machine reference (machine_reference: numpy sort and arithmetic)": f"{machine_reference():.2f} s",
         "simulate_base (when the data were drawn)": f"{meta['simulate_seconds']} s, peak RSS {meta['simulate_peak_mb']:.0f} MB",
         "peak RSS measured by": "VmHWM reset per stage" if meter.exact_peaks else "ru_maxrss growth",
     }

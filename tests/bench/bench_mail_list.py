@@ -46,7 +46,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from bench_fit import CountedCalls, Meter, Stage, add_data_options, measure_floor, open_data, print_table, run_cli, run_command  # noqa: E402
+from bench_fit import CountedCalls, Meter, Stage, add_data_options, machine_reference, measure_floor, open_data, print_table, run_cli, run_command  # noqa: E402
 
 from lapsewise import churn, model as model_module, panel as panel_module, plan as plan_module, policy as policy_module  # noqa: E402
 from lapsewise.load import load_mailings, load_orders  # noqa: E402
@@ -325,6 +325,7 @@ def main() -> None:
         "segments in the mail-list plan": f"{out['segments']}",
         "mail list decisions": ", ".join(f"{k} {v:,}" for k, v in sorted(out["decisions"].items())),
         "floor (both files)": f"{floor:.2f} s",
+        "machine reference (machine_reference: numpy sort and arithmetic)": f"{machine_reference():.2f} s",
         "peak RSS measured by": "VmHWM reset per stage" if meter.exact_peaks else "ru_maxrss growth",
     }
     print()
