@@ -341,13 +341,15 @@ def _next_quarter(log_moment: np.ndarray, log_alive: np.ndarray, shift_x: int, s
     return out
 
 
-def _times_shifted(table: np.ndarray, factor: np.ndarray, quarters: int) -> np.ndarray:
-    """``table`` times ``factor`` read ``quarters`` later along n (zero beyond the grid), without a shifted copy."""
-    out = np.empty_like(table)
+def _times_shifted(table: np.ndarray, factor: np.ndarray, quarters: int, out: np.ndarray) -> np.ndarray:
+    """``table`` times ``factor`` read ``quarters`` later along n (zero beyond the grid), into ``out`` (which may be ``table``)."""
     rows = table.shape[2] - quarters
     np.multiply(table[:, :, :rows], factor[:, :, quarters:], out=out[:, :, :rows])
     out[:, :, rows:] = 0.0
     return out
+
+
+_BLOCK_CELLS = 16_384  # states per block of the program's inner loop: its running sums then fit in a core's cache
 
 
 def solve(
@@ -390,16 +392,22 @@ def solve(
     no_purchase_yet = np.ones_like(log_moment)
     margins_and_costs = np.zeros_like(log_moment)
     still_silent = np.ones_like(log_moment)  # alive and silent through i - 1 mailed quarters
+    # Every table below is kept or reused in place: no temporaries the size of the grid.
+    scratch = np.empty_like(log_moment)
     for i in range(1, horizon + 1):
-        first_purchase = _times_shifted(still_silent, buy_next, i - 1)
-        margins_and_costs += discount**i * (margin * first_purchase - piece_cost * no_purchase_yet)
+        first_purchase = _times_shifted(still_silent, buy_next, i - 1, np.empty_like(log_moment))
+        # margins_and_costs += d^i (margin * first_purchase - piece_cost * no_purchase_yet)
+        np.multiply(first_purchase, discount**i * margin, out=scratch)
+        margins_and_costs += scratch
+        np.multiply(no_purchase_yet, discount**i * piece_cost, out=scratch)
+        margins_and_costs -= scratch
         no_purchase_yet -= first_purchase
         first_purchase *= discount**i
         purchase_after.append(first_purchase)
         known_part.append(margins_and_costs.copy())
-        still_silent = _times_shifted(still_silent, silent_next, i - 1)
+        _times_shifted(still_silent, silent_next, i - 1, still_silent)
         if rho > 0:
-            silent_after.append(discount**i * still_silent)
+            silent_after.append(np.multiply(still_silent, discount**i))
     del no_purchase_yet, margins_and_costs, still_silent
     if rho > 0:
         held_buy = rho * buy_next
@@ -412,30 +420,40 @@ def solve(
         wide = min(top + 1, (n_max if x_max is None else x_max) + horizon - h + 1)
         deep = min(b_max + horizon - h + 1, shape[0] - 2) if rho > 0 else shape[0] - 2
 
-        def at(table: np.ndarray, i: int = 0, shift_x: int = 0, shift_b: int = 0) -> np.ndarray:
-            return table[shift_b : deep + 1 + shift_b, shift_x : wide + 1 + shift_x, low + i : top + 1 + i]
+        def at(table: np.ndarray, i: int = 0, shift_x: int = 0, shift_b: int = 0, rows: tuple[int, int] = (0, deep + 1)) -> np.ndarray:
+            return table[rows[0] + shift_b : rows[1] + shift_b, shift_x : wide + 1 + shift_x, low + i : top + 1 + i]
 
         held = np.zeros(shape)
         if rho > 0:
-            # Hold for all h quarters: an unprompted purchase, or silence that adds one to b.
-            at(held)[...] = discount * (at(held_buy) * (margin + at(best[h - 1], 1, 1)) + at(held_silent) * at(hold[h - 1], 1, 0, 1))
+            # Hold for all h quarters: an unprompted purchase, or silence that adds one to b:
+            # held = d * (held_buy * (margin + best[h-1] after the purchase) + held_silent * hold[h-1] one b on).
+            part = at(held)
+            np.add(at(best[h - 1], 1, 1), margin, out=part)
+            part *= at(held_buy)
+            np.multiply(at(held_silent), at(hold[h - 1], 1, 0, 1), out=at(scratch))
+            part += at(scratch)
+            part *= discount
         hold.append(held)
+        values = np.zeros(shape)
         # Mail J quarters, then hold: a plan's value is its known part plus the discounted values
         # after a first purchase in each mailed quarter (from earlier tables) plus the hold tail.
-        chosen = at(held).copy()
-        after_purchases = np.zeros_like(chosen)
-        candidate = np.empty_like(chosen)
-        tail = np.empty_like(chosen)
-        for i in range(1, h + 1):
-            np.multiply(at(purchase_after[i]), at(best[h - i], i, 1), out=candidate)
-            after_purchases += candidate
-            np.add(after_purchases, at(known_part[i]), out=candidate)
-            if rho > 0 and i < h:
-                np.multiply(at(silent_after[i]), at(hold[h - i], i), out=tail)
-                candidate += tail
-            np.maximum(chosen, candidate, out=chosen)
-        values = np.zeros(shape)
-        at(values)[...] = np.where(np.isfinite(at(log_moment)), chosen, 0.0)
+        # A few b at a time, so that the running sums stay in cache while every earlier table streams past once.
+        block = max(1, _BLOCK_CELLS // ((wide + 1) * (top - low + 1)))
+        for start in range(0, deep + 1, block):
+            rows = (start, min(start + block, deep + 1))
+            chosen = at(held, rows=rows).copy()
+            after_purchases = np.zeros_like(chosen)
+            candidate = np.empty_like(chosen)
+            tail = np.empty_like(chosen)
+            for i in range(1, h + 1):
+                np.multiply(at(purchase_after[i], rows=rows), at(best[h - i], i, 1, rows=rows), out=candidate)
+                after_purchases += candidate
+                np.add(after_purchases, at(known_part[i], rows=rows), out=candidate)
+                if rho > 0 and i < h:
+                    np.multiply(at(silent_after[i], rows=rows), at(hold[h - i], i, rows=rows), out=tail)
+                    candidate += tail
+                np.maximum(chosen, candidate, out=chosen)
+            at(values, rows=rows)[...] = np.where(np.isfinite(at(log_moment, rows=rows)), chosen, 0.0)
         best.append(values)
     return Program(beliefs, margin, piece_cost, discount, horizon, log_moment, log_alive, best, hold)
 
