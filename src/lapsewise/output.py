@@ -151,6 +151,7 @@ def round_significant(values: np.ndarray, digits: int) -> np.ndarray:
     power = 10.0 ** np.abs(decimals)  # an exact power of ten up to 1e22
     up = decimals >= 0
     # Scale by an exact power of ten, round, scale back: the result is the double nearest the rounded decimal.
-    shown = np.where(up, np.round(shown * power) / power, np.round(shown / power) * power)
+    shown[up] = np.round(shown[up] * power[up]) / power[up]
+    shown[~up] = np.round(shown[~up] / power[~up]) * power[~up]
     out[finite] = shown
     return out
