@@ -144,3 +144,21 @@ def test_value_of_a_version_matches_brute_force(rho, response, version_cost):
     ours = mail_value_with(program, np.array([n]), np.array([x]), np.array([b]), np.array([alive]), response, version_cost)[0]
     expected = brute_force_version(beliefs, purchased, mailed, horizon, margin, cost, response, version_cost)
     assert_allclose(ours, expected, rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.3])
+def test_program_solved_only_for_later_quarters_gives_the_same_decisions(rho):
+    # The program computes only the states reachable from n >= n_min (customer values use this per spend band);
+    # on those states it must agree with the program solved for every n (the brute-force tests above check that one).
+    beliefs = Beliefs(alpha=1.1, beta=2.4, gamma=0.7, delta=4.5, rho=rho)
+    horizon, n_min, n_max = 12, 7, 15
+    full = solve(beliefs, 25.0, 1.5, DISCOUNT, horizon, n_max=n_max, b_max=4, n_min=0, x_max=9)
+    part = solve(beliefs, 25.0, 1.5, DISCOUNT, horizon, n_max=n_max, b_max=4, n_min=n_min, x_max=9)
+    n, x, b = np.meshgrid(np.arange(n_min, n_max + 1), np.arange(0, 10), np.arange(0, 5), indexing="ij")
+    n, x, b = n.ravel(), x.ravel(), b.ravel()
+    valid = x + b <= n
+    n, x, b = n[valid], x[valid], b[valid]
+    alive = np.linspace(0.2, 1.0, len(n))
+    expected, got = decide(full, n, x, b, alive), decide(part, n, x, b, alive)
+    assert_allclose(got.mail_value, expected.mail_value, rtol=1e-12, atol=1e-12)
+    assert_allclose(got.hold_value, expected.hold_value, rtol=1e-12, atol=1e-12)

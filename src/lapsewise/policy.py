@@ -388,14 +388,16 @@ def solve(
     # One quarter's chances are exponentials; i quarters' are products of them along n.
     buy_next = _next_quarter(log_moment, log_alive, 1, 0)  # alive next quarter and buys, when mailed
     silent_next = _next_quarter(log_moment, log_alive, 0, 0)  # alive next quarter and silent, when mailed
+    # These tables are read only at n >= n_min (the first n reachable with at most horizon - 1 quarters left),
+    # so they start there: index n - n_min. Every table is kept or reused in place, with no grid-sized temporaries.
+    later = (slice(None), slice(None), slice(n_min, None))
     purchase_after, silent_after, known_part = [None], [None], [None]
-    no_purchase_yet = np.ones_like(log_moment)
-    margins_and_costs = np.zeros_like(log_moment)
-    still_silent = np.ones_like(log_moment)  # alive and silent through i - 1 mailed quarters
-    # Every table below is kept or reused in place: no temporaries the size of the grid.
-    scratch = np.empty_like(log_moment)
+    no_purchase_yet = np.ones_like(log_moment[later])
+    margins_and_costs = np.zeros_like(no_purchase_yet)
+    still_silent = np.ones_like(no_purchase_yet)  # alive and silent through i - 1 mailed quarters
+    scratch = np.empty_like(no_purchase_yet)
     for i in range(1, horizon + 1):
-        first_purchase = _times_shifted(still_silent, buy_next, i - 1, np.empty_like(log_moment))
+        first_purchase = _times_shifted(still_silent, buy_next[later], i - 1, np.empty_like(no_purchase_yet))
         # margins_and_costs += d^i (margin * first_purchase - piece_cost * no_purchase_yet)
         np.multiply(first_purchase, discount**i * margin, out=scratch)
         margins_and_costs += scratch
@@ -405,7 +407,7 @@ def solve(
         first_purchase *= discount**i
         purchase_after.append(first_purchase)
         known_part.append(margins_and_costs.copy())
-        _times_shifted(still_silent, silent_next, i - 1, still_silent)
+        _times_shifted(still_silent, silent_next[later], i - 1, still_silent)
         if rho > 0:
             silent_after.append(np.multiply(still_silent, discount**i))
     del no_purchase_yet, margins_and_costs, still_silent
@@ -423,6 +425,10 @@ def solve(
         def at(table: np.ndarray, i: int = 0, shift_x: int = 0, shift_b: int = 0, rows: tuple[int, int] = (0, deep + 1)) -> np.ndarray:
             return table[rows[0] + shift_b : rows[1] + shift_b, shift_x : wide + 1 + shift_x, low + i : top + 1 + i]
 
+        def at_later(table: np.ndarray, rows: tuple[int, int] = (0, deep + 1)) -> np.ndarray:
+            """The same states in a table that starts at n_min."""
+            return table[rows[0] : rows[1], : wide + 1, low - n_min : top + 1 - n_min]
+
         held = np.zeros(shape)
         if rho > 0:
             # Hold for all h quarters: an unprompted purchase, or silence that adds one to b:
@@ -430,8 +436,8 @@ def solve(
             part = at(held)
             np.add(at(best[h - 1], 1, 1), margin, out=part)
             part *= at(held_buy)
-            np.multiply(at(held_silent), at(hold[h - 1], 1, 0, 1), out=at(scratch))
-            part += at(scratch)
+            np.multiply(at(held_silent), at(hold[h - 1], 1, 0, 1), out=at_later(scratch))
+            part += at_later(scratch)
             part *= discount
         hold.append(held)
         values = np.zeros(shape)
@@ -446,11 +452,11 @@ def solve(
             candidate = np.empty_like(chosen)
             tail = np.empty_like(chosen)
             for i in range(1, h + 1):
-                np.multiply(at(purchase_after[i], rows=rows), at(best[h - i], i, 1, rows=rows), out=candidate)
+                np.multiply(at_later(purchase_after[i], rows), at(best[h - i], i, 1, rows=rows), out=candidate)
                 after_purchases += candidate
-                np.add(after_purchases, at(known_part[i], rows=rows), out=candidate)
+                np.add(after_purchases, at_later(known_part[i], rows), out=candidate)
                 if rho > 0 and i < h:
-                    np.multiply(at(silent_after[i], rows=rows), at(hold[h - i], i, rows=rows), out=tail)
+                    np.multiply(at_later(silent_after[i], rows), at(hold[h - i], i, rows=rows), out=tail)
                     candidate += tail
                 np.maximum(chosen, candidate, out=chosen)
             at(values, rows=rows)[...] = np.where(np.isfinite(at(log_moment, rows=rows)), chosen, 0.0)
