@@ -42,7 +42,6 @@ PARAMETERS = ("alpha", "beta", "gamma", "delta", "rho")
 _LOG_BOUNDS = (math.log(1e-3), math.log(1e4))
 _RHO_BOUNDS = (1e-6, 1.0 - 1e-9)
 _SCOUT_STEPS = 6
-_SCOUT_SAMPLE = 20_000
 _STARTS = (
     (1.0, 1.0, 1.0, 1.0, 0.5),
     (0.5, 2.0, 0.5, 3.0, 0.3),
@@ -465,8 +464,8 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     bounds = [_LOG_BOUNDS] * 4 + ([_RHO_BOUNDS] if mailing_history else [])
     objective = _objective(expansion, mailing_history)
     stand_in = None
-    if histories.size > _SCOUT_SAMPLE:
-        stand_in = _objective(expand(_sample(histories, _SCOUT_SAMPLE)), mailing_history)
+    if histories.size > optimum.STAND_IN_CUSTOMERS:
+        stand_in = _objective(expand(_sample(histories, optimum.STAND_IN_CUSTOMERS)), mailing_history)
     starts = [np.append(np.log(start[:4]), start[4:] if mailing_history else []) for start in _STARTS]
     best = optimum.maximize(objective, starts, bounds, customers, _SCOUT_STEPS, stand_in)
     params = _unpack(best.x, mailing_history)

@@ -29,6 +29,9 @@ from scipy import linalg, optimize
 
 Objective = Callable[[np.ndarray], tuple[float, np.ndarray]]
 
+STAND_IN_CUSTOMERS = 20_000
+"""Customers in the stand-in sample a fit scouts on when it has more than this many."""
+
 TOLERANCE = 1e-6
 """Stop when the summed log-likelihood is within this of its maximum (by the quadratic model of Newton's method)."""
 
@@ -88,7 +91,7 @@ def maximize(
     near = optimize.minimize(rough, lead.x, jac=True, method="L-BFGS-B", bounds=bounds, options=_NEAR)
     approximate = None
     if stand_in is not None:
-        approximate = hessian(stand_in, near.x, stand_in(near.x)[1], bounds)
+        approximate = hessian(stand_in, near.x, near.jac, bounds)
     finished = _newton(objective, near.x, bounds, customers, approximate)
     if finished is not None:
         return finished
@@ -99,11 +102,10 @@ def maximize(
         again = optimize.minimize(objective, best.x, jac=True, method="L-BFGS-B", bounds=bounds, options=_FINISH)
         if again.fun <= best.fun:
             best = again
-    _, gradient = objective(best.x)
     return Optimum(
         x=best.x,
         fun=float(best.fun),
-        hessian=hessian(objective, best.x, gradient, bounds),
+        hessian=hessian(objective, best.x, best.jac, bounds),
         converged=bool(best.success),
         message=str(best.message),
     )
@@ -215,12 +217,8 @@ def standard_errors(curvature: np.ndarray | None, x: np.ndarray, customers: floa
     index = np.flatnonzero(free)
     if curvature is None or index.size == 0:
         return errors
-    information = customers * curvature[np.ix_(index, index)]
-    if not np.all(np.isfinite(information)):
-        return errors
-    try:
-        factor = linalg.cho_factor(information)
-    except linalg.LinAlgError:
+    factor = _positive_definite(customers * curvature[np.ix_(index, index)])
+    if factor is None:
         return errors
     variances = np.diag(linalg.cho_solve(factor, np.eye(index.size)))
     for position, i in enumerate(index):

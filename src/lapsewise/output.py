@@ -10,14 +10,14 @@ import json
 import os
 import tempfile
 from pathlib import Path
-from typing import TYPE_CHECKING, Callable
+from typing import Callable
 
 import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from lapsewise.errors import InputError
-
-if TYPE_CHECKING:
-    import pandas as pd
 
 
 def check_writable(path: str | Path, force: bool) -> Path:
@@ -61,7 +61,7 @@ def dumps_stable(data: object) -> str:
 _CSV_BLOCK = 500_000  # rows turned into text at a time, to bound memory
 
 
-def write_csv(path: str | Path, frame: "pd.DataFrame", significant: int = 6) -> None:
+def write_csv(path: str | Path, frame: pd.DataFrame, significant: int = 6) -> None:
     """Write ``frame`` as CSV: a header, then one line per row.
 
     Fields are quoted only when they hold a comma, a quote or a line break (as
@@ -70,35 +70,19 @@ def write_csv(path: str | Path, frame: "pd.DataFrame", significant: int = 6) -> 
     vectorised kernels and the lines are joined in blocks, so a million rows take
     a fraction of the time a row-by-row writer needs.
     """
-    import pyarrow as pa
-
-    header = ",".join(_quote_text(str(name)) for name in frame.columns) + "\n"
+    header = _quote_strings(pa.array([str(name) for name in frame.columns], type=pa.string())).to_pylist()
     with open(path, "wb") as handle:
-        handle.write(header.encode("utf-8"))
+        handle.write((",".join(header) + "\n").encode("utf-8"))
         for start in range(0, len(frame), _CSV_BLOCK):
             block = frame.iloc[start : start + _CSV_BLOCK]
             fields = [_csv_field(block[name], significant) for name in block.columns]
-            lines = _pc().binary_join_element_wise(*fields, ",")
-            lines = _pc().binary_join_element_wise(lines, pa.scalar(""), "\n")  # each line ends in a newline
+            lines = pc.binary_join_element_wise(*fields, ",")
+            lines = pc.binary_join_element_wise(lines, pa.scalar(""), "\n")  # each line ends in a newline
             handle.write(_string_bytes(lines))
 
 
-def _pc():
-    import pyarrow.compute
-
-    return pyarrow.compute
-
-
-def _quote_text(text: str) -> str:
-    return '"' + text.replace('"', '""') + '"' if any(c in text for c in ',"\r\n') else text
-
-
-def _csv_field(series: "pd.Series", significant: int):
+def _csv_field(series: pd.Series, significant: int) -> pa.Array:
     """One column as a pyarrow string array of CSV fields (missing values empty)."""
-    import pandas as pd
-    import pyarrow as pa
-
-    pc = _pc()
     if isinstance(series.dtype, pd.CategoricalDtype):
         labels = _quote_strings(pa.array(series.cat.categories.astype(str).to_numpy(dtype=object), type=pa.string()))
         codes = series.cat.codes.to_numpy()
@@ -120,9 +104,8 @@ def _csv_field(series: "pd.Series", significant: int):
     return pc.fill_null(text, "")
 
 
-def _quote_strings(strings):
+def _quote_strings(strings: pa.Array) -> pa.Array:
     """Quote the strings that hold a comma, quote or line break, doubling their quotes."""
-    pc = _pc()
     needs = pc.match_substring_regex(strings, '[,"\\r\\n]')
     if not pc.any(needs).as_py():
         return strings
@@ -130,9 +113,8 @@ def _quote_strings(strings):
     return pc.if_else(needs, quoted, strings)
 
 
-def _string_bytes(strings) -> memoryview:
+def _string_bytes(strings: pa.Array) -> memoryview:
     """The characters of a pyarrow string array, concatenated (its data buffer between the first and last offsets)."""
-    strings = strings.combine_chunks() if hasattr(strings, "combine_chunks") else strings
     offsets = np.frombuffer(strings.buffers()[1], dtype=np.int32)[strings.offset : strings.offset + len(strings) + 1]
     data = strings.buffers()[2]
     if data is None:

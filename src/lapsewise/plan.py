@@ -253,7 +253,8 @@ def segment_codes(segment: np.ndarray, names) -> np.ndarray:
 def build_problem(values: CustomerValues, policy: Policy, budget: float | None) -> PlanProblem:
     """Group the customers who may be mailed into segments and chunk their values per version."""
     eligible = ~values.suppressed
-    names = tuple(sorted(pd.unique(np.asarray(values.segment[eligible], dtype=object))))
+    segments = _categorical(values.segment[eligible])
+    names = tuple(segments.categories)
     unknown = [s for s in list(policy.segments.min_share) + list(policy.segments.max_share) if s not in names]
     if unknown:
         raise PlanError(
@@ -261,7 +262,7 @@ def build_problem(values: CustomerValues, policy: Policy, budget: float | None) 
         )
     sizes, chunk_sizes, chunk_totals = [], [], []
     per_segment = max(MIN_CHUNKS, min(CHUNKS, CHUNK_BUDGET // max(len(names), 1)))
-    segment_of = segment_codes(values.segment[eligible], names)
+    segment_of = np.asarray(segments.codes)
     eligible_values = values.values[eligible]
     for s in range(len(names)):
         rows = eligible_values[segment_of == s]

@@ -349,9 +349,6 @@ def _times_shifted(table: np.ndarray, factor: np.ndarray, quarters: int, out: np
     return out
 
 
-_BLOCK_CELLS = 16_384  # states per block of the program's inner loop: its running sums then fit in a core's cache
-
-
 def solve(
     beliefs: Beliefs,
     margin: float,
@@ -422,12 +419,12 @@ def solve(
         wide = min(top + 1, (n_max if x_max is None else x_max) + horizon - h + 1)
         deep = min(b_max + horizon - h + 1, shape[0] - 2) if rho > 0 else shape[0] - 2
 
-        def at(table: np.ndarray, i: int = 0, shift_x: int = 0, shift_b: int = 0, rows: tuple[int, int] = (0, deep + 1)) -> np.ndarray:
-            return table[rows[0] + shift_b : rows[1] + shift_b, shift_x : wide + 1 + shift_x, low + i : top + 1 + i]
+        def at(table: np.ndarray, i: int = 0, shift_x: int = 0, shift_b: int = 0) -> np.ndarray:
+            return table[shift_b : deep + 1 + shift_b, shift_x : wide + 1 + shift_x, low + i : top + 1 + i]
 
-        def at_later(table: np.ndarray, rows: tuple[int, int] = (0, deep + 1)) -> np.ndarray:
+        def at_later(table: np.ndarray) -> np.ndarray:
             """The same states in a table that starts at n_min."""
-            return table[rows[0] : rows[1], : wide + 1, low - n_min : top + 1 - n_min]
+            return table[: deep + 1, : wide + 1, low - n_min : top + 1 - n_min]
 
         held = np.zeros(shape)
         if rho > 0:
@@ -440,26 +437,22 @@ def solve(
             part += at_later(scratch)
             part *= discount
         hold.append(held)
-        values = np.zeros(shape)
         # Mail J quarters, then hold: a plan's value is its known part plus the discounted values
         # after a first purchase in each mailed quarter (from earlier tables) plus the hold tail.
-        # A few b at a time, so that the running sums stay in cache while every earlier table streams past once.
-        block = max(1, _BLOCK_CELLS // ((wide + 1) * (top - low + 1)))
-        for start in range(0, deep + 1, block):
-            rows = (start, min(start + block, deep + 1))
-            chosen = at(held, rows=rows).copy()
-            after_purchases = np.zeros_like(chosen)
-            candidate = np.empty_like(chosen)
-            tail = np.empty_like(chosen)
-            for i in range(1, h + 1):
-                np.multiply(at_later(purchase_after[i], rows), at(best[h - i], i, 1, rows=rows), out=candidate)
-                after_purchases += candidate
-                np.add(after_purchases, at_later(known_part[i], rows), out=candidate)
-                if rho > 0 and i < h:
-                    np.multiply(at_later(silent_after[i], rows), at(hold[h - i], i, rows=rows), out=tail)
-                    candidate += tail
-                np.maximum(chosen, candidate, out=chosen)
-            at(values, rows=rows)[...] = np.where(np.isfinite(at(log_moment, rows=rows)), chosen, 0.0)
+        chosen = at(held).copy()
+        after_purchases = np.zeros_like(chosen)
+        candidate = np.empty_like(chosen)
+        tail = np.empty_like(chosen)
+        for i in range(1, h + 1):
+            np.multiply(at_later(purchase_after[i]), at(best[h - i], i, 1), out=candidate)
+            after_purchases += candidate
+            np.add(after_purchases, at_later(known_part[i]), out=candidate)
+            if rho > 0 and i < h:
+                np.multiply(at_later(silent_after[i]), at(hold[h - i], i), out=tail)
+                candidate += tail
+            np.maximum(chosen, candidate, out=chosen)
+        values = np.zeros(shape)
+        at(values)[...] = np.where(np.isfinite(at(log_moment)), chosen, 0.0)
         best.append(values)
     return Program(beliefs, margin, piece_cost, discount, horizon, log_moment, log_alive, best, hold)
 

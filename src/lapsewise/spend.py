@@ -58,7 +58,6 @@ _SEARCH_RANGE = {"p": (1e-4, 1e4), "q": (1e-4, 1e4), "gamma": (1e-6, 1e8)}
 # Starting (p, q); gamma starts where the population mean equals the sample mean.
 _STARTING_SHAPES = ((1.0, 2.0), (3.0, 4.0), (10.0, 11.0), (0.5, 1.5))
 _SCOUT_STEPS = 8
-_STAND_IN_SAMPLE = 20_000  # customers the search scouts on before finishing on all of them
 # How close (in log space) an estimate must be to an end of its range to count as on it.
 _ON_BOUND = 1e-3
 
@@ -107,17 +106,6 @@ def spend_log_likelihood(p: float, q: float, gamma: float, x: np.ndarray, m_x: n
     )
 
 
-def _log_likelihood_gradient(p: float, q: float, gamma: float, x: np.ndarray, m_x: np.ndarray) -> np.ndarray:
-    """Derivative of the summed log-likelihood with respect to (p, q, gamma)."""
-    px = p * x
-    log_total = np.log(gamma + m_x * x)
-    common = digamma(px + q)
-    d_p = x * (common - digamma(px) + np.log(m_x) + np.log(x) - log_total)
-    d_q = common - digamma(q) + np.log(gamma) - log_total
-    d_gamma = q / gamma - (px + q) / (gamma + m_x * x)
-    return np.array([d_p.sum(), d_q.sum(), d_gamma.sum()])
-
-
 @dataclass(frozen=True)
 class _Sums:
     """What the summed log-likelihood needs of the data, computed once per fit.
@@ -143,7 +131,7 @@ class _Sums:
 
     def value_and_gradient(self, p: float, q: float, gamma: float) -> tuple[float, np.ndarray]:
         """The summed log-likelihood and its gradient by (p, q, gamma), equal to summing
-        ``spend_log_likelihood`` and ``_log_likelihood_gradient`` over the customers."""
+        ``spend_log_likelihood`` and its gradient over the customers (checked in the tests)."""
         count = float(self.x_counts.sum())
         k, c = self.x_values, self.x_counts
         total = gamma + self.spend_total
@@ -327,9 +315,9 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
 
     objective = _objective(_Sums.of(x, scaled))
     stand_in = None
-    if x.size > _STAND_IN_SAMPLE:
+    if x.size > optimum.STAND_IN_CUSTOMERS:
         # Scouting and the first convergence on a fixed random sample of the customers; Newton finishes on all.
-        sample = np.sort(np.random.default_rng(0).choice(x.size, size=_STAND_IN_SAMPLE, replace=False))
+        sample = np.sort(np.random.default_rng(0).choice(x.size, size=optimum.STAND_IN_CUSTOMERS, replace=False))
         stand_in = _objective(_Sums.of(x[sample], scaled[sample]))
 
     # Gamma starts where the population mean equals the sample mean.
