@@ -26,7 +26,7 @@ from conftest import (
     repair_count,
 )
 from lapsewise.errors import InputError
-from lapsewise.load import duplicate_rows, load_id_list, load_mailings, load_orders
+from lapsewise.load import duplicate_rows, load_id_list, load_mailings, load_orders, load_orders_and_mailings
 from lapsewise.panel import build_panel, panel_from_files
 
 
@@ -223,6 +223,24 @@ def test_mailings_file_is_read_with_its_version_column(write_file):
     assert "version" not in loaded.frame.columns
     assert dates_of(loaded, "mail_date") == ["2023-04-10 00:00:00", "2023-07-01 09:30:00"]
     assert loaded.repairs == {"extra columns ignored (cost)": 1, "ids with surrounding spaces trimmed": 1}
+
+
+def test_orders_and_mailings_read_side_by_side_match_each_read_alone(write_file):
+    orders = write_file("orders.csv", GOOD_ORDERS)
+    mailings = write_file("mailings.csv", mailings_text(" A1 ,2023-04-10", "B2,2023-07-01"))
+    pair = load_orders_and_mailings(orders, mailings)
+    pd.testing.assert_frame_equal(pair[0].frame, load_orders(orders).frame)
+    pd.testing.assert_frame_equal(pair[1].frame, load_mailings(mailings).frame)
+    assert pair[1].repairs == {"ids with surrounding spaces trimmed": 1}
+    assert load_orders_and_mailings(orders, None)[1] is None
+
+
+def test_side_by_side_read_reports_the_orders_problem_first(write_file):
+    # Both files are broken; the orders file's problem is the one reported, as when they are read in turn.
+    orders = write_file("orders.csv", csv_text("customer_id,order_date", "A1,2023-01-15"))
+    mailings = write_file("mailings.csv", csv_text("customer_id", "A1"))
+    with pytest.raises(InputError, match="orders.csv: no column 'amount'"):
+        load_orders_and_mailings(orders, mailings)
 
 
 def test_id_list_keeps_each_id_once(write_file):

@@ -584,7 +584,7 @@ def panel_from_files(
     purchased, spend[, mailed]), recognised by its columns; it then stands for both
     orders and mailings, and its last quarter is the default as-of quarter.
     """
-    from lapsewise.load import is_quarterly_table, load_mailings, load_orders, load_quarterly
+    from lapsewise.load import is_quarterly_table, load_orders_and_mailings, load_quarterly
 
     as_of_date = parse_as_of(as_of)
     if is_quarterly_table(orders_path):
@@ -597,6 +597,5 @@ def panel_from_files(
                 last = max(last, int(quarter_index(mailings.frame[MAIL_DATE_COLUMN].to_numpy(), fiscal_year_start).max()))
             as_of_date = quarter_end(last, fiscal_year_start)
         return build_panel(orders, mailings, as_of_date, fiscal_year_start)
-    orders = load_orders(orders_path, id_column, date_column, amount_column)
-    mailings = load_mailings(mailings_path, id_column) if mailings_path else None
+    orders, mailings = load_orders_and_mailings(orders_path, mailings_path, id_column, date_column, amount_column)
     return build_panel(orders, mailings, as_of_date, fiscal_year_start)

@@ -46,10 +46,10 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from bench_fit import CountedCalls, Meter, Stage, add_data_options, machine_reference, measure_floor, open_data, print_table, run_cli, run_command  # noqa: E402
+from bench_fit import CountedCalls, Meter, Stage, add_data_options, machine_reference, measure_floor, open_data, print_table, run_cli, run_command_median  # noqa: E402
 
 from lapsewise import churn, model as model_module, panel as panel_module, plan as plan_module, policy as policy_module  # noqa: E402
-from lapsewise.load import load_mailings, load_orders  # noqa: E402
+from lapsewise.load import load_orders_and_mailings  # noqa: E402
 from lapsewise.output import dumps_stable, write_atomic, write_csv, write_text_atomic  # noqa: E402
 
 POLICY = Path(__file__).resolve().parents[2] / "policies" / "full-catalog.toml"
@@ -117,8 +117,8 @@ def fitted_model(meter: Meter, panel, folder: Path, meta: dict, refit: bool) -> 
 def run_mail_list_stages(meter: Meter, paths: dict[str, Path], meta: dict, refit: bool, out_folder: Path) -> dict:
     """Run the stages of ``mail-list`` in order, measured (fitting the model file first when needed)."""
     out: dict = {}
-    orders = meter.run("read orders", load_orders, paths["orders"])
-    mailings = meter.run("read mailings", load_mailings, paths["mailings"])
+    orders, mailings = meter.run("read orders and mailings", load_orders_and_mailings, paths["orders"], paths["mailings"])
+    meter.stages[-1].note = "side by side, as mail-list reads them"
     panel = meter.run("build panel", panel_module.build_panel, orders, mailings, dt.date.fromisoformat(meta["as_of"]), 1)
     del orders, mailings
     out["fit"] = fitted_model(meter, panel, paths["orders"].parent, meta, refit)
@@ -264,7 +264,7 @@ def _verdict(value: float, limit: float) -> str:
 def targets(stages: dict[str, Stage], floor: float, fit: dict, solves: list[Stage], plan: dict) -> list[tuple[str, str, str]]:
     """(target, measured figure, met / not met) for each target of the issue."""
     rows = []
-    in_process_fit = sum(stages[name].seconds for name in ("read orders", "read mailings", "build panel", "fit (for the model file)"))
+    in_process_fit = sum(stages[name].seconds for name in ("read orders and mailings", "build panel", "fit (for the model file)"))
     fit_seconds, fit_how = (stages["lapsewise fit (subprocess)"].seconds, "lapsewise fit") if "lapsewise fit (subprocess)" in stages else (in_process_fit, "in-process read + panel + fit_model")
     rows.append(("fit within 3x floor", f"{fit_seconds / floor:.1f}x ({fit_seconds:.1f} s, {fit_how})", _verdict(fit_seconds / floor, TARGET_RATIO)))
     command = stages.get("lapsewise mail-list (subprocess)") or stages["sum of mail-list stages"]
@@ -292,11 +292,11 @@ def main() -> None:
     meta, paths = open_data(options)
 
     meter = Meter()
-    floor = measure_floor(meter, paths)
+    floor = measure_floor(meter, paths, options.runs)
     with tempfile.TemporaryDirectory() as folder:
         print("\nStages of mail-list, in this process:")
         out = run_mail_list_stages(meter, paths, meta, options.regenerate, Path(folder))
-        command_stages = ("read model and policy", "read orders", "read mailings", "build panel", "customer values", "plan (no budget)", "mail list assembly", "write CSV")
+        command_stages = ("read model and policy", "read orders and mailings", "build panel", "customer values", "plan (no budget)", "mail list assembly", "write CSV")
         by_name = {s.name: s for s in meter.stages}
         meter.stages.append(Stage(
             "sum of mail-list stages", sum(by_name[n].seconds for n in command_stages), max(by_name[n].peak_mb for n in command_stages), float("nan"),
@@ -305,11 +305,11 @@ def main() -> None:
         gc.collect()
         if not options.no_cli:
             print("\nThe whole commands:")
-            meter.stages.append(run_cli(paths, meta["as_of"]))
-            meter.stages.append(run_command("lapsewise mail-list (subprocess)", [
+            meter.stages.append(run_cli(paths, meta["as_of"], options.runs))
+            meter.stages.append(run_command_median("lapsewise mail-list (subprocess)", [
                 "mail-list", str(out["model_path"]), str(paths["orders"]), "--mailings", str(paths["mailings"]),
-                "--policy", str(POLICY), "--as-of", meta["as_of"], "--out", str(Path(folder) / "mail-list-cli.csv"),
-            ]))
+                "--policy", str(POLICY), "--as-of", meta["as_of"], "--out", str(Path(folder) / "mail-list-cli.csv"), "--force",
+            ], options.runs))
 
     print(f"\nThe stop-rule program alone ({HORIZON} quarters):")
     solves = run_stop_rule(meter, out["mail_list_size"], out["model"], out["policy"])
