@@ -162,3 +162,13 @@ def test_program_solved_only_for_later_quarters_gives_the_same_decisions(rho):
     expected, got = decide(full, n, x, b, alive), decide(part, n, x, b, alive)
     assert_allclose(got.mail_value, expected.mail_value, rtol=1e-12, atol=1e-12)
     assert_allclose(got.hold_value, expected.hold_value, rtol=1e-12, atol=1e-12)
+
+
+def test_program_refuses_a_state_below_the_quarters_it_was_solved_for():
+    # The tables keep only the quarters reachable from n_min..n_max (and one quarter earlier, which the
+    # hold value's step reaches); a state before that would read another quarter's value, so it is refused.
+    beliefs = Beliefs(alpha=1.1, beta=2.4, gamma=0.7, delta=4.5, rho=0.3)
+    program = solve(beliefs, 25.0, 1.5, DISCOUNT, 6, n_max=10, b_max=2, n_min=5, x_max=4)
+    decide(program, np.array([5, 10]), np.array([1, 4]), np.array([0, 2]), np.array([0.5, 0.5]))  # inside: answered
+    with pytest.raises(ValueError, match="n_min"):
+        decide(program, np.array([3]), np.array([1]), np.array([0]), np.array([0.5]))

@@ -272,13 +272,16 @@ class Beliefs:
 class Program:
     """The solved post-purchase values on the state grid.
 
-    ``best[h][b, x, n]`` is the value, at the end of quarter ``n``, of a customer
+    ``best_at(h, b, x, n)`` is the value, at the end of quarter ``n``, of a customer
     who bought in quarter ``n`` with ``x`` repeat purchases and ``b`` unmailed silent
-    quarters behind them, when ``h`` quarters are left to decide; ``hold[h][b, x, n]``
+    quarters behind them, when ``h`` quarters are left to decide; ``hold_at(h, b, x, n)``
     the value of holding for all ``h`` quarters (for a customer alive through ``n``).
     ``log_moment[b, x, n]`` is ``log E[p^x (1-p)^a (1-rho p)^b]`` with ``a = n - x - b``
     (minus infinity off the grid). The tables are laid out with n last, the
     dimension every step of the program shifts along, so its slices are contiguous.
+    With h quarters left only a band of n can be reached from the states the
+    program was solved for, so ``best[h]`` and ``hold[h]`` hold that band alone,
+    starting at ``first_n[h]``.
     """
 
     beliefs: Beliefs
@@ -290,10 +293,25 @@ class Program:
     log_alive: np.ndarray
     best: list[np.ndarray]
     hold: list[np.ndarray]
+    first_n: tuple[int, ...]
 
     @property
     def rho(self) -> float:
         return self.beliefs.rho
+
+    def best_at(self, h: int, b, x, n) -> np.ndarray:
+        return self.best[h][b, x, self._column(h, n)]
+
+    def hold_at(self, h: int, b, x, n) -> np.ndarray:
+        return self.hold[h][b, x, self._column(h, n)]
+
+    def _column(self, h: int, n) -> np.ndarray:
+        """Where quarter n lies in the tables for h quarters left; a state the program cannot reach is an error."""
+        column = np.asarray(n) - self.first_n[h]
+        if column.size and (column.min() < 0 or column.max() >= self.best[h].shape[2]):
+            raise ValueError(f"quarter n outside {self.first_n[h]}..{self.first_n[h] + self.best[h].shape[2] - 1}, "
+                             f"the states solved for with {h} quarters left; solve with a wider n_min..n_max")
+        return column
 
 
 def log_moment_grid(beliefs: Beliefs, n_max: int, b_max: int, x_max: int | None = None) -> np.ndarray:
@@ -349,6 +367,9 @@ def _times_shifted(table: np.ndarray, factor: np.ndarray, quarters: int, out: np
     return out
 
 
+_B_BLOCKS = 4  # blocks of b in the program's inner loop (see solve)
+
+
 def solve(
     beliefs: Beliefs,
     margin: float,
@@ -373,12 +394,21 @@ def solve(
     # Held quarters add to b; with rho = 0 nothing is learnt from them but n still grows.
     b_grid = b_max + 1 + (horizon if rho > 0 else 0)
     n_grid = n_max + horizon + 1
+    x_top = n_max if x_max is None else x_max
     # x never exceeds the largest x asked about plus one per quarter ahead (and one more for x + 1).
-    log_moment = log_moment_grid(beliefs, n_grid + 1, b_grid + 1, (n_max if x_max is None else x_max) + horizon + 3)
+    log_moment = log_moment_grid(beliefs, n_grid + 1, b_grid + 1, x_top + horizon + 3)
+    shape = log_moment.shape
     steps = np.arange(horizon + 2)
-    ns = np.arange(log_moment.shape[2])
+    ns = np.arange(shape[2])
     # log P(alive through n + i | alive through n) = log B(gamma, delta + n + i) - log B(gamma, delta + n)
     log_alive = special.betaln(beliefs.gamma, beliefs.delta + ns[:, None] + steps[None, :]) - special.betaln(beliefs.gamma, beliefs.delta + ns[:, None])
+
+    def reach(h: int) -> tuple[int, int, int, int]:
+        """The states reachable with h quarters left: (first n, last n, last x, last b)."""
+        deep = min(b_max + horizon - h + 1, shape[0] - 2) if rho > 0 else shape[0] - 2
+        top = n_max + horizon - h
+        return max(n_min + horizon - h - 1, 0), top, min(top + 1, x_top + horizon - h + 1), deep
+
     # Along a mailed silent stretch from any state, the chance of a first purchase in the i-th quarter
     # and of being alive and silent after i quarters do not depend on the horizon: compute them once,
     # discounted, with the part of a plan's value that needs no later table (its margins and costs).
@@ -386,75 +416,86 @@ def solve(
     buy_next = _next_quarter(log_moment, log_alive, 1, 0)  # alive next quarter and buys, when mailed
     silent_next = _next_quarter(log_moment, log_alive, 0, 0)  # alive next quarter and silent, when mailed
     # These tables are read only at n >= n_min (the first n reachable with at most horizon - 1 quarters left),
-    # so they start there: index n - n_min. Every table is kept or reused in place, with no grid-sized temporaries.
+    # so they start there: index n - n_min. The i-th is read only with i or more quarters left, so it keeps
+    # only the states reachable then. Running tables are updated in place, with no grid-sized temporaries.
     later = (slice(None), slice(None), slice(n_min, None))
     purchase_after, silent_after, known_part = [None], [None], [None]
     no_purchase_yet = np.ones_like(log_moment[later])
     margins_and_costs = np.zeros_like(no_purchase_yet)
     still_silent = np.ones_like(no_purchase_yet)  # alive and silent through i - 1 mailed quarters
+    first_purchase = np.empty_like(no_purchase_yet)
     scratch = np.empty_like(no_purchase_yet)
     for i in range(1, horizon + 1):
-        first_purchase = _times_shifted(still_silent, buy_next[later], i - 1, np.empty_like(no_purchase_yet))
+        _, top, wide, deep = reach(min(i, horizon - 1))
+        kept = (slice(0, deep + 1), slice(0, wide + 1), slice(0, top + 1 - n_min))
+        _times_shifted(still_silent, buy_next[later], i - 1, first_purchase)
         # margins_and_costs += d^i (margin * first_purchase - piece_cost * no_purchase_yet)
         np.multiply(first_purchase, discount**i * margin, out=scratch)
         margins_and_costs += scratch
         np.multiply(no_purchase_yet, discount**i * piece_cost, out=scratch)
         margins_and_costs -= scratch
         no_purchase_yet -= first_purchase
-        first_purchase *= discount**i
-        purchase_after.append(first_purchase)
-        known_part.append(margins_and_costs.copy())
+        purchase_after.append(first_purchase[kept] * discount**i)
+        known_part.append(margins_and_costs[kept].copy())
         _times_shifted(still_silent, silent_next[later], i - 1, still_silent)
         if rho > 0:
-            silent_after.append(np.multiply(still_silent, discount**i))
-    del no_purchase_yet, margins_and_costs, still_silent
+            silent_after.append(still_silent[kept] * discount**i)
+    del no_purchase_yet, margins_and_costs, still_silent, first_purchase, scratch
     if rho > 0:
         held_buy = rho * buy_next
         held_silent = _next_quarter(log_moment, log_alive, 0, 1)
-    shape = log_moment.shape
-    best = [np.zeros(shape)]
-    hold = [np.zeros(shape)]
+    first_n = [reach(h)[0] for h in range(horizon)]
+    band = n_max - n_min + 2  # n from first_n[h] to first_n[h] + band - 1 (the reachable band, the same width for every h)
+    best = [np.zeros((shape[0], shape[1], band))]
+    hold = [np.zeros((shape[0], shape[1], band))]
     for h in range(1, horizon):
-        low, top = max(n_min + horizon - h - 1, 0), n_max + horizon - h  # the n reachable with h quarters left
-        wide = min(top + 1, (n_max if x_max is None else x_max) + horizon - h + 1)
-        deep = min(b_max + horizon - h + 1, shape[0] - 2) if rho > 0 else shape[0] - 2
+        low, top, wide, deep = reach(h)
 
-        def at(table: np.ndarray, i: int = 0, shift_x: int = 0, shift_b: int = 0) -> np.ndarray:
-            return table[shift_b : deep + 1 + shift_b, shift_x : wide + 1 + shift_x, low + i : top + 1 + i]
+        def at(table: np.ndarray, first: int, i: int = 0, shift_x: int = 0, shift_b: int = 0, rows: tuple[int, int, int] | None = None) -> np.ndarray:
+            """The states reachable with h left in ``table`` (whose n starts at ``first``), ``i`` quarters on and
+            shifted in x and b; ``rows`` = (first b, last b + 1, last x + 1) narrows them to a block of b."""
+            b0, b1, x1 = rows or (0, deep + 1, wide + 1)
+            return table[b0 + shift_b : b1 + shift_b, shift_x : x1 + shift_x, low + i - first : top + 1 + i - first]
 
-        def at_later(table: np.ndarray) -> np.ndarray:
-            """The same states in a table that starts at n_min."""
-            return table[: deep + 1, : wide + 1, low - n_min : top + 1 - n_min]
+        def earlier(tables: list[np.ndarray], i: int, shift_x: int = 0, shift_b: int = 0, rows=None) -> np.ndarray:
+            """``at`` in the solved table for h - i quarters left, i quarters on."""
+            return at(tables[h - i], first_n[h - i], i, shift_x, shift_b, rows)
 
-        held = np.zeros(shape)
+        held = np.zeros((shape[0], shape[1], band))
         if rho > 0:
             # Hold for all h quarters: an unprompted purchase, or silence that adds one to b:
             # held = d * (held_buy * (margin + best[h-1] after the purchase) + held_silent * hold[h-1] one b on).
-            part = at(held)
-            np.add(at(best[h - 1], 1, 1), margin, out=part)
-            part *= at(held_buy)
-            np.multiply(at(held_silent), at(hold[h - 1], 1, 0, 1), out=at_later(scratch))
-            part += at_later(scratch)
+            part = at(held, low)
+            np.add(earlier(best, 1, 1), margin, out=part)
+            part *= at(held_buy, 0)
+            part += at(held_silent, 0) * earlier(hold, 1, 0, 1)
             part *= discount
         hold.append(held)
         # Mail J quarters, then hold: a plan's value is its known part plus the discounted values
         # after a first purchase in each mailed quarter (from earlier tables) plus the hold tail.
-        chosen = at(held).copy()
-        after_purchases = np.zeros_like(chosen)
-        candidate = np.empty_like(chosen)
-        tail = np.empty_like(chosen)
-        for i in range(1, h + 1):
-            np.multiply(at_later(purchase_after[i]), at(best[h - i], i, 1), out=candidate)
-            after_purchases += candidate
-            np.add(after_purchases, at_later(known_part[i]), out=candidate)
-            if rho > 0 and i < h:
-                np.multiply(at_later(silent_after[i]), at(hold[h - i], i), out=tail)
-                candidate += tail
-            np.maximum(chosen, candidate, out=chosen)
-        values = np.zeros(shape)
-        at(values)[...] = np.where(np.isfinite(at(log_moment)), chosen, 0.0)
+        # A state exists only where x + b <= n <= top, so a block of b from b0 on needs x only up to top - b0:
+        # a few blocks skip most of the (b, x) corner where no state lies.
+        values = np.zeros((shape[0], shape[1], band))
+        edges = np.linspace(0, deep + 1, _B_BLOCKS + 1).astype(int)
+        for b0, b1 in zip(edges[:-1], edges[1:]):
+            rows = (b0, b1, min(wide, top - b0) + 1)
+            if b1 <= b0 or rows[2] <= 0:
+                continue
+            chosen = at(held, low, rows=rows).copy()
+            after_purchases = np.zeros_like(chosen)
+            candidate = np.empty_like(chosen)
+            tail = np.empty_like(chosen)
+            for i in range(1, h + 1):
+                np.multiply(at(purchase_after[i], n_min, rows=rows), earlier(best, i, 1, rows=rows), out=candidate)
+                after_purchases += candidate
+                np.add(after_purchases, at(known_part[i], n_min, rows=rows), out=candidate)
+                if rho > 0 and i < h:
+                    np.multiply(at(silent_after[i], n_min, rows=rows), earlier(hold, i, rows=rows), out=tail)
+                    candidate += tail
+                np.maximum(chosen, candidate, out=chosen)
+            at(values, low, rows=rows)[...] = np.where(np.isfinite(at(log_moment, 0, rows=rows)), chosen, 0.0)
         best.append(values)
-    return Program(beliefs, margin, piece_cost, discount, horizon, log_moment, log_alive, best, hold)
+    return Program(beliefs, margin, piece_cost, discount, horizon, log_moment, log_alive, best, hold, tuple(first_n))
 
 
 @dataclass(frozen=True)
@@ -505,17 +546,17 @@ def _plan_values_per_alive(program: Program, n: np.ndarray, x: np.ndarray, b: np
     d, margin, cost = program.discount, program.margin, program.piece_cost
     here = program.log_moment[b, x, n]
     values = np.empty((len(n), horizon + 1))
-    values[:, 0] = program.hold[horizon][b, x, n] if horizon < len(program.hold) else _hold_value(program, n, x, b, horizon)
+    values[:, 0] = program.hold_at(horizon, b, x, n) if horizon < len(program.hold) else _hold_value(program, n, x, b, horizon)
     plan = np.zeros(len(n))
     purchased = np.zeros(len(n))  # chance of a purchase so far in the stretch (no piece is paid after it)
     for i in range(1, horizon + 1):
         first_purchase = np.exp(program.log_alive[n, i] + program.log_moment[b, x + 1, n + i] - here)
-        after = program.best[horizon - i][b, x + 1, n + i] if horizon - i < len(program.best) else 0.0
+        after = program.best_at(horizon - i, b, x + 1, n + i) if horizon - i < len(program.best) else 0.0
         plan += d**i * (first_purchase * (margin + after) + cost * purchased)
         purchased += first_purchase
         if i < horizon:
             silent_alive = np.exp(program.log_alive[n, i] + program.log_moment[b, x, n + i] - here)
-            values[:, i] = plan + d**i * silent_alive * program.hold[horizon - i][b, x, n + i]
+            values[:, i] = plan + d**i * silent_alive * program.hold_at(horizon - i, b, x, n + i)
         else:
             values[:, i] = plan
     return values
@@ -529,7 +570,7 @@ def _hold_value(program: Program, n, x, b, horizon):
     here = program.log_moment[b, x, n]
     buy = rho * np.exp(program.log_alive[n, 1] + program.log_moment[b, x + 1, n + 1] - here)
     silent = np.exp(program.log_alive[n, 1] + program.log_moment[b + 1, x, n + 1] - here)
-    return d * (buy * (program.margin + program.best[horizon - 1][b, x + 1, n + 1]) + silent * program.hold[horizon - 1][b + 1, x, n + 1])
+    return d * (buy * (program.margin + program.best_at(horizon - 1, b, x + 1, n + 1)) + silent * program.hold_at(horizon - 1, b + 1, x, n + 1))
 
 
 def decide(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, alive: np.ndarray) -> Decisions:
@@ -558,7 +599,7 @@ def hold_value(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, al
         return d * _plan_values(program, n + 1, x, b + 1, silent_alive, np.ones_like(alive), horizon - 1).max(axis=1)
     buy = alive * rho * np.exp(program.log_alive[n, 1] + program.log_moment[b, x + 1, n + 1] - here)
     later = _plan_values(program, n + 1, x, b + 1, silent_alive, 1.0 - buy, horizon - 1).max(axis=1)
-    return d * buy * (program.margin + program.best[horizon - 1][b, x + 1, n + 1]) + d * later
+    return d * buy * (program.margin + program.best_at(horizon - 1, b, x + 1, n + 1)) + d * later
 
 
 def decide_at(program: Program, n, x, b, alive, horizon: int) -> Decisions:
@@ -756,7 +797,7 @@ def mail_value_with(program: Program, n, x, b, alive, response: float, piece_cos
     survive = np.exp(program.log_alive[n, 1])
     buy = alive * survive * response * np.exp(program.log_moment[b, x + 1, n + 1] - here)
     horizon = program.horizon
-    after_purchase = program.best[horizon - 1][b, x + 1, n + 1] if horizon > 1 else 0.0
+    after_purchase = program.best_at(horizon - 1, b, x + 1, n + 1) if horizon > 1 else 0.0
     value = d * (buy * (margin + after_purchase) - piece_cost)
     if horizon == 1:
         return value
