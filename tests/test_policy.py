@@ -9,7 +9,8 @@ from numpy.testing import assert_allclose
 from lapsewise.churn import ChurnFit, mailed_silent_histories, posterior
 from lapsewise.errors import InputError
 from lapsewise.model import Model
-from lapsewise.policy import Beliefs, Economics, build_stop_table, decide, load_policy, solve
+from lapsewise.policy import Beliefs, Economics, build_stop_table, decide, load_policy, solve, spend_bands
+from lapsewise.spend import SpendFit
 from lapsewise.simulate import simulate_policies
 
 POLICIES = Path(__file__).parent.parent / "policies"
@@ -181,6 +182,24 @@ def test_stop_table_covers_every_state_up_to_the_horizon():
 def test_stop_table_needs_an_order_value():
     with pytest.raises(InputError, match="order_value"):
         build_stop_table(demo_model(spend=None), Economics(0.45, 4.0, 0.9, 0.10, 8))
+
+
+def test_spend_bands_cut_the_gamma_gamma_population_at_its_quantiles():
+    # The mean order value of a gamma-gamma customer is p / nu with nu ~ Gamma(q, rate gamma), so its u-quantile
+    # is p / (the (1 - u)-quantile of nu); the reference quantile is SciPy's gamma distribution.
+    from scipy import stats
+
+    # Parameter values of the size Fader, Hardie & Lee (2005) report (from memory); any with q > 1 would do.
+    spend = SpendFit(p=6.25, q=3.74, gamma=15.44, std_errors={}, log_likelihood=0.0, customers=1, converged=True)
+    bands = spend_bands(demo_model(spend=spend), Economics(0.45, 4.0, 0.9, 0.10, 8), 3)
+
+    def quantile(u):
+        return 6.25 / stats.gamma.ppf(1.0 - u, 3.74, scale=1.0 / 15.44)
+
+    assert [b.label for b in bands] == ["low", "middle", "high"]
+    assert bands[0].low == 0.0 and bands[-1].high == np.inf
+    assert_allclose([b.high for b in bands[:-1]], [quantile(1 / 3), quantile(2 / 3)], rtol=1e-10)
+    assert_allclose([b.order_value for b in bands], [quantile(1 / 6), quantile(1 / 2), quantile(5 / 6)], rtol=1e-10)
 
 
 # ---------------------------------------------------------------- simulation

@@ -630,20 +630,19 @@ def spend_bands(model, economics: Economics, count: int) -> tuple[SpendBand, ...
     bands of equal share, each represented by its median (its share's midpoint
     quantile). A customer is put in the band of their own expected order value.
     """
-    from scipy import stats
-
     if economics.order_value is not None:
         return (SpendBand("all", 0.0, math.inf, economics.order_value),)
     spend = getattr(model, "spend", None)
     if spend is None or not (spend.q > 1):
         raise InputError("the model has no usable order-value model; set order_value in the policy's [economics] or pass --order-value")
-    # Mean order value = p / nu with nu ~ Gamma(q, rate gamma): its u-quantile is p / (the (1-u)-quantile of nu).
+    # Mean order value = p / nu with nu ~ Gamma(q, rate gamma): its u-quantile is p / (the (1-u)-quantile of nu),
+    # and that quantile is gammainccinv(q, u) / gamma (the inverse of the upper regularized incomplete gamma).
     def quantile(u: float) -> float:
         if u <= 0:
             return 0.0
         if u >= 1:
             return math.inf
-        return spend.p / stats.gamma.ppf(1.0 - u, spend.q, scale=1.0 / spend.gamma)
+        return spend.p * spend.gamma / float(special.gammainccinv(spend.q, u))
 
     bands = []
     names = {1: ["all"], 2: ["lower", "upper"], 3: ["low", "middle", "high"]}.get(count, [f"band {i + 1}" for i in range(count)])
