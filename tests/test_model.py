@@ -10,7 +10,7 @@ from lapsewise.backtest import holdout_predictions, run_backtest
 from lapsewise.churn import ChurnFit
 from lapsewise.errors import InputError
 from lapsewise.model import Model, fit_model, load_model, quarterly_rate, return_curves, score_customers
-from lapsewise.panel import Panel, select
+from lapsewise.panel import Panel, select, summarize
 from simulate_histories import simulate
 
 TRUTH = {"alpha": 1.2, "beta": 2.5, "gamma": 0.7, "delta": 4.0, "rho": 0.3}
@@ -126,7 +126,7 @@ def test_quarterly_rate_compounds_to_the_annual_rate():
 def test_return_curves_cover_each_present_band():
     panel = simulated_panel(3_000, seed=13)
     model = Model(churn=ChurnFit(**TRUTH), spend=None, as_of="x", end_quarter=panel.end_quarter, fiscal_year_start=1, customers=panel.customers)
-    curves = return_curves(model, panel, max_silent=6)
+    curves = return_curves(model, summarize(panel), max_silent=6)
     assert set(curves["k"]) == set(range(7))
     assert (curves.groupby("band")["p_buy"].apply(lambda s: np.all(np.diff(s.to_numpy()) <= 1e-12))).all()
 

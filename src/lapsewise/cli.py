@@ -140,6 +140,7 @@ def fit(
     """Fit the hidden-churn and order-value models and write the model file."""
     from lapsewise.model import fit_model, return_curves
     from lapsewise.output import check_writable, write_text_atomic
+    from lapsewise.panel import summarize
 
     check_writable(out, force)
     console = _console()
@@ -147,11 +148,12 @@ def fit(
         with step("Reading the files and building the quarterly panel"):
             panel = _panel(orders, mailings, as_of, fiscal_year_start, columns)
         with step(f"Fitting the models on {panel.customers:,} customers"):
-            model = fit_model(panel)
+            summary = summarize(panel)
+            model = fit_model(panel, summary)
     write_text_atomic(out, dumps_stable(model.to_dict()), force)
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
-    render.print_model(console, model, return_curves(model, panel))
+    render.print_model(console, model, return_curves(model, summary))
     console.print(f"Model written to {out}.")
     render.print_caution(console)
 

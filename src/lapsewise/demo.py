@@ -185,7 +185,7 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
     from lapsewise.backtest import run_backtest
     from lapsewise.model import fit_model, return_curves
     from lapsewise.output import dumps_stable, write_text_atomic
-    from lapsewise.panel import panel_from_files
+    from lapsewise.panel import panel_from_files, summarize
     from lapsewise.output import write_atomic, write_csv
     from lapsewise.plan import customer_values, mail_list, make_plan, neutralise_formulas
     from lapsewise.policy import Beliefs, Economics, Policy, Segments, Version, build_stop_table, typical_order_value
@@ -203,9 +203,10 @@ def run_demo(console, folder: Path, customers: int, quarters: int, seed: int, fo
     render.print_panel_summary(console, panel)
 
     console.rule("The fitted model")
-    model = fit_model(panel)
+    summary = summarize(panel)
+    model = fit_model(panel, summary)
     write_text_atomic(paths["model"], dumps_stable(model.to_dict()), force)
-    render.print_model(console, model, return_curves(model, panel))
+    render.print_model(console, model, return_curves(model, summary))
     render.print_truth_comparison(console, model, data.truth)
     console.print(f"Model written to {paths['model']}.")
 

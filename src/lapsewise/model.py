@@ -18,7 +18,7 @@ import pandas as pd
 from lapsewise.churn import ChurnFit, dert, expected_purchases, fit_churn, posterior, return_curve
 from lapsewise.errors import InputError
 from lapsewise.load import require_file
-from lapsewise.panel import DEFAULT_FREQUENCY_BANDS, Panel, band_labels, band_of, compress, summarize
+from lapsewise.panel import DEFAULT_FREQUENCY_BANDS, CustomerSummary, Panel, band_labels, band_of, compress, summarize
 from lapsewise.spend import SpendFit, expected_order_value, fit_spend
 
 MODEL_FORMAT = "lapsewise-model"
@@ -93,11 +93,14 @@ class Model:
         )
 
 
-def fit_model(panel: Panel) -> Model:
-    """Fit the hidden-churn model on the panel's compressed histories and the gamma-gamma model on its repeat customers."""
+def fit_model(panel: Panel, summary: CustomerSummary | None = None) -> Model:
+    """Fit the hidden-churn model on the panel's compressed histories and the gamma-gamma model on its repeat customers.
+
+    ``summary`` is the panel's :func:`~lapsewise.panel.summarize`, when the caller has it already.
+    """
     histories = compress(panel)
     churn = fit_churn(histories, panel.mailing_history)
-    summary = summarize(panel)
+    summary = summarize(panel) if summary is None else summary
     warnings = list(churn.warnings)
     try:
         spend = fit_spend(summary.x, summary.mean_repeat_value)
@@ -178,13 +181,13 @@ def score_customers(model: Model, panel: Panel, horizon: int = 4, annual_discoun
     )
 
 
-def return_curves(model: Model, panel: Panel, max_silent: int = 12, bands: tuple[int, ...] = DEFAULT_FREQUENCY_BANDS) -> pd.DataFrame:
+def return_curves(model: Model, summary: CustomerSummary, max_silent: int = 12, bands: tuple[int, ...] = DEFAULT_FREQUENCY_BANDS) -> pd.DataFrame:
     """P(alive) and P(buy next quarter) after k further mailed silent quarters, for a typical customer of each frequency band.
 
     The typical customer of a band has the band's median repeat purchases x and
-    median last-purchase quarter t_x. Long format: band, x, t_x, k, p_alive, p_buy.
+    median last-purchase quarter t_x (``summary`` is the panel's :func:`~lapsewise.panel.summarize`).
+    Long format: band, x, t_x, k, p_alive, p_buy.
     """
-    summary = summarize(panel)
     band = band_of(summary.x, bands)
     labels = band_labels(bands)
     rows = []

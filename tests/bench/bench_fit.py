@@ -15,8 +15,9 @@ What it does:
    order system exporting Parquet would, not as the text the generator returns.
 2. Times, in this one process, each stage of ``fit``: load_orders, load_mailings
    (each alone, for its own cost), load_both (the two read side by side, as ``fit``
-   reads them; the sum of stages counts this one), build_panel, compress, summarize, expand (the first step of the churn fit,
-   shown on its own), fit_churn and fit_spend; then runs the whole command
+   reads them; the sum of stages counts this one), build_panel, compress,
+   summarize, expand (the first step of the churn fit, shown on its own),
+   fit_churn and fit_spend; then runs the whole command
    ``lapsewise fit`` in a subprocess (under ``/usr/bin/time -v`` when present).
 3. Times the floor: reading both Parquet files with ``pyarrow.parquet.read_table``
    and counting rows per customer with pandas ``value_counts``. Every stage is
