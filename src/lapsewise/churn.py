@@ -178,11 +178,13 @@ def _restarting_sums(start: np.ndarray, increments: np.ndarray, totals: np.ndarr
     A history's first cell (``first``) holds ``start``; each later cell adds its
     entry of ``increments`` (the entries at first cells are ignored). ``totals``
     is the sum of a history's increments, so one cumulative sum does it all.
+    An int32 ``increments`` is overwritten with the result (the sums are built in
+    place: on millions of cells each fresh array costs more than the arithmetic).
     """
-    jumps = increments.astype(np.int32)
+    jumps = increments.astype(np.int32, copy=False)
     jumps[first] = start
     jumps[first[1:]] -= start[:-1] + totals[:-1]  # cancel what the previous history ran up to
-    return np.cumsum(jumps, dtype=np.int32)
+    return np.cumsum(jumps, out=jumps)  # in place: one array of cells, not two
 
 
 def expand(histories: Histories) -> Expansion:
@@ -211,17 +213,18 @@ def expand(histories: Histories) -> Expansion:
     a = _restarting_sums(histories.mailed_silent.astype(np.int32), flags, mailed_after, first)
     b = _restarting_sums(histories.unmailed_silent.astype(np.int32), 1 - flags, silent - mailed_after, first)
     max_quarter = int(histories.n.max()) + 1
-    tau = _restarting_sums(histories.t_x.astype(np.int32), np.ones(cells, dtype=np.int8), silent, first)
-    tau[last] += max_quarter + 1  # death after tau, except the last cell of a history: alive through n
     a_n, b_n = a[last], b[last]
 
     # States (theta index, x, a, b) as integer keys; triples (x, a, b) from the few distinct states.
+    # The theta index is tau, plus max_quarter + 1 at a history's last cell (alive through n rather than
+    # dead after tau). tau * base + x is itself a running sum (start t_x * base + x, base per quarter),
+    # so the key is built in place from it: ((tau * base + x) * base + a) * base + b.
     base = int(max(x.max() + 2, a_n.max() + 1, b_n.max() + 1))
     state_count = (2 * max_quarter + 2) * base**3
     wide = np.int64 if state_count >= 2**31 else np.int32
-    state_key = tau.astype(wide, copy=False)  # ((tau * base + x) * base + a) * base + b, built in place
-    state_key *= base
-    state_key += np.repeat(x, silent + 1)
+    tau_x = _restarting_sums(histories.t_x.astype(np.int32) * base + x, np.full(cells, base, dtype=np.int32), silent * base, first)
+    tau_x[last] += (max_quarter + 1) * base
+    state_key = tau_x.astype(wide, copy=False)
     state_key *= base
     state_key += a
     state_key *= base
