@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import math
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -98,16 +99,12 @@ def fit_model(panel: Panel, summary: CustomerSummary | None = None) -> Model:
 
     ``summary`` is the panel's :func:`~lapsewise.panel.summarize`, when the caller has it already.
     """
-    histories = compress(panel)
-    churn = fit_churn(histories, panel.mailing_history)
-    summary = summarize(panel) if summary is None else summary
-    warnings = list(churn.warnings)
-    try:
-        spend = fit_spend(summary.x, summary.mean_repeat_value)
-        warnings.extend(f"spend: {w}" for w in spend.warnings)
-    except InputError as exc:
-        spend = None
-        warnings.append(f"spend: {exc}")
+    # The two models share nothing but the panel: the order-value fit runs in a second thread meanwhile.
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        spend_job = pool.submit(_fit_spend_or_warn, panel, summary)
+        churn = fit_churn(compress(panel), panel.mailing_history)
+        spend, spend_warnings = spend_job.result()
+    warnings = list(churn.warnings) + spend_warnings
     return Model(
         churn=churn,
         spend=spend,
@@ -117,6 +114,16 @@ def fit_model(panel: Panel, summary: CustomerSummary | None = None) -> Model:
         customers=panel.customers,
         warnings=tuple(warnings),
     )
+
+
+def _fit_spend_or_warn(panel: Panel, summary: CustomerSummary | None) -> tuple[SpendFit | None, list[str]]:
+    """The gamma-gamma fit on the panel's repeat customers (None when there are none), and its warnings."""
+    summary = summarize(panel) if summary is None else summary
+    try:
+        spend = fit_spend(summary.x, summary.mean_repeat_value)
+    except InputError as exc:
+        return None, [f"spend: {exc}"]
+    return spend, [f"spend: {w}" for w in spend.warnings]
 
 
 def load_model(path: str | Path) -> Model:
