@@ -233,6 +233,9 @@ def test_orders_and_mailings_read_side_by_side_match_each_read_alone(write_file)
     pd.testing.assert_frame_equal(pair[1].frame, load_mailings(mailings).frame)
     assert pair[1].repairs == {"ids with surrounding spaces trimmed": 1}
     assert load_orders_and_mailings(orders, None)[1] is None
+    # ``then`` works on the orders while the mailings load, and its result stands in their place.
+    rows, loaded_mailings = load_orders_and_mailings(orders, mailings, then=lambda loaded: len(loaded.frame))
+    assert rows == 3 and len(loaded_mailings.frame) == 2
 
 
 def test_side_by_side_read_reports_the_orders_problem_first(write_file):

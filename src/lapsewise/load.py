@@ -409,20 +409,26 @@ def load_orders_and_mailings(
     id_column: str = ID_COLUMN,
     date_column: str = ORDER_DATE_COLUMN,
     amount_column: str = AMOUNT_COLUMN,
-) -> tuple[Loaded, Loaded | None]:
+    then=None,
+) -> tuple:
     """:func:`load_orders` and :func:`load_mailings` (when a path is given), read side by side.
 
     The two files are independent until the panel joins them, and most of each
     load (Parquet decoding, hashing the ids) runs outside the interpreter lock, so
-    on two cores the pair takes about as long as the larger file alone. A problem
-    in the orders file is reported first, as when the files are read in turn.
+    on two cores the pair takes about as long as the larger file alone. ``then``,
+    when given, is applied to the loaded orders while the mailings may still be
+    loading, and its result is returned in their place. A problem in the orders
+    file (or in ``then``) is reported first, as when the files are read in turn.
     """
+    def orders_part():
+        orders = load_orders(orders_path, id_column, date_column, amount_column)
+        return orders if then is None else then(orders)
+
     if not mailings_path:
-        return load_orders(orders_path, id_column, date_column, amount_column), None
-    with ThreadPoolExecutor(max_workers=2) as pool:
+        return orders_part(), None
+    with ThreadPoolExecutor(max_workers=1) as pool:
         mailings_job = pool.submit(load_mailings, mailings_path, id_column)
-        orders_job = pool.submit(load_orders, orders_path, id_column, date_column, amount_column)
-        return orders_job.result(), mailings_job.result()
+        return orders_part(), mailings_job.result()
 
 
 def load_id_list(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:

@@ -13,6 +13,7 @@ quarters (``fiscal_year_start = 1``) start in January, April, July and October.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 from dataclasses import dataclass, field
 
@@ -204,6 +205,36 @@ def build_panel(
     as-of quarter, and customers whose first purchase comes after it, are left out
     and counted. Mailings for customers not in the orders are left out and counted.
     """
+    return attach_mailings(purchase_panel(orders, as_of, fiscal_year_start), mailings)
+
+
+@dataclass(frozen=True)
+class PurchasePanel:
+    """The panel's purchase side, built from the orders alone (:func:`purchase_panel`), waiting for the mailings.
+
+    ``order_ids`` are the orders' id categories and ``row_of_code`` the panel row of
+    each (-1 when the customer is left out), so that mailing rows map to panel rows
+    through integer codes.
+    """
+
+    panel: Panel
+    order_ids: pd.Index
+    row_of_code: np.ndarray
+
+
+def attach_mailings(purchases: PurchasePanel, mailings: Loaded | None) -> Panel:
+    """The panel with its mailed quarters: from the mailings, or every quarter after quarter 0 when there are none."""
+    panel = purchases.panel
+    if mailings is None:
+        return panel
+    mailed, mail_counts = _mailed_quarters(
+        mailings, purchases.order_ids, purchases.row_of_code, panel.first_quarter, panel.end_quarter, panel.purchased.shape[1], panel.fiscal_year_start
+    )
+    return dataclasses.replace(panel, mailed=mailed, mailing_history=True, counts={**panel.counts, **mail_counts})
+
+
+def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_start: int = 1) -> PurchasePanel:
+    """The purchase side of :func:`build_panel`: everything the orders alone decide, every quarter counted as mailed."""
     if not 1 <= fiscal_year_start <= 12:
         raise InputError(f"--fiscal-year-start: {fiscal_year_start} is not a month; give 1 to 12")
     counts = dict(orders.repairs)
@@ -269,23 +300,19 @@ def build_panel(
     spend.ravel()[flat] = net[bought][live]
 
     n = end_quarter - first_quarter
-    if mailings is None:
-        mailed = (np.arange(width)[None, :] >= 1) & (np.arange(width)[None, :] <= n[:, None])
-        mailed = mailed.astype(np.uint8)
-    else:
-        mailed, mail_counts = _mailed_quarters(mailings, ids.categories, new_code, first_quarter, end_quarter, width, fiscal_year_start)
-        counts.update(mail_counts)
-    return Panel(
+    all_mailed = ((np.arange(width)[None, :] >= 1) & (np.arange(width)[None, :] <= n[:, None])).astype(np.uint8)
+    panel = Panel(
         customer_ids=customer_ids,
         first_quarter=first_quarter,
         end_quarter=int(end_quarter),
         purchased=purchased,
         spend=spend,
-        mailed=mailed,
-        mailing_history=mailings is not None,
+        mailed=all_mailed,
+        mailing_history=False,
         fiscal_year_start=fiscal_year_start,
         counts=counts,
     )
+    return PurchasePanel(panel, ids.categories, new_code)
 
 
 def _mailed_quarters(
@@ -597,5 +624,8 @@ def panel_from_files(
                 last = max(last, int(quarter_index(mailings.frame[MAIL_DATE_COLUMN].to_numpy(), fiscal_year_start).max()))
             as_of_date = quarter_end(last, fiscal_year_start)
         return build_panel(orders, mailings, as_of_date, fiscal_year_start)
-    orders, mailings = load_orders_and_mailings(orders_path, mailings_path, id_column, date_column, amount_column)
-    return build_panel(orders, mailings, as_of_date, fiscal_year_start)
+    # The purchase side of the panel is built from the orders while the (larger) mailings file is still loading.
+    purchases, mailings = load_orders_and_mailings(
+        orders_path, mailings_path, id_column, date_column, amount_column, then=lambda orders: purchase_panel(orders, as_of_date, fiscal_year_start)
+    )
+    return attach_mailings(purchases, mailings)
