@@ -17,6 +17,7 @@ import warnings
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 import pandas as pd
@@ -409,7 +410,7 @@ def load_orders_and_mailings(
     id_column: str = ID_COLUMN,
     date_column: str = ORDER_DATE_COLUMN,
     amount_column: str = AMOUNT_COLUMN,
-    then=None,
+    then: Callable[[Loaded], object] | None = None,
 ) -> tuple:
     """:func:`load_orders` and :func:`load_mailings` (when a path is given), read side by side.
 

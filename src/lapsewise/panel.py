@@ -13,7 +13,6 @@ quarters (``fiscal_year_start = 1``) start in January, April, July and October.
 
 from __future__ import annotations
 
-import dataclasses
 import datetime as dt
 from dataclasses import dataclass, field
 
@@ -212,29 +211,34 @@ def build_panel(
 class PurchasePanel:
     """The panel's purchase side, built from the orders alone (:func:`purchase_panel`), waiting for the mailings.
 
-    ``order_ids`` are the orders' id categories and ``row_of_code`` the panel row of
-    each (-1 when the customer is left out), so that mailing rows map to panel rows
-    through integer codes.
+    ``fields`` are the :class:`Panel` fields the orders decide (all but ``mailed`` and
+    ``mailing_history``); ``order_ids`` are the orders' id categories and
+    ``row_of_code`` the panel row of each (-1 when the customer is left out), so that
+    mailing rows map to panel rows through integer codes.
     """
 
-    panel: Panel
+    fields: dict
     order_ids: pd.Index
     row_of_code: np.ndarray
 
 
 def attach_mailings(purchases: PurchasePanel, mailings: Loaded | None) -> Panel:
     """The panel with its mailed quarters: from the mailings, or every quarter after quarter 0 when there are none."""
-    panel = purchases.panel
+    fields = purchases.fields
+    first_quarter, end_quarter = fields["first_quarter"], fields["end_quarter"]
+    width = fields["purchased"].shape[1]
     if mailings is None:
-        return panel
+        columns = np.arange(width)[None, :]
+        mailed = ((columns >= 1) & (columns <= (end_quarter - first_quarter)[:, None])).astype(np.uint8)
+        return Panel(**fields, mailed=mailed, mailing_history=False)
     mailed, mail_counts = _mailed_quarters(
-        mailings, purchases.order_ids, purchases.row_of_code, panel.first_quarter, panel.end_quarter, panel.purchased.shape[1], panel.fiscal_year_start
+        mailings, purchases.order_ids, purchases.row_of_code, first_quarter, end_quarter, width, fields["fiscal_year_start"]
     )
-    return dataclasses.replace(panel, mailed=mailed, mailing_history=True, counts={**panel.counts, **mail_counts})
+    return Panel(**{**fields, "counts": {**fields["counts"], **mail_counts}}, mailed=mailed, mailing_history=True)
 
 
 def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_start: int = 1) -> PurchasePanel:
-    """The purchase side of :func:`build_panel`: everything the orders alone decide, every quarter counted as mailed."""
+    """The purchase side of :func:`build_panel`: everything the orders alone decide."""
     if not 1 <= fiscal_year_start <= 12:
         raise InputError(f"--fiscal-year-start: {fiscal_year_start} is not a month; give 1 to 12")
     counts = dict(orders.repairs)
@@ -299,20 +303,16 @@ def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_sta
     purchased.ravel()[flat] = 1
     spend.ravel()[flat] = net[bought][live]
 
-    n = end_quarter - first_quarter
-    all_mailed = ((np.arange(width)[None, :] >= 1) & (np.arange(width)[None, :] <= n[:, None])).astype(np.uint8)
-    panel = Panel(
-        customer_ids=customer_ids,
-        first_quarter=first_quarter,
-        end_quarter=int(end_quarter),
-        purchased=purchased,
-        spend=spend,
-        mailed=all_mailed,
-        mailing_history=False,
-        fiscal_year_start=fiscal_year_start,
-        counts=counts,
-    )
-    return PurchasePanel(panel, ids.categories, new_code)
+    fields = {
+        "customer_ids": customer_ids,
+        "first_quarter": first_quarter,
+        "end_quarter": int(end_quarter),
+        "purchased": purchased,
+        "spend": spend,
+        "fiscal_year_start": fiscal_year_start,
+        "counts": counts,
+    }
+    return PurchasePanel(fields, ids.categories, new_code)
 
 
 def _mailed_quarters(
