@@ -173,29 +173,29 @@ class Expansion:
 
 
 def _restarting_sums(start: np.ndarray, increments: np.ndarray, totals: np.ndarray, first: np.ndarray) -> np.ndarray:
-    """Running sums over the cells that restart with every history.
+    """Running sums over the cells that restart with every history, built in ``increments`` itself.
 
     A history's first cell (``first``) holds ``start``; each later cell adds its
     entry of ``increments`` (the entries at first cells are ignored). ``totals``
-    is the sum of a history's increments, so one cumulative sum does it all.
-    An int32 ``increments`` is overwritten with the result (the sums are built in
-    place: on millions of cells each fresh array costs more than the arithmetic).
+    is the sum of a history's increments, so one cumulative sum does it all. The
+    result overwrites ``increments`` (on millions of cells a fresh array costs
+    more than the arithmetic).
     """
-    jumps = increments.astype(np.int32, copy=False)
-    jumps[first] = start
-    jumps[first[1:]] -= start[:-1] + totals[:-1]  # cancel what the previous history ran up to
-    return np.cumsum(jumps, out=jumps)  # in place: one array of cells, not two
+    increments[first] = start
+    increments[first[1:]] -= start[:-1] + totals[:-1]  # cancel what the previous history ran up to
+    return np.cumsum(increments, out=increments)
 
 
 def expand(histories: Histories) -> Expansion:
     """Lay the histories out over their possible death quarters (done once per fit, not per evaluation).
 
     Cell ``j`` (``0 <= j <= n - t_x``) of a history is the quarter ``tau = t_x + j``
-    through which the customer stayed alive; its mailed and unmailed silent
-    quarters are running sums of the mail flags after the last purchase. The cells
-    of a history are contiguous, every per-cell quantity is one cumulative sum
-    over them, and states are found as integer keys: a few passes over the cells,
-    no sorting of rows.
+    through which the customer stayed alive. Its state is (theta index, x, a): the
+    mailed silent quarters ``a`` up to tau are a running sum of the mail flags after
+    the last purchase, and the unmailed ones follow, ``b = tau - x - a``, since every
+    quarter 1..tau is a purchase or a silent quarter. The cells of a history are
+    contiguous, so the state keys are one cumulative sum over them and the states are
+    found in a table of the few possible keys: a few passes over the cells, no sorting.
     """
     silent = histories.silent_quarters.astype(np.int32)
     rows = len(silent)
@@ -203,47 +203,43 @@ def expand(histories: Histories) -> Expansion:
     np.cumsum(silent + 1, out=indptr[1:])
     cells = int(indptr[-1])
     first, last = indptr[:-1], indptr[1:] - 1
-    # The mail flag of the quarter each cell adds (none for a history's first cell).
-    width = histories.after_last.shape[1]
-    flags = np.zeros((rows, width + 1), dtype=np.int8)
-    flags[:, 1:] = histories.after_last
-    flags = flags[np.arange(width + 1)[None, :] <= silent[:, None]]
-    mailed_after = histories.after_last.sum(axis=1, dtype=np.int32)
     x = histories.x.astype(np.int32)
-    a = _restarting_sums(histories.mailed_silent.astype(np.int32), flags, mailed_after, first)
-    b = _restarting_sums(histories.unmailed_silent.astype(np.int32), 1 - flags, silent - mailed_after, first)
+    mailed_after = histories.after_last.sum(axis=1, dtype=np.int32)
+    a_n = histories.mailed_silent.astype(np.int32) + mailed_after
+    b_n = histories.unmailed_silent.astype(np.int32) + silent - mailed_after
     max_quarter = int(histories.n.max()) + 1
-    a_n, b_n = a[last], b[last]
 
-    # States (theta index, x, a, b) as integer keys; triples (x, a, b) from the few distinct states.
-    # The theta index is tau, plus max_quarter + 1 at a history's last cell (alive through n rather than
-    # dead after tau). tau * base + x is itself a running sum (start t_x * base + x, base per quarter),
-    # so the key is built in place from it: ((tau * base + x) * base + a) * base + b.
+    # The key of a state is (theta index * base + x) * base + a. The theta index is tau, plus
+    # max_quarter + 1 at a history's last cell (alive through n rather than dead after tau). From one
+    # cell to the next tau grows by 1 and a by the quarter's mail flag, so the key grows by base**2 + flag.
     base = int(max(x.max() + 2, a_n.max() + 1, b_n.max() + 1))
-    state_count = (2 * max_quarter + 2) * base**3
-    wide = np.int64 if state_count >= 2**31 else np.int32
-    tau_x = _restarting_sums(histories.t_x.astype(np.int32) * base + x, np.full(cells, base, dtype=np.int32), silent * base, first)
-    tau_x[last] += (max_quarter + 1) * base
-    state_key = tau_x.astype(wide, copy=False)
-    state_key *= base
-    state_key += a
-    state_key *= base
-    state_key += b
+    state_count = (2 * max_quarter + 2) * base**2
+    width = histories.after_last.shape[1]
+    flags = np.zeros((rows, width + 1), dtype=np.int8)  # the flag each cell adds (none for a history's first cell)
+    flags[:, 1:] = histories.after_last
+    steps = flags[np.arange(width + 1)[None, :] <= silent[:, None]].astype(np.int64 if state_count >= 2**31 else np.int32)
+    del flags
+    steps += base * base
+    start = (histories.t_x.astype(np.int64) * base + x) * base + histories.mailed_silent
+    state_key = _restarting_sums(start, steps, silent * base * base + mailed_after, first)
+    state_key[last] += (max_quarter + 1) * base * base
     states, cell_state = integer_codes(state_key, state_count)
-    del state_key
-    state_triples = states % base**3
+    del state_key, steps
+    state_theta = states // (base * base)
+    state_x, state_a = states // base % base, states % base
+    state_tau = np.where(state_theta > max_quarter, state_theta - max_quarter - 1, state_theta)
 
     def key(x_, a_, b_):
         return (x_.astype(np.int64) * base + a_) * base + b_
 
-    unique_triples, inverse = integer_codes(np.concatenate([state_triples, key(x, a_n, b_n), key(x + 1, a_n, b_n)]), base**3)
+    triple_keys = np.concatenate([key(state_x, state_a, state_tau - state_x - state_a), key(x, a_n, b_n), key(x + 1, a_n, b_n)])
+    unique_triples, inverse = integer_codes(triple_keys, base**3)
     triples = np.stack([unique_triples // (base * base), unique_triples // base % base, unique_triples % base], axis=1).astype(np.int64)
-    data = np.ones(cells)
-    terms = sparse.csr_matrix((data, cell_state.astype(np.int32, copy=False), indptr.astype(np.int32)), shape=(rows, len(states)))
+    terms = sparse.csr_matrix((np.ones(cells), cell_state.astype(np.int32, copy=False), indptr.astype(np.int32)), shape=(rows, len(states)))
     return Expansion(
         histories=histories,
         terms=terms,
-        state_theta=states // base**3,
+        state_theta=state_theta,
         state_triple=inverse[: len(states)],
         triples=triples,
         alive_triple=inverse[len(states) : len(states) + rows],
