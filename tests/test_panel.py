@@ -16,7 +16,7 @@ from numpy.testing import assert_array_equal
 from conftest import mailings_text, orders_text, repair_count
 from lapsewise.errors import InputError
 from lapsewise.load import load_mailings, load_orders
-from lapsewise.panel import build_panel, compress, parse_as_of, quarter_start, summarize, truncate
+from lapsewise.panel import build_panel, compress, compress_arrays, history_arrays, parse_as_of, quarter_start, summarize, truncate
 
 Q1_2023 = 8092  # January-March 2023, see the module docstring
 
@@ -342,3 +342,57 @@ def test_compress_inverse_maps_each_customer_back_to_its_own_history(make_panel)
     assert histories.count.sum() == 4
     for name in ("x", "t_x", "n", "silent_quarters"):
         assert_array_equal(getattr(histories, name)[histories.inverse], getattr(summary, name), err_msg=name)
+
+
+def _statistics_by_definition(purchased, mailed, n):
+    """history_arrays' statistics for one row, counted quarter by quarter from their definitions."""
+    bought = [q for q in range(1, n + 1) if purchased[q]]
+    t_x = max(bought, default=0)
+    silent_before = [q for q in range(1, t_x + 1) if not purchased[q]]
+    return {
+        "x": len(bought),
+        "x_unmailed": sum(1 for q in bought if not mailed[q]),
+        "t_x": t_x,
+        "n": n,
+        "mailed_silent": sum(1 for q in silent_before if mailed[q]),
+        "unmailed_silent": sum(1 for q in silent_before if not mailed[q]),
+        "after_last": [int(mailed[q]) for q in range(t_x + 1, n + 1)],
+    }
+
+
+@pytest.mark.parametrize("width", [6, 41, 75])
+def test_history_statistics_and_their_grouping_match_a_quarter_by_quarter_count(width):
+    # Reference: the definitions counted row by row, and numpy's np.unique over whole rows for the grouping.
+    # 75 quarters need two 64-bit words of mail flags, so both ways of combining words into one key are used.
+    rng = np.random.default_rng(7)
+    rows = 400
+    purchased = (rng.random((rows, width)) < 0.15).astype(np.uint8)
+    mailed = (rng.random((rows, width)) < 0.5).astype(np.uint8)
+    purchased[rows // 2 :] = purchased[: rows // 2]  # repeated rows, so that histories are shared
+    mailed[rows // 2 :] = mailed[: rows // 2]
+    n = rng.integers(0, width, size=rows)
+    n[rows // 2 :] = n[: rows // 2]
+    # Rows with the same mail flags after one last-purchase quarter and different counts before it:
+    # the flags' word is then the same and only the counts tell the histories apart.
+    last = min(4, width - 2)
+    purchased[:40, 1 : last + 1] = rng.random((40, last)) < 0.5
+    purchased[:40, last] = 1
+    purchased[:40, last + 1 :] = 0
+    mailed[:40] = 1
+    n[:40] = width - 1
+    arrays = history_arrays(purchased, mailed, n)
+    for row in range(rows):
+        expected = _statistics_by_definition(purchased[row], mailed[row], int(n[row]))
+        flags = expected.pop("after_last")
+        assert {name: int(arrays[name][row]) for name in expected} == expected, row
+        assert arrays["after_last"][row, : len(flags)].tolist() == flags and not arrays["after_last"][row, len(flags) :].any(), row
+    histories = compress_arrays(arrays)
+    scalars = ["x", "x_unmailed", "t_x", "n", "mailed_silent", "unmailed_silent"]
+    table = np.column_stack([arrays[name] for name in scalars] + [arrays["after_last"]])
+    distinct, inverse, counts = np.unique(table, axis=0, return_inverse=True, return_counts=True)
+    assert histories.size == len(distinct)
+    # The same partition of the rows: each history pairs with one np.unique row and each row with one history.
+    assert len(set(zip(histories.inverse.tolist(), inverse.ravel().tolist()))) == histories.size
+    assert sorted(histories.count.tolist()) == sorted(counts.tolist())
+    table_of_history = np.column_stack([getattr(histories, name) for name in scalars] + [histories.after_last])
+    assert_array_equal(table_of_history[histories.inverse], table)

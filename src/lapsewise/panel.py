@@ -488,35 +488,39 @@ class Histories:
 
 
 def history_arrays(purchased: np.ndarray, mailed: np.ndarray, n: np.ndarray) -> dict[str, np.ndarray]:
-    """The likelihood's sufficient statistics of every row of aligned purchase and mail arrays."""
+    """The likelihood's sufficient statistics of every row of aligned purchase and mail arrays.
+
+    Each count is one pass over the (customers x quarters) flags; the rest follow
+    from identities: the silent quarters 1..t_x number ``t_x - x``, of which
+    ``mailed_silent`` are the mailed quarters up to t_x less the mailed purchases.
+    """
     width = purchased.shape[1]
     columns = np.arange(width)[None, :]
     observed = (columns >= 1) & (columns <= n[:, None])
-    bought = purchased.astype(bool) & observed
-    was_mailed = mailed.astype(bool) & observed
-    t_x = last_purchase_quarter(bought | (columns == 0))
-    before_last = columns <= t_x[:, None]
-    silent = observed & ~bought
+    bought = np.logical_and(purchased, observed)
+    was_mailed = np.logical_and(mailed, observed)
+    del observed
+    x = bought.sum(axis=1, dtype=np.int64)
+    t_x = np.where(x > 0, last_purchase_quarter(bought), 0)
+    x_mailed = (bought & was_mailed).sum(axis=1, dtype=np.int64)
+    mailed_through_last = np.logical_and(was_mailed, columns <= t_x[:, None]).sum(axis=1, dtype=np.int64)
+    mailed_silent = mailed_through_last - x_mailed
     silent_quarters = n - t_x
     after_width = max(int(silent_quarters.max()), 1) if len(n) else 1
-    # Rows that share t_x share the shift that left-aligns their quarters after it: one slice per t_x.
-    after_last = np.zeros((len(n), after_width), dtype=bool)
-    by_last = np.argsort(t_x, kind="stable")
-    bounds = np.searchsorted(t_x[by_last], np.arange(width + 1))
-    for last in range(width - 1):
-        rows = by_last[bounds[last] : bounds[last + 1]]
-        if len(rows):
-            shifted = was_mailed[rows, last + 1 :]
-            after_last[rows, : shifted.shape[1]] = shifted[:, :after_width]
-    after_last &= np.arange(after_width)[None, :] < silent_quarters[:, None]
+    # The quarters after the last purchase, left-aligned: each row's window of the mail flags from t_x + 1.
+    # Flags past n are already 0 (not observed), and so is the padding.
+    padded = np.zeros((len(n), width + after_width), dtype=bool)
+    padded[:, :width] = was_mailed
+    windows = np.lib.stride_tricks.sliding_window_view(padded, after_width, axis=1)
+    after_last = windows[np.arange(len(n)), t_x + 1]
     return {
-        "x": bought.sum(axis=1, dtype=np.int64),
-        "x_unmailed": (bought & ~was_mailed).sum(axis=1, dtype=np.int64),
+        "x": x,
+        "x_unmailed": x - x_mailed,
         "t_x": t_x,
         "n": n.astype(np.int64),
-        "mailed_silent": (silent & was_mailed & before_last).sum(axis=1, dtype=np.int64),
-        "unmailed_silent": (silent & ~was_mailed & before_last).sum(axis=1, dtype=np.int64),
-        "after_last": after_last.astype(np.uint8),
+        "mailed_silent": mailed_silent,
+        "unmailed_silent": t_x - x - mailed_silent,
+        "after_last": after_last.view(np.uint8),
     }
 
 
@@ -532,19 +536,28 @@ def compress_arrays(arrays: dict[str, np.ndarray]) -> Histories:
     if len(arrays["x"]) == 0:
         empty = np.zeros(0, dtype=np.int64)
         return Histories(**{s: empty for s in scalars}, after_last=arrays["after_last"], count=empty, inverse=empty)
-    stacked = np.stack([np.asarray(arrays[s], dtype=np.int64) for s in scalars], axis=1)
-    # The statistics as 64-bit words: the six counts in one word (9 bits each) when they fit, then the mail flags, 64 to a word.
-    if stacked.min() >= 0 and stacked.max() < 512:
-        words = [(stacked << (9 * np.arange(len(scalars)))).sum(axis=1)]
+    # The statistics as 64-bit words: the six counts in one word when they fit, then the mail flags, 64 to a word.
+    counts = [np.asarray(arrays[s], dtype=np.int64) for s in scalars]
+    bits = max(int(c.max()) for c in counts).bit_length() or 1
+    if min(int(c.min()) for c in counts) >= 0 and bits * len(counts) <= 63:
+        word = np.zeros(len(counts[0]), dtype=np.int64)
+        for position, count in enumerate(counts):
+            word |= count << (bits * position)
+        words, widths = [word], [bits * len(counts)]
     else:
-        words = list(stacked.T)
+        words, widths = counts, [64] * len(counts)
     packed = np.packbits(arrays["after_last"], axis=1)
-    packed = np.pad(packed, ((0, 0), (0, -packed.shape[1] % 8)))
-    words += list(np.ascontiguousarray(packed).view(np.uint64).T)
+    flag_bytes = packed.shape[1]
+    packed = np.pad(packed, ((0, 0), (0, -flag_bytes % 8)))
+    words += list(np.ascontiguousarray(packed).view("<i8").T)  # little-endian: a short last word keeps its bits low
+    widths += [64] * (flag_bytes // 8) + ([8 * (flag_bytes % 8)] if flag_bytes % 8 else [])
     codes = pd.factorize(words[0])[0]
-    for word in words[1:]:
-        word_codes = pd.factorize(word)[0]
-        codes = pd.factorize(codes * (int(word_codes.max()) + 1) + word_codes)[0]
+    for word, width in zip(words[1:], widths[1:]):
+        if int(codes.max()).bit_length() + width <= 63:  # the codes so far and the word side by side in one key
+            codes = pd.factorize((codes << width) | word)[0]
+        else:
+            word_codes = pd.factorize(word)[0]
+            codes = pd.factorize(codes * (int(word_codes.max()) + 1) + word_codes)[0]
     # factorize numbers patterns as they first appear, so a row starts a pattern where the running maximum grows.
     first = np.flatnonzero(np.diff(np.maximum.accumulate(codes), prepend=-1) > 0)
     return Histories(
