@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import json
 import math
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -99,11 +98,9 @@ def fit_model(panel: Panel, summary: CustomerSummary | None = None) -> Model:
 
     ``summary`` is the panel's :func:`~lapsewise.panel.summarize`, when the caller has it already.
     """
-    # The two models share nothing but the panel: the order-value fit runs in a second thread meanwhile.
-    with ThreadPoolExecutor(max_workers=1) as pool:
-        spend_job = pool.submit(_fit_spend_or_warn, panel, summary)
-        churn = fit_churn(compress(panel), panel.mailing_history)
-        spend, spend_warnings = spend_job.result()
+    # One after the other: both searches set the process's BLAS threads to one while they run (optimum.maximize).
+    churn = fit_churn(compress(panel), panel.mailing_history)
+    spend, spend_warnings = _fit_spend_or_warn(panel, summary)
     warnings = list(churn.warnings) + spend_warnings
     return Model(
         churn=churn,

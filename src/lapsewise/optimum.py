@@ -16,6 +16,8 @@ directly), returning the value and the exact gradient. :func:`maximize`
 
 The search stops when the Newton decrement says the log-likelihood summed over
 all customers is within ``TOLERANCE`` of its maximum.
+
+Everything here runs with one BLAS thread (see :func:`maximize`).
 """
 
 from __future__ import annotations
@@ -26,6 +28,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 from scipy import linalg, optimize
+from threadpoolctl import threadpool_limits
 
 Objective = Callable[[np.ndarray], tuple[float, np.ndarray]]
 
@@ -80,35 +83,42 @@ def maximize(
     log-likelihood that :data:`TOLERANCE` is stated in. ``stand_in``, when given,
     is a cheaper approximation of ``objective`` used for the scouting and the
     first convergence.
+
+    The search runs with one BLAS thread. Its dense algebra is on 3x3 to 5x5
+    matrices, and each L-BFGS-B step would otherwise wake a pool of BLAS threads:
+    about 8 ms per step on a 2-core machine, many times the step itself. The
+    limit is the whole process's, so two searches must not run in two threads at
+    once (the first to finish would restore the pool under the other).
     """
-    rough = stand_in or objective
-    scouts = [
-        optimize.minimize(rough, np.asarray(start, dtype=float), jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": scout_steps})
-        for start in starts
-    ]
-    finite = [scout for scout in scouts if np.isfinite(scout.fun)] or scouts
-    lead = min(finite, key=lambda result: result.fun)
-    near = optimize.minimize(rough, lead.x, jac=True, method="L-BFGS-B", bounds=bounds, options=_NEAR)
-    approximate = None
-    if stand_in is not None:
-        approximate = hessian(stand_in, near.x, near.jac, bounds)
-    finished = _newton(objective, near.x, bounds, customers, approximate)
-    if finished is not None:
-        return finished
-    # Newton could not finish (a bound in the way, or a Hessian that is not positive definite):
-    # L-BFGS-B goes on from the best point, restarted once should its line search stall at the optimum.
-    best = optimize.minimize(objective, near.x, jac=True, method="L-BFGS-B", bounds=bounds, options=_FINISH)
-    if not best.success:
-        again = optimize.minimize(objective, best.x, jac=True, method="L-BFGS-B", bounds=bounds, options=_FINISH)
-        if again.fun <= best.fun:
-            best = again
-    return Optimum(
-        x=best.x,
-        fun=float(best.fun),
-        hessian=hessian(objective, best.x, best.jac, bounds),
-        converged=bool(best.success),
-        message=str(best.message),
-    )
+    with threadpool_limits(limits=1, user_api="blas"):
+        rough = stand_in or objective
+        scouts = [
+            optimize.minimize(rough, np.asarray(start, dtype=float), jac=True, method="L-BFGS-B", bounds=bounds, options={"maxiter": scout_steps})
+            for start in starts
+        ]
+        finite = [scout for scout in scouts if np.isfinite(scout.fun)] or scouts
+        lead = min(finite, key=lambda result: result.fun)
+        near = optimize.minimize(rough, lead.x, jac=True, method="L-BFGS-B", bounds=bounds, options=_NEAR)
+        approximate = None
+        if stand_in is not None:
+            approximate = hessian(stand_in, near.x, near.jac, bounds)
+        finished = _newton(objective, near.x, bounds, customers, approximate)
+        if finished is not None:
+            return finished
+        # Newton could not finish (a bound in the way, or a Hessian that is not positive definite):
+        # L-BFGS-B goes on from the best point, restarted once should its line search stall at the optimum.
+        best = optimize.minimize(objective, near.x, jac=True, method="L-BFGS-B", bounds=bounds, options=_FINISH)
+        if not best.success:
+            again = optimize.minimize(objective, best.x, jac=True, method="L-BFGS-B", bounds=bounds, options=_FINISH)
+            if again.fun <= best.fun:
+                best = again
+        return Optimum(
+            x=best.x,
+            fun=float(best.fun),
+            hessian=hessian(objective, best.x, best.jac, bounds),
+            converged=bool(best.success),
+            message=str(best.message),
+        )
 
 
 def hessian(objective: Objective, x: np.ndarray, gradient: np.ndarray, bounds: Sequence[tuple[float, float]]) -> np.ndarray | None:
