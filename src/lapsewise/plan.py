@@ -47,7 +47,7 @@ from lapsewise.churn import posterior
 from lapsewise.errors import PlanError
 from lapsewise.model import Model
 from lapsewise.panel import Panel, band_labels, band_of, compress, integer_codes, summarize
-from lapsewise.policy import Beliefs, Policy, band_index, each_band, hold_value, mail_value_with, solve, spend_bands
+from lapsewise.policy import Beliefs, Policy, band_index, band_pool, hold_value, mail_value_with, solve, spend_bands
 from lapsewise.spend import expected_order_value
 
 CHUNKS = 40
@@ -113,44 +113,51 @@ def customer_values(
     """
     economics = policy.economics
     beliefs = Beliefs.from_fit(model.churn, economics.unmailed_response)
-    histories = compress(panel)
-    post = posterior(beliefs.churn_fit(), histories)
-    summary = summarize(panel)
-    bands = spend_bands(model, economics, policy.segments.spend_bands)
-    if economics.order_value is None:
-        order_values = expected_order_value(model.spend, summary.x, summary.mean_repeat_value)
-    else:
-        order_values = np.full(panel.customers, economics.order_value)
-    band = band_index(bands, order_values)
-    key = histories.inverse * len(bands) + band
-    distinct, inverse = integer_codes(key, histories.size * len(bands))
-    state = distinct // len(bands)
-    n, x, b = histories.n[state], histories.x[state], histories.unmailed_quarters[state]
-    alive = post.alive_now[state]
-    values = np.empty((len(distinct), len(policy.versions)))
     piece = reference_piece_cost(policy)
+    # Two workers: the summary beside the compression, then the posterior beside the bands' programs
+    # (a band's program needs only the band's states; its values need the posterior too).
+    with band_pool() as pool:
+        summary_job = pool.submit(summarize, panel)
+        histories = compress(panel)
+        posterior_job = pool.submit(posterior, beliefs.churn_fit(), histories)
+        summary = summary_job.result()
+        bands = spend_bands(model, economics, policy.segments.spend_bands)
+        if economics.order_value is None:
+            order_values = expected_order_value(model.spend, summary.x, summary.mean_repeat_value)
+        else:
+            order_values = np.full(panel.customers, economics.order_value)
+        band = band_index(bands, order_values)
+        key = histories.inverse * len(bands) + band
+        distinct, inverse = integer_codes(key, histories.size * len(bands))
+        state = distinct // len(bands)
+        n, x, b = histories.n[state], histories.x[state], histories.unmailed_quarters[state]
+        values = np.empty((len(distinct), len(policy.versions)))
 
-    def value_band(index: int) -> None:
-        members = (distinct % len(bands)) == index
-        if not members.any():
-            return
-        program = solve(
-            beliefs,
-            economics.margin(bands[index].order_value),
-            piece,
-            economics.discount,
-            economics.horizon_quarters,
-            n_max=int(n[members].max()),
-            b_max=int(b[members].max()),
-            n_min=int(n[members].min()),
-            x_max=int(x[members].max()),
-        )
-        args = (n[members], x[members], b[members], alive[members])
-        hold = hold_value(program, *args)
-        for column, version in enumerate(policy.versions):
-            values[members, column] = mail_value_with(program, *args, version.response, version.piece_cost) - hold
+        def value_band(members: np.ndarray, order_value: float) -> None:
+            program = solve(
+                beliefs,
+                economics.margin(order_value),
+                piece,
+                economics.discount,
+                economics.horizon_quarters,
+                n_max=int(n[members].max()),
+                b_max=int(b[members].max()),
+                n_min=int(n[members].min()),
+                x_max=int(x[members].max()),
+            )
+            args = (n[members], x[members], b[members], posterior_job.result().alive_now[state[members]])
+            hold = hold_value(program, *args)
+            for column, version in enumerate(policy.versions):
+                values[members, column] = mail_value_with(program, *args, version.response, version.piece_cost) - hold
 
-    each_band(value_band, range(len(bands)))
+        jobs = []
+        for index, spend_band in enumerate(bands):
+            members = (distinct % len(bands)) == index
+            if members.any():
+                jobs.append(pool.submit(value_band, members, spend_band.order_value))
+        for job in jobs:
+            job.result()
+        post = posterior_job.result()
     return CustomerValues(
         customer_ids=panel.customer_ids,
         segment=segment_labels(summary, policy, attribute),

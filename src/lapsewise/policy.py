@@ -663,13 +663,18 @@ def typical_order_value(model, economics: Economics) -> float:
     return float(spend.population_mean)
 
 
-def each_band(function, bands):
-    """``[function(band) for band in bands]``, two bands at a time.
+def band_pool() -> ThreadPoolExecutor:
+    """Two worker threads (one on a single core) for the spend bands' programs.
 
     The bands' programs are independent and their work is numpy operations that
     release the GIL, so two threads keep both cores of a laptop busy.
     """
-    with ThreadPoolExecutor(max_workers=min(2, os.cpu_count() or 1)) as pool:
+    return ThreadPoolExecutor(max_workers=min(2, os.cpu_count() or 1))
+
+
+def each_band(function, bands):
+    """``[function(band) for band in bands]``, two bands at a time (see :func:`band_pool`)."""
+    with band_pool() as pool:
         return list(pool.map(function, bands))
 
 
