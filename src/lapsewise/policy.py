@@ -473,12 +473,15 @@ def solve(
         hold.append(held)
         # Mail J quarters, then hold: a plan's value is its known part plus the discounted values
         # after a first purchase in each mailed quarter (from earlier tables) plus the hold tail.
-        # A state exists only where x + b <= n <= top, so a block of b from b0 on needs x only up to top - b0:
-        # a few blocks skip most of the (b, x) corner where no state lies.
+        # A state exists only where x + b <= n <= top, and is reached only where x + b <= x_top + b_max plus one
+        # per quarter gone (each quarter adds at most one purchase or one held quarter), one more for the x + 1
+        # and b + 1 that later tables read. So a block of b from b0 on needs x only up to the smaller bound less b0:
+        # a few blocks skip most of the (b, x) corner where no state lies or none is reached.
         values = np.zeros((shape[0], shape[1], band))
         edges = np.linspace(0, deep + 1, _B_BLOCKS + 1).astype(int)
+        reached = x_top + b_max + horizon - h + 1
         for b0, b1 in zip(edges[:-1], edges[1:]):
-            rows = (b0, b1, min(wide, top - b0) + 1)
+            rows = (b0, b1, min(wide, top - b0, reached - b0) + 1)
             if b1 <= b0 or rows[2] <= 0:
                 continue
             chosen = at(held, low, rows=rows).copy()
