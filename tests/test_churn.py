@@ -15,6 +15,7 @@ from lapsewise.churn import (
     posterior,
     return_curve,
     total_gradient,
+    total_hessian,
     total_log_likelihood,
 )
 from lapsewise.panel import compress_arrays, history_arrays
@@ -114,6 +115,28 @@ def test_gradient_matches_finite_differences():
         down[i] -= step
         numeric.append((total_log_likelihood(expansion, tuple(up)) - total_log_likelihood(expansion, tuple(down))) / (2 * step))
     assert_allclose(grad, numeric, rtol=1e-5)
+
+
+@pytest.mark.parametrize("rho", [0.4, None])
+def test_hessian_matches_central_differences_of_the_gradient(rho):
+    # Reference: central differences of the exact gradient (itself checked against differences of the likelihood above).
+    hist = simulate_histories(2000, 1.0, 2.5, 0.7, 4.0, 0.3, lapse_after=2, winback_share=0.3, seed=11)
+    expansion = expand(hist)
+    point = [0.9, 2.2, 0.8, 3.6, rho]
+    value, grad, curvature = total_hessian(expansion, tuple(point))
+    assert value == pytest.approx(total_log_likelihood(expansion, tuple(point)), rel=1e-12)
+    assert_allclose(grad, total_gradient(expansion, tuple(point))[1], rtol=1e-12)
+    free = 5 if rho is not None else 4
+    numeric = np.zeros((free, free))
+    for i in range(free):
+        step = 1e-5 * point[i]
+        up, down = list(point), list(point)
+        up[i] += step
+        down[i] -= step
+        numeric[:, i] = (total_gradient(expansion, tuple(up))[1][:free] - total_gradient(expansion, tuple(down))[1][:free]) / (2 * step)
+    assert_allclose(curvature[:free, :free], numeric, rtol=1e-5, atol=1e-6 * np.abs(numeric).max())
+    if rho is None:
+        assert not curvature[4].any() and not curvature[:, 4].any()
 
 
 TRUTH = {"alpha": 1.2, "beta": 2.5, "gamma": 0.7, "delta": 4.0, "rho": 0.3}

@@ -31,6 +31,7 @@ from __future__ import annotations
 import functools
 import math
 from dataclasses import dataclass, field
+from typing import Callable
 
 import numpy as np
 from scipy import sparse, special
@@ -297,8 +298,8 @@ class MomentTerms:
 
 
 def log_p_moments(
-    triples: np.ndarray | MomentTerms, alpha: float, beta: float, rho: float | None, gradient: bool = False
-) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
+    triples: np.ndarray | MomentTerms, alpha: float, beta: float, rho: float | None, gradient: bool = False, hessian: bool = False
+) -> np.ndarray | tuple[np.ndarray, ...]:
     """log E_p[p^x (1-p)^a (1-rho p)^b] under p ~ Beta(alpha, beta), for each row (x, a, b).
 
     Writing ``1 - rho p = (1 - p) + (1 - rho) p`` turns the integrand into a sum of
@@ -311,11 +312,19 @@ def log_p_moments(
     With ``rho`` None (no mailing history) b is 0 and only the c = 0 term remains.
     ``triples`` may be given already laid out as :class:`MomentTerms` (built with
     ``unmailed=False`` when rho is None). With ``gradient`` also returns the
-    derivatives by (alpha, beta, rho), shape (rows, 3).
+    derivatives by (alpha, beta, rho), shape (rows, 3); with ``hessian`` as well
+    the second derivatives, shape (rows, 3, 3).
+
+    Each term is ``exp(t_c)`` with ``t_c`` linear in log-gamma functions and in
+    ``log(1 - rho)``, so with the terms' shares ``pi_c`` the derivatives are
+    ``sum pi_c t_c'`` and ``sum pi_c (t_c'' + t_c' t_c'^T) - (sum pi_c t_c')(sum pi_c t_c')^T``,
+    less those of ``log B(alpha, beta)``.
     """
     layout = triples if isinstance(triples, MomentTerms) else MomentTerms.of(np.asarray(triples), unmailed=rho is not None)
+    gradient = gradient or hessian
     if layout.rows == 0:
-        return (np.zeros(0), np.zeros((0, 3))) if gradient else np.zeros(0)
+        empty = (np.zeros(0), np.zeros((0, 3)), np.zeros((0, 3, 3)))
+        return empty[: 2 + hessian] if gradient else empty[0]
     if rho is None:
         rho = 1.0
     size = int(max(layout.k_alpha.max(), layout.k_beta.max(), layout.k_total.max())) + 1
@@ -335,10 +344,31 @@ def log_p_moments(
     share /= total[layout.owner]
     psi = special.digamma
     psi_total = psi(alpha + beta + offsets)[layout.k_total]
-    d_alpha = np.add.reduceat(share * (psi(alpha + offsets)[layout.k_alpha] - psi_total), layout.start) - (psi(alpha) - psi(alpha + beta))
-    d_beta = np.add.reduceat(share * (psi(beta + offsets)[layout.k_beta] - psi_total), layout.start) - (psi(beta) - psi(alpha + beta))
-    d_rho = -np.add.reduceat(share * layout.c, layout.start) / (1.0 - rho) if rho < 1.0 else np.zeros(len(value))
-    return value, np.stack([d_alpha, d_beta, d_rho], axis=1)
+    # Each term's derivatives by (alpha, beta, rho); rho enters only through (1 - rho)^c.
+    term_d = [psi(alpha + offsets)[layout.k_alpha] - psi_total, psi(beta + offsets)[layout.k_beta] - psi_total]
+    term_d.append(-layout.c / (1.0 - rho) if rho < 1.0 else np.zeros(len(layout.c)))
+    mean_d = np.stack([np.add.reduceat(share * d, layout.start) for d in term_d], axis=1)
+    normaliser = np.array([psi(alpha) - psi(alpha + beta), psi(beta) - psi(alpha + beta), 0.0])
+    if not hessian:
+        return value, mean_d - normaliser
+    trigamma = functools.partial(special.polygamma, 1)
+    tri_total = trigamma(alpha + beta + offsets)[layout.k_total]
+    term_dd = {
+        (0, 0): trigamma(alpha + offsets)[layout.k_alpha] - tri_total,
+        (0, 1): -tri_total,
+        (1, 1): trigamma(beta + offsets)[layout.k_beta] - tri_total,
+        (2, 2): -layout.c / (1.0 - rho) ** 2 if rho < 1.0 else np.zeros(len(layout.c)),
+    }
+    curvature = np.empty((layout.rows, 3, 3))
+    for i in range(3):
+        for j in range(i, 3):
+            inner = term_d[i] * term_d[j]
+            if (i, j) in term_dd:
+                inner = inner + term_dd[(i, j)]
+            curvature[:, i, j] = curvature[:, j, i] = np.add.reduceat(share * inner, layout.start) - mean_d[:, i] * mean_d[:, j]
+    tri_ab = trigamma(alpha + beta)
+    curvature -= np.array([[trigamma(alpha) - tri_ab, -tri_ab, 0.0], [-tri_ab, trigamma(beta) - tri_ab, 0.0], [0.0, 0.0, 0.0]])
+    return value, mean_d - normaliser, curvature
 
 
 def log_survival(gamma: float, delta: float, quarters: np.ndarray) -> np.ndarray:
@@ -351,11 +381,12 @@ def log_death_after(gamma: float, delta: float, quarters: np.ndarray) -> np.ndar
     return special.betaln(gamma + 1.0, delta + quarters) - special.betaln(gamma, delta)
 
 
-def _theta_vector(gamma: float, delta: float, max_quarter: int, gradient: bool = False):
-    """The theta factors indexed by ``Expansion.cell_theta``; with ``gradient`` their derivatives by (gamma, delta)."""
+def _theta_vector(gamma: float, delta: float, max_quarter: int, gradient: bool = False, hessian: bool = False):
+    """The theta factors indexed by ``Expansion.state_theta``; with ``gradient`` their derivatives by (gamma, delta),
+    with ``hessian`` also their second derivatives, shape (factors, 2, 2)."""
     t = np.arange(max_quarter + 1, dtype=float)
     value = np.concatenate([log_death_after(gamma, delta, t), log_survival(gamma, delta, t)])
-    if not gradient:
+    if not (gradient or hessian):
         return value
     psi = special.digamma
     base_gamma = psi(gamma + delta) - psi(gamma)
@@ -364,7 +395,18 @@ def _theta_vector(gamma: float, delta: float, max_quarter: int, gradient: bool =
     death_delta = psi(delta + t) - psi(gamma + delta + t + 1) + base_delta
     survive_gamma = psi(gamma) - psi(gamma + delta + t) + base_gamma
     survive_delta = psi(delta + t) - psi(gamma + delta + t) + base_delta
-    return value, np.stack([np.concatenate([death_gamma, survive_gamma]), np.concatenate([death_delta, survive_delta])], axis=1)
+    first = np.stack([np.concatenate([death_gamma, survive_gamma]), np.concatenate([death_delta, survive_delta])], axis=1)
+    if not hessian:
+        return value, first
+    # Second derivatives of log B(gamma + 1, delta + t) and log B(gamma, delta + t), less those of log B(gamma, delta).
+    tri = functools.partial(special.polygamma, 1)
+    base = tri(gamma + delta)
+    death_end, survive_end = tri(gamma + delta + t + 1), tri(gamma + delta + t)
+    gamma_gamma = np.concatenate([tri(gamma + 1) - death_end - tri(gamma) + base, base - survive_end])
+    gamma_delta = np.concatenate([base - death_end, base - survive_end])
+    delta_delta = np.concatenate([tri(delta + t) - death_end, tri(delta + t) - survive_end]) - tri(delta) + base
+    second = np.stack([np.stack([gamma_gamma, gamma_delta], axis=1), np.stack([gamma_delta, delta_delta], axis=1)], axis=1)
+    return value, first, second
 
 
 def _log_unmailed_factor(hist: Histories, rho: float | None) -> np.ndarray:
@@ -393,28 +435,54 @@ def _history_sums(expansion: Expansion, values: np.ndarray) -> tuple[np.ndarray,
         return np.log(sums) + shift[hist.x], scaled, sums
 
 
-def _evaluate(expansion: Expansion, params: tuple, gradient: bool = False):
-    """Per-history log-likelihood and the log moments; with ``gradient``, the total's gradient by the parameters."""
+def _evaluate(expansion: Expansion, params: tuple, gradient: bool = False, hessian: bool = False):
+    """Per-history log-likelihood and the log moments; with ``gradient``, the total's gradient by the parameters;
+    with ``hessian``, also its Hessian.
+
+    A history's log-likelihood is ``log sum_s exp(v_s) + u`` over its states s, with
+    ``u = x_unmailed log rho``. With ``w_s`` the states' shares of the sum, its gradient
+    is ``g = sum_s w_s v_s' + u'`` and its Hessian ``sum_s w_s (v_s'' + v_s' v_s'^T) - h h^T + u''``
+    with ``h = sum_s w_s v_s'``. Summed over the customers, the first part needs only
+    each state's total share, the second one more product of the sparse terms.
+    """
     alpha, beta, gamma, delta, rho = params
     hist = expansion.histories
-    if not gradient:
+    if not (gradient or hessian):
         moments = log_p_moments(expansion.moments_layout(rho), alpha, beta, rho)
         theta = _theta_vector(gamma, delta, expansion.max_quarter)
         log_sums, _, _ = _history_sums(expansion, theta[expansion.state_theta] + moments[expansion.state_triple])
         return log_sums + _log_unmailed_factor(hist, rho), moments
-    moments, d_moments = log_p_moments(expansion.moments_layout(rho), alpha, beta, rho, gradient=True)
-    theta, d_theta = _theta_vector(gamma, delta, expansion.max_quarter, gradient=True)
+    moments, d_moments, *dd_moments = log_p_moments(expansion.moments_layout(rho), alpha, beta, rho, gradient=True, hessian=hessian)
+    theta, d_theta, *dd_theta = _theta_vector(gamma, delta, expansion.max_quarter, gradient=True, hessian=hessian)
     log_sums, scaled, sums = _history_sums(expansion, theta[expansion.state_theta] + moments[expansion.state_triple])
     # d log L_h / d value_s = terms[h, s] * exp(value_s) / L_h; weighted by the customers per history.
     with np.errstate(divide="ignore", invalid="ignore"):
-        weight = scaled * (expansion.terms.T @ np.where(sums > 0, hist.count / sums, 0.0))
+        per_sum = np.where(sums > 0, 1.0 / sums, 0.0)
+    weight = scaled * (expansion.terms.T @ (hist.count * per_sum))
     by_theta = np.bincount(expansion.state_theta, weights=weight, minlength=len(theta))
     by_triple = np.bincount(expansion.state_triple, weights=weight, minlength=len(moments))
     d_alpha, d_beta, d_rho = by_triple @ d_moments
     d_gamma, d_delta = by_theta @ d_theta
+    unmailed = float(np.dot(hist.count, hist.x_unmailed))
     if rho is not None:
-        d_rho += float(np.dot(hist.count, hist.x_unmailed)) / rho
-    return log_sums + _log_unmailed_factor(hist, rho), moments, np.array([d_alpha, d_beta, d_gamma, d_delta, d_rho])
+        d_rho += unmailed / rho
+    row = log_sums + _log_unmailed_factor(hist, rho)
+    grad = np.array([d_alpha, d_beta, d_gamma, d_delta, d_rho])
+    if not hessian:
+        return row, moments, grad
+    # The states' derivatives by (alpha, beta, gamma, delta, rho): the moments give 0, 1 and 4, theta 2 and 3.
+    by_moments, by_thetas = [0, 1, 4], [2, 3]
+    d_state = np.zeros((len(weight), 5))
+    d_state[:, by_moments] = d_moments[expansion.state_triple]
+    d_state[:, by_thetas] = d_theta[expansion.state_theta]
+    curvature = (d_state * weight[:, None]).T @ d_state
+    curvature[np.ix_(by_moments, by_moments)] += np.tensordot(by_triple, dd_moments[0], axes=1)
+    curvature[np.ix_(by_thetas, by_thetas)] += np.tensordot(by_theta, dd_theta[0], axes=1)
+    history_d = (expansion.terms @ (d_state * scaled[:, None])) * per_sum[:, None]
+    curvature -= (history_d * hist.count[:, None]).T @ history_d
+    if rho is not None:
+        curvature[4, 4] -= unmailed / rho**2
+    return row, moments, grad, curvature
 
 
 def history_log_likelihood(expansion: Expansion, params: tuple[float, float, float, float, float | None]) -> np.ndarray:
@@ -430,6 +498,15 @@ def total_gradient(expansion: Expansion, params: tuple[float, float, float, floa
     """The total log-likelihood and its gradient by (alpha, beta, gamma, delta, rho)."""
     row, _, grad = _evaluate(expansion, params, gradient=True)
     return float(np.dot(expansion.histories.count, row)), grad
+
+
+def total_hessian(expansion: Expansion, params: tuple[float, float, float, float, float | None]) -> tuple[float, np.ndarray, np.ndarray]:
+    """The total log-likelihood, its gradient and its Hessian by (alpha, beta, gamma, delta, rho), exact.
+
+    With rho None its row and column are zero.
+    """
+    row, _, grad, curvature = _evaluate(expansion, params, hessian=True)
+    return float(np.dot(expansion.histories.count, row)), grad, curvature
 
 
 # ---------------------------------------------------------------- fitting
@@ -449,9 +526,9 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     fixed random sample of the customers when there are many; the best is
     followed to convergence there and finished by Newton steps on the exact
     likelihood of all of them (see :mod:`lapsewise.optimum`). Standard errors come
-    from the observed information, the Hessian of the log-likelihood by finite
-    differences of its exact gradient. The cost grows with the number of
-    distinct histories, not customers.
+    from the observed information, the exact Hessian of the log-likelihood
+    (:func:`total_hessian`), which also steers the Newton steps. The cost grows
+    with the number of distinct histories, not customers.
 
     References
     ----------
@@ -466,7 +543,7 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     if histories.size > optimum.STAND_IN_CUSTOMERS:
         stand_in = _objective(expand(_sample(histories, optimum.STAND_IN_CUSTOMERS)), mailing_history)
     starts = [np.append(np.log(start[:4]), start[4:] if mailing_history else []) for start in _STARTS]
-    best = optimum.maximize(objective, starts, bounds, customers, _SCOUT_STEPS, stand_in)
+    best = optimum.maximize(objective, starts, bounds, customers, _SCOUT_STEPS, stand_in, _curvature(expansion, mailing_history))
     params = _unpack(best.x, mailing_history)
     names = PARAMETERS if mailing_history else PARAMETERS[:4]
     on_bound = _on_bounds(best.x, bounds, names)
@@ -512,6 +589,23 @@ def _objective(expansion: Expansion, mailing_history: bool) -> optimum.Objective
         return -value * scale, -chain * scale
 
     return objective
+
+
+def _curvature(expansion: Expansion, mailing_history: bool) -> Callable[[np.ndarray], np.ndarray]:
+    """The exact Hessian of :func:`_objective` in search coordinates (log-parameters, rho itself)."""
+    scale = 1.0 / max(float(expansion.histories.count.sum()), 1.0)
+    free = 5 if mailing_history else 4
+
+    def curvature(theta: np.ndarray) -> np.ndarray:
+        params = _unpack(theta, mailing_history)
+        _, grad, second = total_hessian(expansion, params)
+        # d/d log p = p d/dp, so d2/(d log p_i d log p_j) = p_i p_j d2/(dp_i dp_j) + [i = j] p_i d/dp_i.
+        chain = np.append(params[:4], [1.0] * (free - 4))
+        result = chain[:, None] * second[:free, :free] * chain[None, :]
+        result[range(4), range(4)] += chain[:4] * grad[:4]
+        return -result * scale
+
+    return curvature
 
 
 def _sample(histories: Histories, size: int) -> Histories:

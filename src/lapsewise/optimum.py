@@ -76,13 +76,16 @@ def maximize(
     customers: float,
     scout_steps: int,
     stand_in: Objective | None = None,
+    exact_hessian: Callable[[np.ndarray], np.ndarray] | None = None,
 ) -> Optimum:
     """Minimise ``objective`` (a negative log-likelihood per customer) over the box ``bounds``.
 
     ``customers`` converts the per-customer objective to the summed
     log-likelihood that :data:`TOLERANCE` is stated in. ``stand_in``, when given,
     is a cheaper approximation of ``objective`` used for the scouting and the
-    first convergence.
+    first convergence. ``exact_hessian``, when given, is the objective's Hessian
+    as a function of the search coordinates; otherwise the Hessian is taken by
+    forward differences of the gradient (:func:`hessian`).
 
     The search runs with one BLAS thread. Its dense algebra is on 3x3 to 5x5
     matrices, and each L-BFGS-B step would otherwise wake a pool of BLAS threads:
@@ -90,6 +93,9 @@ def maximize(
     limit is the whole process's, so two searches must not run in two threads at
     once (the first to finish would restore the pool under the other).
     """
+    def hessian_at(x: np.ndarray, gradient: np.ndarray) -> np.ndarray | None:
+        return exact_hessian(x) if exact_hessian is not None else hessian(objective, x, gradient, bounds)
+
     with threadpool_limits(limits=1, user_api="blas"):
         rough = stand_in or objective
         scouts = [
@@ -102,7 +108,7 @@ def maximize(
         approximate = None
         if stand_in is not None:
             approximate = hessian(stand_in, near.x, near.jac, bounds)
-        finished = _newton(objective, near.x, bounds, customers, approximate)
+        finished = _newton(objective, hessian_at, near.x, bounds, customers, approximate)
         if finished is not None:
             return finished
         # Newton could not finish (a bound in the way, or a Hessian that is not positive definite):
@@ -115,7 +121,7 @@ def maximize(
         return Optimum(
             x=best.x,
             fun=float(best.fun),
-            hessian=hessian(objective, best.x, best.jac, bounds),
+            hessian=hessian_at(best.x, best.jac),
             converged=bool(best.success),
             message=str(best.message),
         )
@@ -143,6 +149,7 @@ def hessian(objective: Objective, x: np.ndarray, gradient: np.ndarray, bounds: S
 
 def _newton(
     objective: Objective,
+    hessian_at: Callable[[np.ndarray, np.ndarray], np.ndarray | None],
     x: np.ndarray,
     bounds: Sequence[tuple[float, float]],
     customers: float,
@@ -152,9 +159,10 @@ def _newton(
 
     ``curvature``, when given, is an approximate Hessian (the stand-in's) that the
     steps use until the decrement it gives is below tolerance; the exact Hessian
-    is then taken at that point, which either confirms the optimum (and is returned
-    with it) or takes over the steps. Each step with the approximate Hessian costs
-    one gradient; each exact Hessian as many gradients as there are coordinates.
+    is then taken at that point (``hessian_at(x, gradient)``), which either confirms
+    the optimum (and is returned with it) or takes over the steps. Each step with the
+    approximate Hessian costs one gradient; each exact Hessian as many gradients as
+    there are coordinates when taken by differences.
     """
     low = np.array([b[0] for b in bounds])
     high = np.array([b[1] for b in bounds])
@@ -165,7 +173,7 @@ def _newton(
         return None
     for _ in range(_NEWTON_STEPS):
         if curvature is None:
-            curvature, exact = hessian(objective, x, gradient, bounds), True
+            curvature, exact = hessian_at(x, gradient), True
         factor = _positive_definite(curvature)
         if factor is None:
             if exact:

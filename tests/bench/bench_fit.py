@@ -274,14 +274,15 @@ def run_stages(meter: Meter, paths: dict[str, Path], as_of: str, upto: str | Non
         out["expansion"] = expansion
         return out
     del expansion  # fit_churn builds its own; holding this one would inflate the fit's memory figure
-    with CountedCalls(churn, "total_gradient", keep_arguments=True) as counter:
+    with CountedCalls(churn, "total_gradient", keep_arguments=True) as counter, CountedCalls(churn, "total_hessian") as hessians:
         out["churn"] = meter.run("churn_fit", churn.fit_churn, out["histories"], out["panel"].mailing_history)
     # Evaluations on all the histories, and on the stand-in (a sample of customers) the search scouts on.
     full = [seconds for (args, _), seconds in zip(counter.arguments, counter.durations) if args[0].histories.size == out["histories"].size]
     scouting = counter.calls - len(full)
     meter.stages[-1].note = (
         f"{len(full)} evaluations of the full likelihood ({sum(full) / max(len(full), 1):.2f} s each), "
-        f"{scouting} of the stand-in ({(counter.seconds - sum(full)) / max(scouting, 1):.3f} s each)"
+        f"{scouting} of the stand-in ({(counter.seconds - sum(full)) / max(scouting, 1):.3f} s each), "
+        f"{hessians.calls} exact Hessian{'s' if hessians.calls != 1 else ''} of the full likelihood ({hessians.seconds / max(hessians.calls, 1):.2f} s each)"
     )
     out["gradient_calls"] = f"{len(full)} on all histories, {scouting} on the stand-in sample"
     if done("churn_fit"):
