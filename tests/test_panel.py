@@ -16,7 +16,7 @@ from numpy.testing import assert_array_equal
 from conftest import mailings_text, orders_text, repair_count
 from lapsewise.errors import InputError
 from lapsewise.load import load_mailings, load_orders
-from lapsewise.panel import build_panel, compress, compress_arrays, history_arrays, parse_as_of, quarter_start, summarize, truncate
+from lapsewise.panel import build_panel, compress, compress_arrays, history_arrays, integer_codes, parse_as_of, quarter_start, summarize, truncate
 
 Q1_2023 = 8092  # January-March 2023, see the module docstring
 
@@ -396,3 +396,14 @@ def test_history_statistics_and_their_grouping_match_a_quarter_by_quarter_count(
     assert sorted(histories.count.tolist()) == sorted(counts.tolist())
     table_of_history = np.column_stack([getattr(histories, name) for name in scalars] + [histories.after_last])
     assert_array_equal(table_of_history[histories.inverse], table)
+
+
+@pytest.mark.parametrize("size", [1, 50, 10_000, 60_000_000])
+def test_integer_codes_are_numpys_unique_with_inverse(size):
+    # Reference: np.unique(keys, return_inverse=True). 60 million is past the table's limit, where np.unique itself is used.
+    rng = np.random.default_rng(size)
+    keys = rng.integers(0, size, 5_000)
+    distinct, inverse = integer_codes(keys, size)
+    expected, expected_inverse = np.unique(keys, return_inverse=True)
+    assert_array_equal(distinct, expected)
+    assert_array_equal(inverse, expected_inverse.ravel())

@@ -128,9 +128,11 @@ def integer_codes(keys: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
         return distinct, inverse.ravel()
     present = np.zeros(size, dtype=bool)
     present[keys] = True
-    index = np.cumsum(present, dtype=np.int32 if size < 2**31 else np.int64)
-    index -= 1
-    return np.flatnonzero(present), index[keys]
+    distinct = np.flatnonzero(present)
+    # Each distinct key's index is written at its own place only: the rest of the table is never read, never touched.
+    index = np.empty(size, dtype=np.int32 if len(distinct) < 2**31 else np.int64)
+    index[distinct] = np.arange(len(distinct))
+    return distinct, index[keys]
 
 
 def quarter_start(quarter: int, fiscal_year_start: int = 1) -> dt.date:
