@@ -388,7 +388,8 @@ def solve(
     left only the states that can be reached with h left are computed: n from
     ``n_min + horizon - h`` to ``n_max + horizon - h``, x up to ``x_max + horizon - h``
     and b up to ``b_max + horizon - h``. The work is a loop
-    over (h, i) pairs, each a few numpy operations over that part of the grid.
+    over (h, i) pairs, each a few numpy operations over that part of the grid,
+    split into blocks of b that two threads share.
     """
     rho = beliefs.rho
     # Held quarters add to b; with rho = 0 nothing is learnt from them but n still grows.
@@ -448,56 +449,59 @@ def solve(
     band = n_max - n_min + 2  # n from first_n[h] to first_n[h] + band - 1 (the reachable band, the same width for every h)
     best = [np.zeros((shape[0], shape[1], band))]
     hold = [np.zeros((shape[0], shape[1], band))]
-    for h in range(1, horizon):
-        low, top, wide, deep = reach(h)
+    with band_pool() as pool:  # for the blocks of b in each step
+        for h in range(1, horizon):
+            low, top, wide, deep = reach(h)
 
-        def at(table: np.ndarray, first: int, i: int = 0, shift_x: int = 0, shift_b: int = 0, rows: tuple[int, int, int] | None = None) -> np.ndarray:
-            """The states reachable with h left in ``table`` (whose n starts at ``first``), ``i`` quarters on and
-            shifted in x and b; ``rows`` = (first b, last b + 1, last x + 1) narrows them to a block of b."""
-            b0, b1, x1 = rows or (0, deep + 1, wide + 1)
-            return table[b0 + shift_b : b1 + shift_b, shift_x : x1 + shift_x, low + i - first : top + 1 + i - first]
+            def at(table: np.ndarray, first: int, i: int = 0, shift_x: int = 0, shift_b: int = 0, rows: tuple[int, int, int] | None = None) -> np.ndarray:
+                """The states reachable with h left in ``table`` (whose n starts at ``first``), ``i`` quarters on and
+                shifted in x and b; ``rows`` = (first b, last b + 1, last x + 1) narrows them to a block of b."""
+                b0, b1, x1 = rows or (0, deep + 1, wide + 1)
+                return table[b0 + shift_b : b1 + shift_b, shift_x : x1 + shift_x, low + i - first : top + 1 + i - first]
 
-        def earlier(tables: list[np.ndarray], i: int, shift_x: int = 0, shift_b: int = 0, rows=None) -> np.ndarray:
-            """``at`` in the solved table for h - i quarters left, i quarters on."""
-            return at(tables[h - i], first_n[h - i], i, shift_x, shift_b, rows)
+            def earlier(tables: list[np.ndarray], i: int, shift_x: int = 0, shift_b: int = 0, rows=None) -> np.ndarray:
+                """``at`` in the solved table for h - i quarters left, i quarters on."""
+                return at(tables[h - i], first_n[h - i], i, shift_x, shift_b, rows)
 
-        held = np.zeros((shape[0], shape[1], band))
-        if rho > 0:
-            # Hold for all h quarters: an unprompted purchase, or silence that adds one to b:
-            # held = d * (held_buy * (margin + best[h-1] after the purchase) + held_silent * hold[h-1] one b on).
-            part = at(held, low)
-            np.add(earlier(best, 1, 1), margin, out=part)
-            part *= at(held_buy, 0)
-            part += at(held_silent, 0) * earlier(hold, 1, 0, 1)
-            part *= discount
-        hold.append(held)
-        # Mail J quarters, then hold: a plan's value is its known part plus the discounted values
-        # after a first purchase in each mailed quarter (from earlier tables) plus the hold tail.
-        # A state exists only where x + b <= n <= top, and is reached only where x + b <= x_top + b_max plus one
-        # per quarter gone (each quarter adds at most one purchase or one held quarter), one more for the x + 1
-        # and b + 1 that later tables read. So a block of b from b0 on needs x only up to the smaller bound less b0:
-        # a few blocks skip most of the (b, x) corner where no state lies or none is reached.
-        values = np.zeros((shape[0], shape[1], band))
-        edges = np.linspace(0, deep + 1, _B_BLOCKS + 1).astype(int)
-        reached = x_top + b_max + horizon - h + 1
-        for b0, b1 in zip(edges[:-1], edges[1:]):
-            rows = (b0, b1, min(wide, top - b0, reached - b0) + 1)
-            if b1 <= b0 or rows[2] <= 0:
-                continue
-            chosen = at(held, low, rows=rows).copy()
-            after_purchases = np.zeros_like(chosen)
-            candidate = np.empty_like(chosen)
-            tail = np.empty_like(chosen)
-            for i in range(1, h + 1):
-                np.multiply(at(purchase_after[i], n_min, rows=rows), earlier(best, i, 1, rows=rows), out=candidate)
-                after_purchases += candidate
-                np.add(after_purchases, at(known_part[i], n_min, rows=rows), out=candidate)
-                if rho > 0 and i < h:
-                    np.multiply(at(silent_after[i], n_min, rows=rows), earlier(hold, i, rows=rows), out=tail)
-                    candidate += tail
-                np.maximum(chosen, candidate, out=chosen)
-            at(values, low, rows=rows)[...] = np.where(np.isfinite(at(log_moment, 0, rows=rows)), chosen, 0.0)
-        best.append(values)
+            held = np.zeros((shape[0], shape[1], band))
+            if rho > 0:
+                # Hold for all h quarters: an unprompted purchase, or silence that adds one to b:
+                # held = d * (held_buy * (margin + best[h-1] after the purchase) + held_silent * hold[h-1] one b on).
+                part = at(held, low)
+                np.add(earlier(best, 1, 1), margin, out=part)
+                part *= at(held_buy, 0)
+                part += at(held_silent, 0) * earlier(hold, 1, 0, 1)
+                part *= discount
+            hold.append(held)
+            # Mail J quarters, then hold: a plan's value is its known part plus the discounted values
+            # after a first purchase in each mailed quarter (from earlier tables) plus the hold tail.
+            # A state exists only where x + b <= n <= top, and is reached only where x + b <= x_top + b_max plus one
+            # per quarter gone (each quarter adds at most one purchase or one held quarter), one more for the x + 1
+            # and b + 1 that later tables read. So a block of b from b0 on needs x only up to the smaller bound less b0:
+            # a few blocks skip most of the (b, x) corner where no state lies or none is reached.
+            values = np.zeros((shape[0], shape[1], band))
+            edges = np.linspace(0, deep + 1, _B_BLOCKS + 1).astype(int)
+            reached = x_top + b_max + horizon - h + 1
+
+            def plan_block(rows: tuple[int, int, int]) -> None:
+                chosen = at(held, low, rows=rows).copy()
+                after_purchases = np.zeros_like(chosen)
+                candidate = np.empty_like(chosen)
+                tail = np.empty_like(chosen)
+                for i in range(1, h + 1):
+                    np.multiply(at(purchase_after[i], n_min, rows=rows), earlier(best, i, 1, rows=rows), out=candidate)
+                    after_purchases += candidate
+                    np.add(after_purchases, at(known_part[i], n_min, rows=rows), out=candidate)
+                    if rho > 0 and i < h:
+                        np.multiply(at(silent_after[i], n_min, rows=rows), earlier(hold, i, rows=rows), out=tail)
+                        candidate += tail
+                    np.maximum(chosen, candidate, out=chosen)
+                at(values, low, rows=rows)[...] = np.where(np.isfinite(at(log_moment, 0, rows=rows)), chosen, 0.0)
+
+            blocks = [(b0, b1, min(wide, top - b0, reached - b0) + 1) for b0, b1 in zip(edges[:-1], edges[1:])]
+            # The blocks write disjoint rows of b: two threads share them (their numpy operations release the GIL).
+            list(pool.map(plan_block, [rows for rows in blocks if rows[1] > rows[0] and rows[2] > 0]))
+            best.append(values)
     return Program(beliefs, margin, piece_cost, discount, horizon, log_moment, log_alive, best, hold, tuple(first_n))
 
 
@@ -667,7 +671,7 @@ def typical_order_value(model, economics: Economics) -> float:
 
 
 def band_pool() -> ThreadPoolExecutor:
-    """Two worker threads (one on a single core) for the spend bands' programs.
+    """Two worker threads (one on a single core) for the spend bands' programs, and for the blocks inside one.
 
     The bands' programs are independent and their work is numpy operations that
     release the GIL, so two threads keep both cores of a laptop busy.
