@@ -37,6 +37,7 @@ from __future__ import annotations
 
 import time
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -479,14 +480,16 @@ def segment_report(values: CustomerValues, problem: PlanProblem, solution: PlanS
 def make_plan(values: CustomerValues, policy: Policy, budget: float | None, frontier_points: int = 0) -> Plan:
     """Solve the plan at the budget, its shadow price by re-solving, and optionally the budget frontier."""
     problem = build_problem(values, policy, budget)
-    solution = solve_plan(problem)
-    assignment = assign(values, problem, solution)
-    report = segment_report(values, problem, solution, assignment)
-    shadow = None
-    if budget is not None:
-        step = max(1.0, 0.01 * budget)
-        more = solve_plan(problem.with_budget(budget + step))
-        shadow = (more.objective - solution.objective) / step
+    # The shadow price re-solves at a budget 1% higher. CBC runs as a separate process, so the two solves run
+    # side by side on two threads; an error of the plan itself is raised first.
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        solving = pool.submit(solve_plan, problem)
+        step = max(1.0, 0.01 * budget) if budget is not None else None
+        solving_more = pool.submit(solve_plan, problem.with_budget(budget + step)) if budget is not None else None
+        solution = solving.result()
+        assignment = assign(values, problem, solution)
+        report = segment_report(values, problem, solution, assignment)
+        shadow = None if solving_more is None else (solving_more.result().objective - solution.objective) / step
     frontier = None
     if frontier_points:
         frontier = budget_frontier(problem, frontier_points, budget)
