@@ -478,8 +478,10 @@ def _evaluate(expansion: Expansion, params: tuple, gradient: bool = False, hessi
     curvature = (d_state * weight[:, None]).T @ d_state
     curvature[np.ix_(by_moments, by_moments)] += np.tensordot(by_triple, dd_moments[0], axes=1)
     curvature[np.ix_(by_thetas, by_thetas)] += np.tensordot(by_theta, dd_theta[0], axes=1)
-    history_d = (expansion.terms @ (d_state * scaled[:, None])) * per_sum[:, None]
-    curvature -= (history_d * hist.count[:, None]).T @ history_d
+    # Each history's h, scaled by the square root of its customers: the sum of count * h h^T is one product.
+    history_d = expansion.terms @ (d_state * scaled[:, None])
+    history_d *= (per_sum * np.sqrt(hist.count))[:, None]
+    curvature -= history_d.T @ history_d
     if rho is not None:
         curvature[4, 4] -= unmailed / rho**2
     return row, moments, grad, curvature
