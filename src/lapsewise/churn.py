@@ -222,7 +222,7 @@ def expand(histories: Histories) -> Expansion:
     del flags
     steps += base * base
     start = (histories.t_x.astype(np.int64) * base + x) * base + histories.mailed_silent
-    state_key = _restarting_sums(start, steps, silent * base * base + mailed_after, first)
+    state_key = _restarting_sums(start, steps, silent.astype(np.int64) * base * base + mailed_after, first)
     state_key[last] += (max_quarter + 1) * base * base
     states, cell_state = integer_codes(state_key, state_count)
     del state_key, steps
