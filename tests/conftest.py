@@ -15,11 +15,15 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterator
 
+import numpy as np
 import pytest
 from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
 
-from lapsewise.cli import main
+from lapsewise.app.cli import main
+from lapsewise.data.panel import build_panel
+from lapsewise.data.quarters import parse_as_of
+from lapsewise.files.inputs import load_mailings, load_orders
 
 ORDERS_HEADER = "customer_id,order_date,amount"
 MAILINGS_HEADER = "customer_id,mail_date"
@@ -284,3 +288,48 @@ def file_holding(content: bytes) -> Iterator[Path]:
         path = Path(folder) / "orders.csv"
         path.write_bytes(content)
         yield path
+
+
+# ---------------------------------------------------------------- panels from small hand-made files
+
+
+@pytest.fixture
+def make_panel(write_file):
+    """Build a panel from order rows (and mailing rows, when given) written as CSV files."""
+
+    def make(orders, mailings=None, as_of=None, fiscal_year_start=1):
+        loaded = load_orders(write_file("orders.csv", orders_text(*orders)))
+        mailed = load_mailings(write_file("mailings.csv", mailings_text(*mailings))) if mailings is not None else None
+        return build_panel(loaded, mailed, parse_as_of(as_of), fiscal_year_start)
+
+    return make
+
+
+def row_of(panel, customer_id: str) -> int:
+    return int(np.flatnonzero(panel.customer_ids == customer_id)[0])
+
+
+Q1_2023 = 8092  # January-March 2023, see the module docstring
+
+THREE_CUSTOMERS = [
+    "A1,2023-01-10,50",
+    "A1,2023-04-05,30",
+    "A1,2023-10-20,10",
+    "B2,2023-04-02,40",
+    "C3,2023-01-31,12",
+    "C3,2023-07-01,8",
+]
+
+
+# ---------------------------------------------------------------- the demo scenario, generated once per session
+
+
+@pytest.fixture(scope="session")
+def demo_dir(tmp_path_factory) -> Path:
+    """A small demo scenario's folder (3,000 customers, 16 quarters, seed 3), written by the installed command."""
+    from builders import run
+
+    folder = tmp_path_factory.mktemp("demo")
+    result = run("demo", "--dir", folder, "--customers", 3000, "--quarters", 16, "--seed", 3)
+    assert result.returncode == 0, result.stderr
+    return folder

@@ -1,10 +1,18 @@
-"""A small simulator of the hidden-churn process for recovery tests (invented data, fixed seeds)."""
+"""Simulated histories for recovery tests (invented data, fixed seeds), drawn with the project's one simulator."""
 
 from __future__ import annotations
 
 import numpy as np
 
-from lapsewise.panel import Histories, compress_arrays, history_arrays
+from lapsewise.data.histories import Histories, compress_arrays, history_arrays
+from lapsewise.evaluate.simulator import (
+    StreamedUniforms,
+    draw_traits,
+    every_quarter,
+    lapse_rule,
+    run_process,
+)
+from lapsewise.model.process import Process
 
 
 def simulate(
@@ -19,7 +27,7 @@ def simulate(
     winback_share: float = 0.0,
     seed: int = 0,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Purchased and mailed arrays aligned on quarter 0, and n per customer.
+    """Purchased and mailed arrays aligned on quarter 0, and n per customer (drawn from ``quarters``).
 
     Without ``lapse_after`` every quarter is mailed. With it, a customer is mailed
     while fewer than ``lapse_after`` quarters have passed since the last purchase,
@@ -27,26 +35,11 @@ def simulate(
     """
     rng = np.random.default_rng(seed)
     n = rng.integers(quarters[0], quarters[1] + 1, size=customers)
-    width = int(n.max()) + 1
-    p = rng.beta(alpha, beta, customers)
-    theta = rng.beta(gamma, delta, customers)
-    alive = np.ones(customers, dtype=bool)
-    purchased = np.zeros((customers, width), dtype=np.uint8)
-    mailed = np.zeros((customers, width), dtype=np.uint8)
-    purchased[:, 0] = 1
-    last = np.zeros(customers, dtype=np.int64)
-    for quarter in range(1, width):
-        observed = quarter <= n
-        alive &= rng.random(customers) >= theta
-        if lapse_after is None:
-            mail = observed.copy()
-        else:
-            mail = observed & ((quarter - 1 - last < lapse_after) | (rng.random(customers) < winback_share))
-        bought = observed & alive & (rng.random(customers) < p * np.where(mail, 1.0, rho))
-        purchased[:, quarter] = bought
-        mailed[:, quarter] = mail
-        last = np.where(bought, quarter, last)
-    return purchased, mailed, n
+    process = Process(alpha, beta, gamma, delta, rho)
+    traits = draw_traits(process, customers, rng)
+    rule = every_quarter if lapse_after is None else lapse_rule(lapse_after, winback_share)
+    result = run_process(process, traits, int(n.max()) + 1, rule, StreamedUniforms(rng, customers), last=n, rng=rng)
+    return result.purchased, result.mailed, n
 
 
 def simulate_histories(*args, **kwargs) -> Histories:

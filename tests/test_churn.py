@@ -1,24 +1,21 @@
-"""The mailing-aware hidden-churn model: exactness, equivalence to BG/BB, recovery of known parameters."""
+"""The mailing-aware hidden-churn likelihood: exactness, equivalence to BG/BB, derivatives, recovery of known parameters."""
 
 import numpy as np
 import pytest
-from hypothesis import given, settings, strategies as st
 from numpy.testing import assert_allclose
 from scipy import integrate, special
 
-from lapsewise.churn import (
+from lapsewise.data.histories import compress_arrays, history_arrays
+from lapsewise.model.churn import (
     ChurnFit,
     expand,
     fit_churn,
     history_log_likelihood,
-    log_p_moments,
-    posterior,
-    return_curve,
     total_gradient,
     total_hessian,
     total_log_likelihood,
 )
-from lapsewise.panel import compress_arrays, history_arrays
+from lapsewise.model.process import Process
 from simulate_histories import simulate, simulate_histories
 
 
@@ -64,20 +61,9 @@ def direct_likelihood(purchases, mails, alpha, beta, gamma, delta, rho):
 )
 def test_likelihood_equals_direct_numerical_integration(purchases, mails):
     params = (1.7, 2.3, 1.4, 3.1, 0.35)  # smooth densities so scipy.integrate.dblquad converges tightly
-    ours = np.exp(history_log_likelihood(expand(one_history(purchases, mails)), params))[0]
+    ours = np.exp(history_log_likelihood(expand(one_history(purchases, mails)), Process(*params)))[0]
     # Reference: SciPy's adaptive quadrature of the model's definition.
     assert_allclose(ours, direct_likelihood(purchases, mails, *params), rtol=1e-7)
-
-
-def test_p_moments_equal_gauss_jacobi_quadrature():
-    # Reference: Gauss-Jacobi quadrature (scipy.special.roots_jacobi) is exact for these polynomials
-    # once it has degree // 2 + 1 nodes.
-    triples = np.array([[0, 0, 0], [3, 2, 5], [7, 0, 11], [1, 9, 4], [12, 6, 14]])
-    alpha, beta, rho = 0.8, 1.9, 0.27
-    nodes, weights = special.roots_jacobi(int(triples.sum(axis=1).max()) // 2 + 1, beta - 1, alpha - 1)
-    p = (1 + nodes) / 2
-    expected = [np.log(np.sum(weights * p**x * (1 - p) ** a * (1 - rho * p) ** b) / weights.sum()) for x, a, b in triples]
-    assert_allclose(log_p_moments(triples, alpha, beta, rho), expected, rtol=1e-11)
 
 
 @pytest.mark.parametrize("rho", [0.0001, 0.3, 0.9])
@@ -86,17 +72,17 @@ def test_mailing_aware_likelihood_is_bgbb_when_every_quarter_is_mailed(rho):
     purchased, mailed, n = simulate(400, 1.1, 2.0, 0.8, 3.5, 0.3, seed=3)
     hist = compress_arrays(history_arrays(purchased, mailed, n))
     expansion = expand(hist)
-    bgbb = history_log_likelihood(expansion, (1.1, 2.0, 0.8, 3.5, None))
-    aware = history_log_likelihood(expansion, (1.1, 2.0, 0.8, 3.5, rho))
+    bgbb = history_log_likelihood(expansion, Process(1.1, 2.0, 0.8, 3.5, None))
+    aware = history_log_likelihood(expansion, Process(1.1, 2.0, 0.8, 3.5, rho))
     assert_allclose(aware, bgbb, rtol=1e-11)
 
 
 def test_compressed_likelihood_equals_sum_over_customers():
     purchased, mailed, n = simulate(300, 1.0, 2.5, 0.7, 4.0, 0.3, lapse_after=2, winback_share=0.3, seed=5)
     params = (1.0, 2.5, 0.7, 4.0, 0.3)
-    compressed = total_log_likelihood(expand(compress_arrays(history_arrays(purchased, mailed, n))), params)
+    compressed = total_log_likelihood(expand(compress_arrays(history_arrays(purchased, mailed, n))), Process(*params))
     one_by_one = sum(
-        history_log_likelihood(expand(compress_arrays(history_arrays(purchased[i : i + 1], mailed[i : i + 1], n[i : i + 1]))), params)[0]
+        history_log_likelihood(expand(compress_arrays(history_arrays(purchased[i : i + 1], mailed[i : i + 1], n[i : i + 1]))), Process(*params))[0]
         for i in range(len(n))
     )
     assert_allclose(compressed, one_by_one, rtol=1e-12)
@@ -106,14 +92,14 @@ def test_gradient_matches_finite_differences():
     hist = simulate_histories(2000, 1.0, 2.5, 0.7, 4.0, 0.3, lapse_after=2, winback_share=0.3, seed=11)
     expansion = expand(hist)
     point = np.array([0.9, 2.2, 0.8, 3.6, 0.4])
-    _, grad = total_gradient(expansion, tuple(point))
+    _, grad = total_gradient(expansion, Process(*point))
     numeric = []
     for i in range(5):
         step = 1e-6 * point[i]
         up, down = point.copy(), point.copy()
         up[i] += step
         down[i] -= step
-        numeric.append((total_log_likelihood(expansion, tuple(up)) - total_log_likelihood(expansion, tuple(down))) / (2 * step))
+        numeric.append((total_log_likelihood(expansion, Process(*up)) - total_log_likelihood(expansion, Process(*down))) / (2 * step))
     assert_allclose(grad, numeric, rtol=1e-5)
 
 
@@ -123,9 +109,9 @@ def test_hessian_matches_central_differences_of_the_gradient(rho):
     hist = simulate_histories(2000, 1.0, 2.5, 0.7, 4.0, 0.3, lapse_after=2, winback_share=0.3, seed=11)
     expansion = expand(hist)
     point = [0.9, 2.2, 0.8, 3.6, rho]
-    value, grad, curvature = total_hessian(expansion, tuple(point))
-    assert value == pytest.approx(total_log_likelihood(expansion, tuple(point)), rel=1e-12)
-    assert_allclose(grad, total_gradient(expansion, tuple(point))[1], rtol=1e-12)
+    value, grad, curvature = total_hessian(expansion, Process(*point))
+    assert value == pytest.approx(total_log_likelihood(expansion, Process(*point)), rel=1e-12)
+    assert_allclose(grad, total_gradient(expansion, Process(*point))[1], rtol=1e-12)
     free = 5 if rho is not None else 4
     numeric = np.zeros((free, free))
     for i in range(free):
@@ -133,7 +119,7 @@ def test_hessian_matches_central_differences_of_the_gradient(rho):
         up, down = list(point), list(point)
         up[i] += step
         down[i] -= step
-        numeric[:, i] = (total_gradient(expansion, tuple(up))[1][:free] - total_gradient(expansion, tuple(down))[1][:free]) / (2 * step)
+        numeric[:, i] = (total_gradient(expansion, Process(*up))[1][:free] - total_gradient(expansion, Process(*down))[1][:free]) / (2 * step)
     assert_allclose(curvature[:free, :free], numeric, rtol=1e-5, atol=1e-6 * np.abs(numeric).max())
     if rho is None:
         assert not curvature[4].any() and not curvature[:, 4].any()
@@ -171,37 +157,3 @@ def test_rho_is_flagged_when_no_quarter_is_unmailed():
     fit = fit_churn(hist, mailing_history=True)
     assert fit.std_errors["rho"] is None
     assert any("rho is not identified" in w for w in fit.warnings)
-
-
-def test_posterior_predicts_next_quarter_purchases_in_simulation():
-    # Simulate 9 quarters after quarter 0, fit nothing (true parameters), condition on the first 8
-    # and predict who buys in the 9th among the customers the lapse rule mailed then.
-    purchased, mailed, n = simulate(40_000, *TRUTH.values(), quarters=(9, 9), lapse_after=3, winback_share=0.2, seed=9)
-    hist = compress_arrays(history_arrays(purchased[:, :9], mailed[:, :9], n - 1))
-    post = posterior(ChurnFit(**TRUTH), hist)
-    predicted = post.p_buy[hist.inverse]
-    was_mailed = mailed[:, 9] == 1
-    actual = purchased[was_mailed, 9].sum()
-    expected = predicted[was_mailed].sum()
-    variance = (predicted[was_mailed] * (1 - predicted[was_mailed])).sum()
-    # Independent Bernoulli outcomes given the history: a correct model is within 4 SD with overwhelming probability.
-    assert abs(actual - expected) < 4 * np.sqrt(variance)
-
-
-@settings(max_examples=40, deadline=None)
-@given(
-    x=st.integers(0, 8),
-    extra=st.integers(0, 6),
-    alpha=st.floats(0.2, 5),
-    beta=st.floats(0.2, 5),
-    gamma=st.floats(0.2, 5),
-    delta=st.floats(0.2, 8),
-)
-def test_return_curve_is_a_probability_and_fades(x, extra, alpha, beta, gamma, delta):
-    fit = ChurnFit(alpha=alpha, beta=beta, gamma=gamma, delta=delta, rho=None)
-    p_alive, p_buy = return_curve(fit, x, x + extra, 12)
-    assert np.all((p_alive >= 0) & (p_alive <= 1 + 1e-12))
-    assert np.all((p_buy >= 0) & (p_buy <= p_alive + 1e-12))
-    # Every further mailed quarter without a purchase can only lower the hope of a return.
-    assert np.all(np.diff(p_alive) <= 1e-12)
-    assert np.all(np.diff(p_buy) <= 1e-12)

@@ -1,4 +1,4 @@
-"""Tests of the gamma-gamma order-value model (lapsewise.spend).
+"""Tests of the gamma-gamma order-value model (lapsewise.model.spend).
 
 The closed forms are checked against direct numerical integration with SciPy of
 the model as it is stated: a customer's order values are Gamma(shape p, rate nu)
@@ -18,12 +18,13 @@ from scipy import integrate, stats
 from scipy.special import digamma
 
 from lapsewise.errors import InputError
-from lapsewise.spend import (
+from lapsewise.model.spend import (
     SpendFit,
     expected_order_value,
     fit_spend,
     spend_log_likelihood,
 )
+
 
 def per_customer_gradient(p: float, q: float, gamma: float, x: np.ndarray, m_x: np.ndarray) -> np.ndarray:
     """Derivative of the summed log-likelihood with respect to (p, q, gamma), customer by customer: the plain
@@ -326,12 +327,12 @@ def test_undefined_numbers_serialise_as_none():
 
 def test_summed_likelihood_by_distinct_x_equals_the_per_customer_sum():
     # The fit evaluates the likelihood through per-x sums; they must equal the plain per-customer sums.
-    from lapsewise.spend import _Sums
+    from lapsewise.model.spend import SpendSums
 
     rng = np.random.default_rng(17)
     x = rng.integers(1, 12, 5000).astype(float)
     m_x = rng.gamma(3.0, 15.0, 5000)
     for p, q, gamma in [(6.0, 4.0, 22.5), (0.7, 1.3, 3.0), (25.0, 9.0, 140.0)]:
-        value, gradient = _Sums.of(x, m_x).value_and_gradient(p, q, gamma)
+        value, gradient = SpendSums.of(x, m_x).value_and_gradient(p, q, gamma)
         assert np.isclose(value, spend_log_likelihood(p, q, gamma, x, m_x).sum(), rtol=1e-11)
         np.testing.assert_allclose(gradient, per_customer_gradient(p, q, gamma, x, m_x), rtol=1e-9)

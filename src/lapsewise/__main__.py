@@ -1,3 +1,3 @@
-from lapsewise.cli import main
+from lapsewise.app.cli import main
 
 main()

@@ -8,7 +8,7 @@ Run by hand (never collected by pytest, never asserts on time)::
 
 What it does:
 
-1. Draws the demo scenario with :func:`lapsewise.demo.simulate_base` (seeded, so the
+1. Draws the demo scenario with :func:`lapsewise.evaluate.scenario.simulate_base` (seeded, so the
    same options give the same files) and writes ``orders.parquet`` and
    ``mailings.parquet`` into the data folder; existing files are reused unless
    ``--regenerate``. ``order_date`` is written as a Parquet timestamp, as an
@@ -57,9 +57,12 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from lapsewise import churn, panel as panel_module, spend
-from lapsewise.demo import simulate_base
-from lapsewise.load import load_mailings, load_orders, load_orders_and_mailings
+from lapsewise.data import histories as histories_module
+from lapsewise.data import panel as panel_module
+from lapsewise.data import summary as summary_module
+from lapsewise.evaluate.scenario import simulate_base
+from lapsewise.files.inputs import load_mailings, load_orders, load_orders_and_mailings
+from lapsewise.model import churn, spend
 
 STAGES = ("load_orders", "load_mailings", "load_both", "build_panel", "compress", "summarize", "expand", "churn_fit", "spend_fit")
 """The stages of ``fit`` in the order they run; ``expand`` is the first step of ``churn_fit``, also timed on its own."""
@@ -262,10 +265,10 @@ def run_stages(meter: Meter, paths: dict[str, Path], as_of: str, upto: str | Non
     out["panel"] = meter.run("build_panel", panel_module.build_panel, out["orders"], out["mailings"], dt.date.fromisoformat(as_of), 1)
     if done("build_panel"):
         return out
-    out["histories"] = meter.run("compress", panel_module.compress, out["panel"])
+    out["histories"] = meter.run("compress", histories_module.compress, out["panel"])
     if done("compress"):
         return out
-    out["summary"] = meter.run("summarize", panel_module.summarize, out["panel"])
+    out["summary"] = meter.run("summarize", summary_module.summarize, out["panel"])
     if done("summarize"):
         return out
     expansion = meter.run("expand (inside churn fit)", churn.expand, out["histories"])
@@ -387,8 +390,8 @@ def profile_stage(paths: dict[str, Path], as_of: str, stage: str, lines: int) ->
         "load_mailings": lambda: load_mailings(paths["mailings"]),
         "load_both": lambda: load_orders_and_mailings(paths["orders"], paths["mailings"]),
         "build_panel": lambda: panel_module.build_panel(out["orders"], out["mailings"], dt.date.fromisoformat(as_of), 1),
-        "compress": lambda: panel_module.compress(out["panel"]),
-        "summarize": lambda: panel_module.summarize(out["panel"]),
+        "compress": lambda: histories_module.compress(out["panel"]),
+        "summarize": lambda: summary_module.summarize(out["panel"]),
         "expand": lambda: churn.expand(out["histories"]),
         "churn_fit": lambda: churn.fit_churn(out["histories"], out["panel"].mailing_history),
         "spend_fit": lambda: spend.fit_spend(out["summary"].x, out["summary"].mean_repeat_value),

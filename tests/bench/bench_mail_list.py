@@ -16,17 +16,17 @@ What it does (the data, the floor, the Meter and the table come from bench_fit.p
    --mailings M --policy policies/full-catalog.toml --out LIST.csv``: read model and
    policy, read orders, read mailings, build panel, compress, posterior,
    customer values (which compresses and computes the posterior again, then solves
-   the stop-rule program once per spend band; one of those ``policy.solve`` calls
+   the stop-rule program once per spend band; one of those ``program.solve`` calls
    is repeated on its own), plan without a budget and with a budget of 200,000,
    mail list assembly and the CSV write. Then runs ``lapsewise fit`` and
    ``lapsewise mail-list`` as subprocesses (wall time and peak RSS).
-3. The stop-rule program alone for a 40-quarter horizon: ``policy.solve`` with
+3. The stop-rule program alone for a 40-quarter horizon: ``program.solve`` with
    rho = 0 and 0.3 at the stop table's size and at the size mail-list used, and
-   ``policy.build_stop_table`` for the full-catalog policy with the fitted model.
+   ``stop_table.build_stop_table`` for the full-catalog policy with the fitted model.
 4. The plan integer program at 200 segments x 3 versions on synthetic, seeded
-   customer values (built into a PlanProblem by ``plan.build_problem``, which
-   chunks them with ``plan.chunk_values``): ``plan.solve_plan`` alone, then
-   ``plan.make_plan`` with its shadow-price re-solves counted.
+   customer values (built into a PlanProblem by ``integer_program.build_problem``, which
+   chunks them with ``integer_program.chunk_values``): ``integer_program.solve_plan`` alone, then
+   ``integer_program.make_plan`` with its shadow-price re-solves counted.
 5. Prints one table of every stage (seconds, peak RSS, ratio to the floor) and
    the performance targets with the measured figure beside each.
 """
@@ -48,9 +48,19 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from bench_fit import CountedCalls, Meter, Stage, add_data_options, machine_reference, measure_floor, open_data, print_table, run_cli, run_command_median  # noqa: E402
 
-from lapsewise import churn, model as model_module, panel as panel_module, plan as plan_module, policy as policy_module  # noqa: E402
-from lapsewise.load import load_orders_and_mailings  # noqa: E402
-from lapsewise.output import dumps_stable, write_atomic, write_csv, write_text_atomic  # noqa: E402
+from lapsewise.app import pipeline  # noqa: E402
+from lapsewise.budget import integer_program as plan_module  # noqa: E402
+from lapsewise.budget import values as values_module
+from lapsewise.data import histories as histories_module  # noqa: E402
+from lapsewise.data import panel as panel_module
+from lapsewise.decide import program as program_module  # noqa: E402
+from lapsewise.decide import stop_table as stop_table_module
+from lapsewise.files import policy_file  # noqa: E402
+from lapsewise.files.inputs import load_orders_and_mailings  # noqa: E402
+from lapsewise.files.writing import dumps_stable, write_atomic, write_csv, write_text_atomic  # noqa: E402
+from lapsewise.model import fitted as model_module  # noqa: E402
+from lapsewise.model import posterior as posterior_module
+from lapsewise.model.process import Process  # noqa: E402
 
 POLICY = Path(__file__).resolve().parents[2] / "policies" / "full-catalog.toml"
 BUDGET = 200_000.0
@@ -123,43 +133,46 @@ def run_mail_list_stages(meter: Meter, paths: dict[str, Path], meta: dict, refit
     del orders, mailings
     out["fit"] = fitted_model(meter, panel, paths["orders"].parent, meta, refit)
     out["model_path"] = paths["orders"].parent / "model.json"
-    model, policy = meter.run("read model and policy", lambda: (model_module.load_model(out["model_path"]), policy_module.load_policy(POLICY)))
+    model, policy = meter.run("read model and policy", lambda: (model_module.load_model(out["model_path"]), policy_file.load_policy(POLICY)))
 
-    histories = meter.run("compress", panel_module.compress, panel)
-    beliefs = policy_module.Beliefs.from_fit(model.churn, policy.economics.unmailed_response)
-    meter.run("posterior", churn.posterior, beliefs.churn_fit(), histories)
+    histories = meter.run("compress", histories_module.compress, panel)
+    process = program_module.decision_process(model.churn, policy.economics.unmailed_response)
+    meter.run("posterior", posterior_module.posterior, process, histories)
     out["histories"] = histories.size
     del histories
 
     with contextlib.ExitStack() as stack:
         parts = {
-            name: stack.enter_context(CountedCalls(plan_module, name, keep_arguments=name in ("solve", "hold_value")))
-            for name in ("compress", "posterior", "summarize", "solve", "hold_value", "mail_value_with")
+            name: stack.enter_context(CountedCalls(module, name, keep_arguments=name in ("solve", "hold_now_value")))
+            for module, name in (
+                (pipeline, "compress"), (pipeline, "posterior"), (pipeline, "summarize"),
+                (values_module, "solve"), (values_module, "hold_now_value"), (values_module, "version_mail_value"),
+            )
         }
-        values = meter.run("customer values", plan_module.customer_values, model, panel, policy)
+        values = meter.run("customer values", pipeline.value_customers, model, panel, policy)
     meter.stages[-1].note = "inside (the bands' calls run two at a time, so their seconds add up to more than they took): " + ", ".join(
         f"{name} {counter.seconds:.2f} s" + (f" ({counter.calls} calls)" if counter.calls != 1 else "") for name, counter in parts.items()
     )
     solves = parts["solve"]
     out["solve_calls"] = [(kwargs, seconds) for (_, kwargs), seconds in zip(solves.arguments, solves.durations)]
-    out["program_states"] = sum(len(args[1]) for args, _ in parts["hold_value"].arguments)
+    out["program_states"] = sum(len(args[1]) for args, _ in parts["hold_now_value"].arguments)
     slowest = int(np.argmax(solves.durations))
     args, kwargs = solves.arguments[slowest]
-    meter.run("policy.solve (one spend band)", policy_module.solve, *args, note=f"the slowest band's call again: {_size(kwargs)}", **kwargs)
+    meter.run("program.solve (one spend band)", program_module.solve, *args, note=f"the slowest band's call again: {_size(kwargs)}", **kwargs)
     out["mail_list_size"] = kwargs
 
     plans = {}
     for label, budget in (("plan (no budget)", None), (f"plan (budget {BUDGET:,.0f})", BUDGET)):
         with CountedCalls(plan_module, "solve_plan") as solve_plan:
-            plans[budget] = meter.run(label, plan_module.make_plan, values, policy, budget)
+            plans[budget] = meter.run(label, pipeline.plan, values, policy, budget)
         meter.stages[-1].note = (
             f"{solve_plan.calls} solve_plan calls ({solve_plan.calls - 1} shadow-price re-solve), {solve_plan.seconds:.2f} s in them; "
             f"status {plans[budget].solution.status}, spent {plans[budget].solution.spent:,.0f}"
         )
     out["segments"] = len(plans[None].segments)
 
-    with CountedCalls(plan_module, "mail_list") as assembly, CountedCalls(plan_module, "neutralise_formulas") as neutralise:
-        rows = meter.run("mail list assembly", lambda: plan_module.neutralise_formulas(plan_module.mail_list(values, plans[None].assignment)))
+    with CountedCalls(pipeline, "mail_list") as assembly, CountedCalls(pipeline, "neutralise_formulas") as neutralise:
+        rows = meter.run("mail list assembly", pipeline.mail_list_rows, values, plans[None])
     meter.stages[-1].note = f"mail_list {assembly.seconds:.2f} s, neutralise_formulas {neutralise.seconds:.2f} s"
     out["decisions"] = rows["decision"].value_counts().to_dict()
     csv = out_folder / "mail-list.csv"
@@ -177,15 +190,15 @@ def _size(kwargs: dict) -> str:
 
 
 def run_stop_rule(meter: Meter, mail_list_size: dict, model, policy) -> list[Stage]:
-    """policy.solve at two sizes for rho = 0 and 0.3, then build_stop_table for the policy; returns the solve stages."""
+    """program.solve at two sizes for rho = 0 and 0.3, then the stop table for the policy; returns the solve stages."""
     solves = []
     for rho in (0.0, 0.3):
-        beliefs = policy_module.Beliefs(1.1, 2.4, 0.7, 4.5, rho)
+        process = Process(1.1, 2.4, 0.7, 4.5, rho)
         for where, size in (("stop-table size", STOP_TABLE_SIZE), ("mail-list size", mail_list_size)):
-            meter.run(f"solve rho={rho:g}, {where}", policy_module.solve, beliefs, MARGIN, PIECE_COST, DISCOUNT, HORIZON, note=_size(size), **size)
+            meter.run(f"solve rho={rho:g}, {where}", program_module.solve, process, MARGIN, PIECE_COST, DISCOUNT, HORIZON, note=_size(size), **size)
             solves.append(meter.stages[-1])
-    with CountedCalls(policy_module, "solve") as inside:
-        meter.run("build_stop_table (full catalog)", policy_module.build_stop_table, model, policy.economics, policy.segments.spend_bands)
+    with CountedCalls(stop_table_module, "solve") as inside:
+        meter.run("stop table (full catalog)", pipeline.stop_table, model, policy)
     meter.stages[-1].note = f"{inside.calls} solve calls, {inside.seconds:.2f} s in them; horizon {policy.economics.horizon_quarters}, rho {model.churn.rho}"
     return solves
 
@@ -193,7 +206,7 @@ def run_stop_rule(meter: Meter, mail_list_size: dict, model, policy) -> list[Sta
 # ---------------------------------------------------------------- the plan integer program at 200 x 3
 
 
-def synthetic_values(seed: int) -> tuple[plan_module.CustomerValues, policy_module.Policy, float]:
+def synthetic_values(seed: int) -> tuple[values_module.CustomerValues, policy_file.Policy, float]:
     """Customer values for 200 segments of 1,000-10,000 customers and three versions, and a budget of about half of
     what mailing everyone worth mailing (with their best version) would cost."""
     rng = np.random.default_rng(seed)
@@ -208,7 +221,7 @@ def synthetic_values(seed: int) -> tuple[plan_module.CustomerValues, policy_modu
     best = values.argmax(axis=1)
     worth = values[np.arange(customers), best] > 0
     budget = round(0.5 * float(piece_cost[best][worth].sum()), -3)
-    customer_values = plan_module.CustomerValues(
+    customer_values = values_module.CustomerValues(
         customer_ids=np.arange(customers).astype(str),
         segment=np.repeat(names, sizes),
         p_alive=np.full(customers, 0.5),
@@ -218,10 +231,10 @@ def synthetic_values(seed: int) -> tuple[plan_module.CustomerValues, policy_modu
         versions=tuple(v[0] for v in VERSIONS),
         responses=response,
     )
-    policy = policy_module.Policy(
-        economics=policy_module.Economics(gross_margin=0.45, order_cost=4.0, piece_cost=1.2, annual_discount_rate=0.1, horizon_quarters=HORIZON),
-        versions=tuple(policy_module.Version(*v) for v in VERSIONS),
-        segments=policy_module.Segments(),
+    policy = policy_file.Policy(
+        economics=policy_file.Economics(gross_margin=0.45, order_cost=4.0, piece_cost=1.2, annual_discount_rate=0.1, horizon_quarters=HORIZON),
+        versions=tuple(policy_file.Version(*v) for v in VERSIONS),
+        segments=policy_file.Segments(),
         source="synthetic plan",
     )
     return customer_values, policy, budget
@@ -247,7 +260,7 @@ def run_plan_program(meter: Meter) -> dict:
     meter.stages[-1].note = f"status {status}" + (f", CBC {solution.solve_seconds:.2f} s, spent {solution.spent:,.0f}" if solved else "")
     solve_stage = meter.stages[-1]
     with CountedCalls(plan_module, "solve_plan") as solves:
-        result = meter.run(f"plan {PLAN_SEGMENTS}x{len(VERSIONS)}: make_plan", _attempt, plan_module.make_plan, values, policy, budget)
+        result = meter.run(f"plan {PLAN_SEGMENTS}x{len(VERSIONS)}: make_plan", _attempt, pipeline.plan, values, policy, budget)
     meter.stages[-1].note = f"{solves.calls} solve_plan calls ({max(solves.calls - 1, 0)} shadow-price re-solve), {solves.seconds:.2f} s in them" + (
         "" if isinstance(result, plan_module.Plan) else f"; {result}"
     )

@@ -10,16 +10,10 @@ import numpy as np
 from numpy.testing import assert_allclose
 from scipy import special
 
-from lapsewise.churn import (
-    ChurnFit,
-    dert,
-    expand,
-    expected_purchases,
-    fit_churn,
-    history_log_likelihood,
-    mailed_silent_histories,
-    posterior,
-)
+from lapsewise.data.histories import mailed_silent_histories
+from lapsewise.model.churn import expand, fit_churn, history_log_likelihood
+from lapsewise.model.posterior import dert, expected_orders, posterior
+from lapsewise.model.process import Process
 
 # The 22 (x, t_x, donors) patterns with n = 6 -- from memory; the published
 # estimates and log-likelihood below are reproduced by fitting them, which confirms them.
@@ -66,12 +60,12 @@ def _published_likelihood(a, b, g, d, x, t_x, n):
     return value
 
 
-FITTED = ChurnFit(alpha=1.204, beta=0.750, gamma=0.657, delta=2.783, rho=None)
+FITTED = Process(alpha=1.204, beta=0.750, gamma=0.657, delta=2.783, rho=None)
 
 
 def test_likelihood_matches_published_closed_form():
     hist = donation_histories()
-    ours = history_log_likelihood(expand(hist), (FITTED.alpha, FITTED.beta, FITTED.gamma, FITTED.delta, None))
+    ours = history_log_likelihood(expand(hist), FITTED)
     theirs = [np.log(_published_likelihood(1.204, 0.750, 0.657, 2.783, x, t, n)) for x, t, n in zip(hist.x, hist.t_x, hist.n)]
     assert_allclose(ours, theirs, rtol=1e-12)
 
@@ -81,7 +75,7 @@ def test_p_alive_and_conditional_expectation_match_published_formulas():
     hist = donation_histories()
     post = posterior(FITTED, hist)
     horizon = 5
-    expected = expected_purchases(FITTED, post, horizon)
+    expected = expected_orders(FITTED, post, horizon)
     for h in range(hist.size):
         x, t, n = int(hist.x[h]), int(hist.t_x[h]), int(hist.n[h])
         likelihood = _published_likelihood(a, b, g, d, x, t, n)

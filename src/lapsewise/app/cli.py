@@ -1,0 +1,378 @@
+"""The command line: parse the options, call the pipeline, render the result.
+
+A command reads its options, calls :mod:`lapsewise.app.pipeline` and hands the
+result to :mod:`lapsewise.app.render` (or prints its JSON); it computes nothing itself.
+"""
+
+from __future__ import annotations
+
+import functools
+import inspect
+import sys
+import typing
+from pathlib import Path
+from typing import Optional
+
+import typer
+from rich.console import Console
+
+from lapsewise.app import pipeline, render
+from lapsewise.budget.mail_list import decision_counts
+from lapsewise.errors import InputError
+from lapsewise.files.writing import (
+    check_writable,
+    dumps_stable,
+    write_atomic,
+    write_csv,
+    write_text_atomic,
+)
+
+app = typer.Typer(
+    add_completion=False,
+    no_args_is_help=True,
+    help="lapsewise: when to stop mailing lapsed customers, and how to spread a mail budget.",
+    pretty_exceptions_enable=False,
+)
+
+MailingsOption = typer.Option(None, "--mailings", help="Mailings file (CSV or Parquet): customer_id, mail_date[, version].")
+AsOfOption = typer.Option(None, "--as-of", help="Last day to use (YYYY-MM-DD); default: end of the last complete quarter in the orders.")
+FiscalOption = typer.Option(1, "--fiscal-year-start", help="Month (1-12) in which the first quarter of the year starts.")
+
+
+def _console(json_output: bool = False) -> Console:
+    return Console(no_color=json_output, highlight=False, soft_wrap=False)
+
+
+_ECONOMICS_OPTIONS = (
+    ("gross_margin", float, "share of order value left after cost of goods"),
+    ("order_cost", float, "pick, pack and payment cost per order"),
+    ("piece_cost", float, "print and postage per piece"),
+    ("annual_discount_rate", float, "annual discount rate"),
+    ("horizon_quarters", int, "quarters each decision looks ahead"),
+    ("order_value", float, "a fixed value per order instead of the spend model"),
+    ("unmailed_response", float, "rho, the share of response left without a piece"),
+)
+
+
+def option_group(group: str, options):
+    """Give a command one option per entry of ``options`` ((name, annotation, typer option) triples);
+    the command receives their values together as the dict ``group``. One definition, many commands."""
+
+    def decorate(command):
+        signature = inspect.signature(command)
+        kept = [p for name, p in signature.parameters.items() if name != group]
+        added = [inspect.Parameter(name, inspect.Parameter.KEYWORD_ONLY, default=option, annotation=kind) for name, kind, option in options]
+
+        @functools.wraps(command)
+        def wrapper(*args, **kwargs):
+            values = {name: kwargs.pop(name) for name, _, _ in options}
+            return command(*args, **{group: values}, **kwargs)
+
+        hints = typing.get_type_hints(command)
+        hints.pop(group, None)
+        hints.update({name: kind for name, kind, _ in options})
+        wrapper.__annotations__ = hints
+        wrapper.__signature__ = signature.replace(parameters=kept + added)
+        return wrapper
+
+    return decorate
+
+
+economics_overrides = option_group(
+    "overrides",
+    [
+        (name, Optional[kind], typer.Option(None, f"--{name.replace('_', '-')}", help=f"Override the policy economics key {name}: {text}."))
+        for name, kind, text in _ECONOMICS_OPTIONS
+    ],
+)
+column_names = option_group(
+    "columns",
+    [
+        ("id_column", str, typer.Option("customer_id", "--id-column", help="Name of the customer id column in every input file.")),
+        ("date_column", str, typer.Option("order_date", "--date-column", help="Name of the order date column in the orders file.")),
+        ("amount_column", str, typer.Option("amount", "--amount-column", help="Name of the order amount column in the orders file.")),
+    ],
+)
+
+
+@app.command()
+@column_names
+def summary(
+    orders: Path = typer.Argument(..., help="Orders file (CSV or Parquet): customer_id, order_date, amount."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = AsOfOption,
+    fiscal_year_start: int = FiscalOption,
+    columns: dict | None = None,
+) -> None:
+    """Show the customer base by repeat purchases and silent quarters. Writes nothing."""
+    from lapsewise.data.summary import describe_base
+
+    panel = pipeline.read_panel(orders, mailings, as_of, fiscal_year_start, columns)
+    console = _console()
+    render.print_panel_summary(console, panel, describe_base(panel))
+    render.print_caution(console)
+
+
+@app.command()
+def demo(
+    folder: Path = typer.Option(Path("lapsewise-demo"), "--dir", help="Folder to write the demo files into."),
+    customers: int = typer.Option(20_000, "--customers", min=100, help="Number of customers to generate."),
+    quarters: int = typer.Option(24, "--quarters", min=4, max=200, help="Quarters of history to generate."),
+    seed: int = typer.Option(7, "--seed", help="Seed of every random step."),
+    force: bool = typer.Option(False, "--force", help="Overwrite demo files already in the folder."),
+) -> None:
+    """Generate the Mail-Order Garden Seeds scenario and run every step on it."""
+    from lapsewise.app.demo import run_demo
+
+    run_demo(_console(), folder, customers, quarters, seed, force)
+
+
+OrdersArgument = typer.Argument(..., help="Orders file (CSV or Parquet): customer_id, order_date, amount.")
+ForceOption = typer.Option(False, "--force", help="Overwrite the output file if it exists.")
+JsonOption = typer.Option(False, "--json", help="Print machine-readable JSON instead of tables.")
+
+
+@app.command()
+@column_names
+def fit(
+    orders: Path = OrdersArgument,
+    out: Path = typer.Option(..., "--out", help="Model file to write (JSON)."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = AsOfOption,
+    fiscal_year_start: int = FiscalOption,
+    columns: dict | None = None,
+    force: bool = ForceOption,
+) -> None:
+    """Fit the hidden-churn and order-value models and write the model file."""
+    check_writable(out, force)
+    console = _console()
+    with render.progress(console, 2) as step:
+        with step("Reading the files and building the quarterly panel"):
+            panel = pipeline.read_panel(orders, mailings, as_of, fiscal_year_start, columns)
+        with step(f"Fitting the models on {panel.customers:,} customers"):
+            fitted = pipeline.fit(panel)
+    model = fitted.model
+    write_text_atomic(out, dumps_stable(model.to_dict()), force)
+    if not panel.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_model(console, model, fitted.curves)
+    console.print(f"Model written to {out}.")
+    render.print_caution(console)
+
+
+@app.command()
+@column_names
+def score(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    orders: Path = OrdersArgument,
+    out: Path = typer.Option(..., "--out", help="Scores file to write (CSV)."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = typer.Option(None, "--as-of", help="Last day to use (YYYY-MM-DD); default: the model's as-of date."),
+    horizon: int = typer.Option(4, "--horizon", min=1, max=400, help="Quarters ahead for expected purchases."),
+    annual_discount_rate: float = typer.Option(0.10, "--annual-discount-rate", min=0.0, max=10.0, help="Annual rate for DERT."),
+    columns: dict | None = None,
+    force: bool = ForceOption,
+) -> None:
+    """Write per-customer P(alive), P(order next quarter), expected orders, DERT and expected order value."""
+    from lapsewise.model.fitted import load_model
+    from lapsewise.model.scores import score_customers, score_totals
+
+    check_writable(out, force)
+    model = load_model(model_file)
+    panel = pipeline.read_panel(orders, mailings, as_of or model.as_of, model.fiscal_year_start, columns)
+    scores = score_customers(model, panel, horizon, annual_discount_rate)
+    write_atomic(out, lambda p: write_csv(p, scores), force)
+    console = _console()
+    if not panel.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_scores(console, score_totals(scores), horizon, out)
+    render.print_caution(console)
+
+
+@app.command()
+@column_names
+def backtest(
+    orders: Path = OrdersArgument,
+    holdout_quarters: int = typer.Option(..., "--holdout-quarters", help="Quarters at the end to hold out and predict."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = AsOfOption,
+    fiscal_year_start: int = FiscalOption,
+    columns: dict | None = None,
+    json_output: bool = JsonOption,
+) -> None:
+    """Fit on all but the last quarters and compare predicted with actual repeat purchases."""
+    from lapsewise.evaluate.backtest import run_backtest
+
+    console = _console(json_output)
+    with render.progress(console, 2, not json_output) as step:
+        with step("Reading the files and building the quarterly panel"):
+            panel = pipeline.read_panel(orders, mailings, as_of, fiscal_year_start, columns)
+        with step("Fitting on the calibration quarters and predicting the holdout"):
+            result = run_backtest(panel, holdout_quarters)
+    if json_output:
+        data = result.to_dict()
+        data["mailing_history"] = panel.mailing_history
+        typer.echo(dumps_stable(data), nl=False)
+        return
+    if not panel.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_backtest(console, result)
+    render.print_caution(console)
+
+
+PolicyOption = typer.Option(..., "--policy", help="Policy file (TOML); see policies/.")
+
+
+@app.command("stop-table")
+@economics_overrides
+def stop_table(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    policy_file: Path = PolicyOption,
+    json_output: bool = JsonOption,
+    overrides: dict | None = None,
+) -> None:
+    """When to stop mailing a silent customer: the optimal stop point beside the breakeven rule's."""
+    from lapsewise.model.fitted import load_model
+
+    model = load_model(model_file)
+    policy = pipeline.read_policy(policy_file, overrides)
+    console = _console(json_output)
+    with render.progress(console, 1, not json_output) as step:
+        with step("Solving the stop-rule program"):
+            table = pipeline.stop_table(model, policy)
+    if json_output:
+        typer.echo(dumps_stable(render.stop_table_json(table, model)), nl=False)
+        return
+    if not model.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_stop_table(console, table, model)
+    render.print_caution(console)
+
+
+@app.command()
+@economics_overrides
+def simulate(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    policy_file: Path = PolicyOption,
+    customers: int = typer.Option(10_000, "--customers", min=100, max=5_000_000, help="New customers to simulate."),
+    quarters: Optional[int] = typer.Option(None, "--quarters", min=1, max=200, help="Quarters to simulate (default: the horizon)."),
+    seed: int = typer.Option(1, "--seed", help="Seed of every random draw."),
+    json_output: bool = JsonOption,
+    overrides: dict | None = None,
+) -> None:
+    """Monte Carlo of the optimal policy against stop-after-k, breakeven and always-mail rules."""
+    from lapsewise.model.fitted import load_model
+
+    model = load_model(model_file)
+    policy = pipeline.read_policy(policy_file, overrides)
+    economics = policy.economics
+    console = _console(json_output)
+    with render.progress(console, 1, not json_output) as step:
+        with step(f"Simulating {customers:,} customers under every policy"):
+            result = pipeline.simulation(model, policy, customers, quarters, seed)
+    if json_output:
+        typer.echo(dumps_stable({**result.to_dict(), "mailing_history": model.mailing_history}), nl=False)
+        return
+    if not model.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_simulation(console, result, economics)
+    render.print_caution(console)
+
+
+SuppressOption = typer.Option(None, "--suppress", help="Suppression list (customer_id column): never mailed.")
+AttributesOption = typer.Option(None, "--attributes", help="Customer attributes file to cross segments with (needs --segment-column).")
+SegmentColumnOption = typer.Option(None, "--segment-column", help="Column of the attributes file to cross segments with.")
+
+
+@app.command()
+@column_names
+@economics_overrides
+def plan(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    orders: Path = OrdersArgument,
+    policy_file: Path = PolicyOption,
+    budget: float = typer.Option(..., "--budget", min=0.0, help="Mail budget for this quarter, currency units (pieces and setup)."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = AsOfOption,
+    suppress: Optional[Path] = SuppressOption,
+    attributes: Optional[Path] = AttributesOption,
+    segment_column: Optional[str] = SegmentColumnOption,
+    frontier: bool = typer.Option(False, "--frontier", help="Also show expected value over a range of budgets."),
+    columns: dict | None = None,
+    json_output: bool = JsonOption,
+    overrides: dict | None = None,
+) -> None:
+    """Spread a fixed mail budget across segments and versions (an integer program)."""
+    console = _console(json_output)
+    with render.progress(console, 2, not json_output) as step:
+        with step("Reading the files and valuing a mailing to every customer"):
+            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
+        with step("Solving the budget integer program"):
+            result = pipeline.plan(inputs.values, inputs.policy, budget, frontier_points=10 if frontier else 0)
+    panel = inputs.panel
+    if json_output:
+        typer.echo(dumps_stable({**result.to_dict(), "mailing_history": panel.mailing_history}), nl=False)
+        return
+    if not panel.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_plan(console, result, panel, inputs.values)
+    render.print_caution(console)
+
+
+@app.command("mail-list")
+@column_names
+@economics_overrides
+def mail_list_command(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    orders: Path = OrdersArgument,
+    policy_file: Path = PolicyOption,
+    out: Path = typer.Option(..., "--out", help="Mail list to write (CSV)."),
+    budget: Optional[float] = typer.Option(None, "--budget", min=0.0, help="Mail budget; without it everyone worth mailing is mailed."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = AsOfOption,
+    suppress: Optional[Path] = SuppressOption,
+    attributes: Optional[Path] = AttributesOption,
+    segment_column: Optional[str] = SegmentColumnOption,
+    columns: dict | None = None,
+    force: bool = ForceOption,
+    overrides: dict | None = None,
+) -> None:
+    """Write this quarter's mail list: one row per customer with the decision."""
+    check_writable(out, force)
+    console = _console()
+    with render.progress(console, 3) as step:
+        with step("Reading the files and valuing a mailing to every customer"):
+            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
+        with step("Solving the budget integer program"):
+            result = pipeline.plan(inputs.values, inputs.policy, budget)
+        with step("Writing the mail list"):
+            rows = pipeline.mail_list_rows(inputs.values, result)
+            write_atomic(out, lambda p: write_csv(p, rows), force)
+    if not inputs.panel.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_mail_list(console, decision_counts(rows), result, out)
+    render.print_caution(console)
+
+
+def main() -> None:
+    """Entry point: run the app, turning input problems into one line and exit code 2."""
+    try:
+        app(standalone_mode=False)
+    except InputError as exc:
+        # One line, whatever the message quotes from the file: line breaks and other control characters are escaped.
+        message = "".join(c if c.isprintable() else repr(c)[1:-1] for c in str(exc))
+        Console(stderr=True, highlight=False, soft_wrap=True).print(f"error: {message}", markup=False, emoji=False)
+        sys.exit(2)
+    except typer.Exit as exc:
+        sys.exit(exc.exit_code)
+    except typer.Abort:
+        Console(stderr=True).print("aborted", markup=False)
+        sys.exit(1)
+    except KeyboardInterrupt:
+        sys.exit(130)
+    except Exception as exc:
+        # Usage errors from the option parser know how to show themselves (exit code 2).
+        if hasattr(exc, "show") and hasattr(exc, "exit_code"):
+            exc.show()
+            sys.exit(exc.exit_code)
+        raise

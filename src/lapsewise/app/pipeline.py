@@ -1,0 +1,188 @@
+"""The pipeline: files -> panel -> model -> decisions -> plan -> mail list, one call per step.
+
+The command line and the demo both call these functions, so a step is computed
+the same way wherever it is shown. Which stages run side by side is decided
+here and nowhere else: the stop-rule programs of the spend bands, the posterior
+beside them, the summary beside the compression, and the plan's two solves (CBC
+runs as its own process). Every stage function is pure; this module only wires
+them together.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from lapsewise.budget.integer_program import Plan, make_plan
+from lapsewise.budget.mail_list import mail_list
+from lapsewise.budget.values import (
+    CustomerValues,
+    band_program,
+    band_values,
+    customer_order_values,
+    customer_values,
+    valued_states,
+)
+from lapsewise.data.histories import compress
+from lapsewise.data.panel import Panel, panel_from_files
+from lapsewise.data.summary import CustomerSummary, summarize
+from lapsewise.decide.order_values import spend_bands, typical_order_value
+from lapsewise.decide.program import decision_process, workers
+from lapsewise.decide.stop_table import StopTable, build_stop_table
+from lapsewise.errors import InputError
+from lapsewise.evaluate.policies import Simulation, simulate_policies
+from lapsewise.files.inputs import ID_COLUMN, load_attributes, load_id_list
+from lapsewise.files.policy_file import Policy, load_policy
+from lapsewise.files.writing import neutralise_formulas
+from lapsewise.model.fitted import Model, fit_model, load_model
+from lapsewise.model.posterior import posterior
+from lapsewise.model.scores import lapse_curves
+
+
+def two_at_a_time(function: Callable, items) -> list:
+    """``[function(item) for item in items]``, two at a time on two threads (their numpy work releases the GIL)."""
+    with workers() as pool:
+        return list(pool.map(function, items))
+
+
+# ---------------------------------------------------------------- files to panel
+
+
+def read_panel(orders: str | Path, mailings: str | Path | None, as_of: str | None, fiscal_year_start: int, columns: dict | None = None) -> Panel:
+    """Load the orders (and mailings) and build the quarterly panel."""
+    return panel_from_files(str(orders), str(mailings) if mailings else None, as_of, fiscal_year_start, **(columns or {}))
+
+
+def read_policy(path: str | Path, overrides: dict | None = None) -> Policy:
+    return load_policy(path, overrides)
+
+
+def suppression_flags(panel: Panel, path: str | Path | None, id_column: str = ID_COLUMN) -> np.ndarray | None:
+    """Which of the panel's customers are on the suppression list (None without a list)."""
+    if not path:
+        return None
+    ids = load_id_list(path, id_column).frame[ID_COLUMN].to_numpy()
+    return np.isin(panel.customer_ids, ids)
+
+
+def attribute_values(panel: Panel, path: str | Path | None, column: str | None, id_column: str = ID_COLUMN) -> np.ndarray | None:
+    """Each customer's value of an attributes file's column ("unknown" when missing); None without a file."""
+    if not (path or column):
+        return None
+    if not (path and column):
+        raise InputError("--attributes and --segment-column go together; give both or neither")
+    table = load_attributes(path, column, id_column).frame.set_index(ID_COLUMN)[column]
+    return table.reindex(panel.customer_ids).fillna("unknown").to_numpy(dtype=object)
+
+
+# ---------------------------------------------------------------- the model
+
+
+@dataclass(frozen=True)
+class Fitted:
+    """A fitted model with the per-customer summary it was fitted with and its lapse curves."""
+
+    model: Model
+    summary: CustomerSummary
+    curves: pd.DataFrame
+
+
+def fit(panel: Panel) -> Fitted:
+    """Fit both models on the panel and compute the lapse curves of typical customers."""
+    summary = summarize(panel)
+    model = fit_model(panel, summary)
+    return Fitted(model, summary, lapse_curves(model, summary))
+
+
+# ---------------------------------------------------------------- decisions
+
+
+def stop_table(model: Model, policy: Policy) -> StopTable:
+    """The stop table, the spend bands' programs two at a time."""
+    return build_stop_table(model.churn, model.spend, policy.economics, policy.segments.spend_bands, each=two_at_a_time)
+
+
+def simulation(model: Model, policy: Policy, customers: int, quarters: int | None, seed: int) -> Simulation:
+    """The optimal policy against the rules of thumb on new customers drawn from the model."""
+    economics = policy.economics
+    process = decision_process(model.churn, economics.unmailed_response)
+    order_value = typical_order_value(model.spend, economics)
+    return simulate_policies(process, economics, order_value, customers, quarters or economics.horizon_quarters, seed)
+
+
+# ---------------------------------------------------------------- values, plan and mail list
+
+
+def value_customers(model: Model, panel: Panel, policy: Policy, suppressed: np.ndarray | None = None, attribute: np.ndarray | None = None) -> CustomerValues:
+    """Every customer's value of mailing this quarter, per version.
+
+    On two workers: the summary beside the compression, then the posterior beside
+    the spend bands' programs (a band's program needs only the band's states; its
+    values wait for the posterior).
+    """
+    economics = policy.economics
+    process = decision_process(model.churn, economics.unmailed_response)
+    with workers() as pool:
+        summary_job = pool.submit(summarize, panel)
+        histories = compress(panel)
+        posterior_job = pool.submit(posterior, process, histories)
+        summary = summary_job.result()
+        bands = spend_bands(model.spend, economics, policy.segments.spend_bands)
+        states = valued_states(histories, bands, customer_order_values(model.spend, policy, summary))
+        values = np.empty((len(states.history), len(policy.versions)))
+
+        def value_band(index: int) -> None:
+            members = states.in_band(index)
+            if not members.any():
+                return
+            program = band_program(process, policy, bands[index].order_value, states, members)
+            alive = posterior_job.result().alive_now[states.history[members]]
+            values[members] = band_values(program, policy, states, members, alive)
+
+        for job in [pool.submit(value_band, index) for index in range(len(bands))]:
+            job.result()
+        post = posterior_job.result()
+    return customer_values(panel.customer_ids, summary, policy, histories, post, states, values, suppressed, attribute)
+
+
+def plan(values: CustomerValues, policy: Policy, budget: float | None, frontier_points: int = 0) -> Plan:
+    """The budget plan, its shadow-price re-solve beside it."""
+    return make_plan(values, policy, budget, frontier_points, each=two_at_a_time)
+
+
+def mail_list_rows(values: CustomerValues, chosen: Plan) -> pd.DataFrame:
+    """The mail list as it is written: one row per customer, formula-like text neutralised."""
+    return neutralise_formulas(mail_list(values, chosen.assignment))
+
+
+@dataclass(frozen=True)
+class PlanInputs:
+    model: Model
+    policy: Policy
+    panel: Panel
+    values: CustomerValues
+
+
+def plan_inputs(
+    model_file: str | Path,
+    orders: str | Path,
+    policy_file: str | Path,
+    mailings: str | Path | None,
+    as_of: str | None,
+    suppress: str | Path | None,
+    attributes: str | Path | None,
+    segment_column: str | None,
+    columns: dict,
+    overrides: dict | None,
+) -> PlanInputs:
+    """Load everything a plan needs and value every customer (the stages, in order)."""
+    model = load_model(model_file)
+    policy = read_policy(policy_file, overrides)
+    panel = read_panel(orders, mailings, as_of, model.fiscal_year_start, columns)
+    suppressed = suppression_flags(panel, suppress, columns["id_column"])
+    attribute = attribute_values(panel, attributes, segment_column, columns["id_column"])
+    return PlanInputs(model, policy, panel, value_customers(model, panel, policy, suppressed, attribute))

@@ -1,0 +1,431 @@
+"""Human output: rich tables, each followed by a one-line reading of what it means.
+
+Rendering reads results (the stages' result objects) and formats them; every
+number it prints was computed by a stage.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from contextlib import contextmanager, nullcontext
+
+from rich import box
+from rich.console import Console
+from rich.progress import (
+    BarColumn,
+    Progress,
+    SpinnerColumn,
+    TextColumn,
+    TimeElapsedColumn,
+)
+from rich.table import Table
+
+from lapsewise.data.panel import Panel
+from lapsewise.data.quarters import quarter_label, quarter_start
+from lapsewise.data.summary import BaseDescription
+
+CAUTION = (
+    "Customer files are personal data: keep them on this machine, honour opt-outs and suppression lists, "
+    "and follow local direct-mail and data-protection law. The figures are estimates, not guarantees."
+)
+ALL_MAILED_NOTE = "No mailings file: every quarter after a customer's first order is counted as mailed."
+
+
+def compact_table() -> Table:
+    """A table without borders, for wide grids of numbers that must fit 80 columns."""
+    return Table(box=box.SIMPLE_HEAD, padding=(0, 0, 0, 1), show_edge=False, pad_edge=False)
+
+
+def money(value: float) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "-"
+    return f"{value:,.2f}"
+
+
+def print_counts(console: Console, counts: dict[str, int]) -> None:
+    if not counts:
+        console.print("Nothing was left out or repaired.")
+        return
+    table = Table(title="Left out or repaired", title_justify="left")
+    table.add_column("What")
+    table.add_column("Count", justify="right")
+    for what, count in counts.items():
+        table.add_row(what, f"{count:,}")
+    console.print(table)
+
+
+def print_panel_summary(console: Console, panel: Panel, base: BaseDescription) -> None:
+    """The customer base by frequency and silent quarters, the data range and what was repaired."""
+    cells = base.cells
+    first = quarter_start(base.first_quarter, panel.fiscal_year_start)
+    console.print(
+        f"[bold]{panel.customers:,} customers[/bold], first purchases from the quarter starting {first}; "
+        f"as-of quarter {quarter_label(panel.end_quarter, panel.fiscal_year_start)}."
+    )
+    if not panel.mailing_history:
+        console.print(ALL_MAILED_NOTE)
+    console.print(
+        "Customers (count) and their mean order value (currency units) by repeat purchases (rows) "
+        "and silent quarters since the last purchase (columns):"
+    )
+    table = Table(box=box.SIMPLE_HEAD, show_edge=False)
+    table.add_column("Repeat", no_wrap=True)
+    silent_labels = list(dict.fromkeys(cells["silent_band"]))
+    for label in silent_labels:
+        table.add_column(f"{label} silent", justify="right", no_wrap=True)
+    for frequency, rows in cells.groupby("frequency_band", sort=False):
+        row = [str(frequency)]
+        for _, cell in rows.iterrows():
+            row.append(f"{cell.customers:,}\n{money(cell.mean_order_value)}" if cell.customers else "-")
+        table.add_row(*row, end_section=True)
+    console.print(table)
+    console.print(
+        f"{base.one_time_share:.0%} of customers have bought only once; "
+        f"{base.lapsed_share:.0%} have been silent for {base.lapsed_after} quarters or more, "
+        f"the ones a 'stop after {base.lapsed_after} silent quarters' rule would stop mailing."
+    )
+    print_counts(console, panel.counts)
+
+
+def print_caution(console: Console) -> None:
+    console.print(f"[dim]{CAUTION}[/dim]")
+
+
+def _estimate(value: float | None, error: float | None) -> tuple[str, str]:
+    if value is None:
+        return "not estimated", "-"
+    return f"{value:.4g}", "-" if error is None else f"{error:.3g}"
+
+
+def print_model(console: Console, model, curves) -> None:
+    """Parameters, fit quality, spend model and the lapse curves of a fitted model."""
+    churn = model.churn
+    table = Table(title="Hidden-churn model (BG/BB with mailing response)", title_justify="left")
+    for column in ("Parameter", "Estimate", "Std. error", "Meaning"):
+        table.add_column(column, justify="right" if column in ("Estimate", "Std. error") else "left")
+    mean_p, mean_theta = churn.process.mean_p, churn.process.mean_theta
+    meanings = {
+        "alpha": f"purchase probability p ~ Beta(alpha, beta); mean p = {mean_p:.3f} per mailed quarter",
+        "beta": "",
+        "gamma": f"churn probability theta ~ Beta(gamma, delta); mean theta = {mean_theta:.3f} per quarter",
+        "delta": "",
+        "rho": "share of the purchase probability left in an unmailed quarter",
+    }
+    for name, meaning in meanings.items():
+        value = getattr(churn, name)
+        estimate, error = _estimate(value, churn.std_errors.get(name))
+        table.add_row(name, estimate, error, meaning if name != "rho" or value is not None else "no mailings file: every quarter counted as mailed")
+    console.print(table)
+    console.print(
+        f"Log-likelihood {churn.log_likelihood:,.2f} over {model.customers:,} customers in {churn.histories:,} distinct histories; "
+        f"{'converged' if churn.converged else 'NOT converged'}."
+    )
+    if model.spend is not None:
+        spend = model.spend
+        table = Table(title="Order value (gamma-gamma)", title_justify="left")
+        for column in ("Parameter", "Estimate", "Std. error"):
+            table.add_column(column, justify="right" if column != "Parameter" else "left")
+        for name in ("p", "q", "gamma"):
+            estimate, error = _estimate(getattr(spend, name), spend.std_errors.get(name))
+            table.add_row(name, estimate, error)
+        console.print(table)
+        console.print(
+            f"Population mean order value {money(spend.population_mean)} (currency units) from {spend.customers:,} repeat customers; "
+            f"correlation between repeat purchases and mean order value {spend.frequency_value_correlation:+.2f} (the model assumes none)."
+        )
+    for warning in model.warnings:
+        console.print(f"[yellow]warning:[/yellow] {warning}")
+    print_lapse_curves(console, curves)
+
+
+def print_lapse_curves(console: Console, curves) -> None:
+    if curves.empty:
+        return
+    table = Table(
+        title="Lapse curve: P(alive) / P(order next quarter if mailed), in %, after k more mailed quarters without an order",
+        title_justify="left",
+    )
+    table.add_column("k", justify="right")
+    groups = list(curves.groupby("band", sort=False))
+    for band, rows in groups:
+        first = rows.iloc[0]
+        table.add_column(f"{band} repeat\n(x={first.x}, t_x={first.t_x})", justify="right")
+    for k in sorted(curves["k"].unique()):
+        cells = [str(k)]
+        for _, rows in groups:
+            row = rows[rows["k"] == k].iloc[0]
+            cells.append(f"{100 * row.p_alive:.0f} / {100 * row.p_buy:.1f}")
+        table.add_row(*cells)
+    console.print(table)
+    band, rows = groups[0]
+    last = rows.iloc[-1]
+    console.print(
+        f"A typical customer with {band} repeat purchases has a {100 * rows.iloc[0].p_buy:.1f}% chance of ordering if mailed now; "
+        f"after {int(last.k)} more mailed quarters without an order it is {100 * last.p_buy:.1f}%."
+    )
+
+
+def print_backtest(console: Console, result) -> None:
+    console.print(
+        f"Fitted on the data up to {result.calibration_as_of}; predicting the next {result.holdout_quarters} quarters "
+        f"for {result.customers:,} customers, given the mailings actually made."
+    )
+    gap = result.relative_difference
+    table = Table(title="Repeat purchases in the holdout quarters (count)", title_justify="left")
+    table.add_column("Actual", justify="right")
+    table.add_column("Predicted", justify="right")
+    table.add_column("Difference", justify="right")
+    table.add_row(f"{result.actual:,.0f}", f"{result.predicted:,.1f}", f"{gap:+.1%}")
+    console.print(table)
+    table = Table(title="Mean repeat purchases per customer in the holdout, by repeat purchases in calibration", title_justify="left")
+    for column in ("Repeat purchases", "Customers", "Actual mean", "Predicted mean"):
+        table.add_column(column, justify="right" if column != "Repeat purchases" else "left")
+    for row in result.by_frequency.itertuples():
+        table.add_row(str(row.frequency), f"{row.customers:,}", f"{row.actual_mean:.3f}", f"{row.predicted_mean:.3f}")
+    console.print(table)
+    table = Table(title="Quarter by quarter: repeat purchases of the whole calibration base (count)", title_justify="left")
+    for column in ("Quarter", "Mailed (%)", "Actual", "Predicted"):
+        table.add_column(column, justify="right" if column != "Quarter" else "left")
+    for row in result.by_quarter.itertuples():
+        table.add_row(row.quarter, f"{100 * row.mailed_share:.0f}", f"{row.actual:,}", f"{row.predicted:,.1f}")
+    console.print(table)
+    console.print(f"The model predicted {result.predicted:,.0f} repeat purchases against {result.actual:,.0f} actual ({gap:+.1%}).")
+
+
+def print_scores(console: Console, totals: dict, horizon: int, out) -> None:
+    """The scores at a glance (:func:`lapsewise.model.scores.score_totals`)."""
+    table = Table(title="Scores written", title_justify="left")
+    for column in ("Customers", "Mean P(alive) (%)", "Mean P(order next q) (%)", f"Expected orders, next {horizon} q", "Mean DERT (orders)"):
+        table.add_column(column, justify="right")
+    table.add_row(
+        f"{totals['customers']:,}",
+        f"{100 * totals['mean_p_alive']:.1f}",
+        f"{100 * totals['mean_p_buy']:.2f}",
+        f"{totals['expected_orders']:,.0f}",
+        f"{totals['mean_dert']:.3f}",
+    )
+    console.print(table)
+    console.print(f"{totals['likely_alive']:,} of {totals['customers']:,} customers are more likely alive than not; one row per customer is in {out}.")
+
+
+def print_truth_comparison(console: Console, comparison) -> None:
+    """The demo's fitted parameters beside the settings the scenario was drawn from
+    (:func:`lapsewise.evaluate.scenario.compare_with_truth`)."""
+    table = Table(title="Fitted against the scenario's true settings", title_justify="left")
+    for column in ("Parameter", "True", "Fitted", "Std. error", "Within 2 std. errors"):
+        table.add_column(column, justify="left" if column == "Parameter" else "right")
+    for row in comparison.itertuples():
+        fitted = "-" if row.fitted is None or row.fitted != row.fitted else f"{row.fitted:.4g}"
+        error = "-" if row.std_error is None or row.std_error != row.std_error else f"{row.std_error:.3g}"
+        table.add_row(row.parameter, f"{row.true:.4g}", fitted, error, "yes" if row.within_two_errors else "no")
+    console.print(table)
+    console.print(
+        f"{int(comparison.within_two_errors.sum())} of {len(comparison)} true settings lie within two standard errors of the fit; about 95% should. "
+        "Spend is fitted on net order values after the scenario's partial returns, so it sits a little below the truth."
+    )
+
+
+def _stop_text(stop_after: int, horizon: int) -> str:
+    return f"mailed all {horizon} q" if stop_after < 0 else f"after {stop_after}"
+
+
+def stop_table_rows_shown(table, horizon: int) -> list[tuple[int, int]]:
+    """The (x, t_x) rows printed: a spread of frequencies, each at the t_x a customer buying at the mean rate would have."""
+    mean_p = table.process.mean_p
+    rows = []
+    for x in (0, 1, 2, 3, 4, 6, 8, 12, 16):
+        if x > horizon:
+            break
+        t_x = 0 if x == 0 else min(horizon, max(x, round(x / mean_p)))
+        rows.append((x, t_x))
+    return rows
+
+
+def _percent(value: float) -> str:
+    return "<1" if value < 0.005 else f"{100 * value:.0f}"
+
+
+def print_stop_table(console: Console, table, model) -> None:
+    economics = table.economics
+    horizon = economics.horizon_quarters
+    shown = stop_table_rows_shown(table, horizon)
+    columns = list(range(min(8, horizon) + 1))
+    console.print(
+        f"Piece cost {money(economics.piece_cost)}, gross margin {economics.gross_margin:.0%}, order cost {money(economics.order_cost)}, "
+        f"{economics.annual_discount_rate:.0%} a year, each decision looking {horizon} quarters ahead; "
+        f"a held customer orders at {table.process.rho:.2f} times the mailed rate."
+    )
+    cells = table.cells.set_index(["spend_band", "frequency", "last_purchase_quarter", "silent_quarters"])
+    rows = table.rows.set_index(["spend_band", "frequency", "last_purchase_quarter"])
+    for band in table.bands:
+        margin = economics.margin(band.order_value)
+        console.print(
+            f"[bold]'{band.label}' spend[/bold] (order value {money(band.order_value)}, margin {money(margin)} per order): chance of an "
+            "order next quarter if mailed (%), by silent quarters since the last order; (brackets) = do not mail."
+        )
+        grid = compact_table()
+        grid.add_column("x, t_x", no_wrap=True)
+        for k in columns:
+            grid.add_column(str(k), justify="right")
+        for x, t_x in shown:
+            line = [f"{x}, {t_x}"]
+            for k in columns:
+                cell = cells.loc[(band.label, x, t_x, k)]
+                text = _percent(cell.p_buy)
+                line.append(text if cell["mail"] else f"[dim]({text})[/dim]")
+            grid.add_row(*line)
+        console.print(grid)
+        compare = Table(title=f"'{band.label}' spend: stop mailing a silent customer after ... silent quarters", title_justify="left")
+        for column in ("x, t_x", "Optimal", "Breakeven rule", "Optimal minus breakeven"):
+            compare.add_column(column, justify="left" if column.startswith("x") else "right")
+        for x, t_x in shown:
+            row = rows.loc[(band.label, x, t_x)]
+            optimal, breakeven = int(row.stop_after), int(row.breakeven_stop_after)
+            extra = "-" if optimal < 0 or breakeven < 0 else f"{optimal - breakeven:+d}"
+            compare.add_row(f"{x}, {t_x}", _stop_text(optimal, horizon), _stop_text(breakeven, horizon), extra)
+        console.print(compare)
+        one_time = rows.loc[(band.label, 0, 0)]
+        console.print(
+            f"Stop mailing one-time buyers in the '{band.label}' band {_stop_text(int(one_time.stop_after), horizon)} silent quarters; "
+            f"the breakeven rule would stop {_stop_text(int(one_time.breakeven_stop_after), horizon)}."
+        )
+    console.print(
+        "x = repeat purchases, t_x = quarter of the last one. Breakeven rule (common practice): mail while P(order next quarter) x margin "
+        "covers the piece cost. The optimal rule also counts the future an order buys and, when held customers still order, "
+        "only the orders the piece adds."
+    )
+
+
+def stop_table_json(table, model) -> dict:
+    economics = table.economics
+    return {
+        "economics": dataclasses.asdict(economics),
+        "unmailed_response_used": table.process.rho,
+        "mailing_history": model.mailing_history,
+        "spend_bands": [
+            {"label": b.label, "low": b.low, "high": None if math.isinf(b.high) else b.high, "order_value": b.order_value} for b in table.bands
+        ],
+        "rows": [
+            {
+                "spend_band": r.spend_band,
+                "order_value": float(r.order_value),
+                "frequency": int(r.frequency),
+                "last_purchase_quarter": int(r.last_purchase_quarter),
+                "stop_after": None if r.stop_after < 0 else int(r.stop_after),
+                "breakeven_stop_after": None if r.breakeven_stop_after < 0 else int(r.breakeven_stop_after),
+            }
+            for r in table.rows.itertuples()
+        ],
+    }
+
+
+def print_simulation(console: Console, result, economics) -> None:
+    console.print(
+        f"{result.customers:,} new customers over {result.quarters} quarters (seed {result.seed}), order value {money(result.order_value)}, "
+        f"margin {money(result.margin)} per order, piece cost {money(economics.piece_cost)}; every policy meets the same customers and random numbers."
+    )
+    console.print(
+        "Discounted profit per customer (currency units: mean, 5th, 50th and 95th percentile), pieces and orders per customer, "
+        "and the mean difference to the optimal policy with its standard error:"
+    )
+    table = compact_table()
+    for column in ("Policy", "Mean", "P5", "P50", "P95", "Pieces", "Orders", "vs opt.", "SE"):
+        table.add_column(column, justify="left" if column == "Policy" else "right", no_wrap=True)
+    for row in result.summary.itertuples():
+        table.add_row(
+            row.policy,
+            money(row.mean_profit),
+            money(row.profit_p5),
+            money(row.profit_p50),
+            money(row.profit_p95),
+            f"{row.pieces:.2f}",
+            f"{row.orders:.2f}",
+            "-" if row.policy == "optimal" else f"{row.difference_to_optimal:+.2f}",
+            "-" if row.policy == "optimal" else f"{row.difference_std_error:.2f}",
+        )
+    console.print(table)
+    optimal = result.summary.iloc[0]
+    runner = result.best_rule
+    if result.program_value is not None:
+        console.print(
+            f"The program values a new customer at {money(result.program_value)}; the simulation gives {money(optimal.mean_profit)} "
+            f"± {money(1.96 * optimal.profit_std_error)} (95%)."
+        )
+    console.print(
+        f"The optimal policy earns {money(optimal.mean_profit)} per customer; the best rule of thumb, '{runner.policy}', earns "
+        f"{money(runner.mean_profit)} ({runner.difference_to_optimal:+.2f} ± {1.96 * runner.difference_std_error:.2f})."
+    )
+
+
+def print_plan(console: Console, plan, panel, values) -> None:
+    solution = plan.solution
+    console.print(
+        f"As of {panel.as_of}: {panel.customers:,} customers, {values.suppressed_count:,} on the suppression list (never mailed). "
+        f"Budget {money(plan.budget)}; solver {solution.status} (relative gap tolerance {solution.gap_tolerance:g}) in {solution.solve_seconds:.2f} s."
+    )
+    table = compact_table()
+    for column in ("Segment", "Version", "Customers", "Mailed", "Cost", "Orders", "Value"):
+        table.add_column(column, justify="left" if column in ("Segment", "Version") else "right", no_wrap=True)
+    for row in plan.segments.itertuples():
+        table.add_row(row.segment, row.version, f"{row.customers:,}", f"{row.mailed:,}", f"{row.cost:,.0f}", f"{row.expected_orders:,.1f}", f"{row.expected_profit:,.0f}")
+    totals = plan.totals
+    table.add_row(
+        "Total", "", f"{totals['customers']:,}", f"{totals['mailed']:,}", f"{totals['cost']:,.0f}",
+        f"{totals['expected_orders']:,.1f}", f"{totals['expected_profit']:,.0f}", end_section=True,
+    )
+    console.print(
+        "The plan: customers mailed per segment, piece cost and expected value (currency units; value is net of piece "
+        "costs and counts the future an order buys), expected orders next quarter:"
+    )
+    console.print(table)
+    if plan.setup_total:
+        console.print(f"Setup costs of the versions used: {money(plan.setup_total)}.")
+    console.print(
+        f"Spend {money(solution.spent)} of {money(plan.budget)} for an expected {money(plan.expected_profit)} over what holding would earn; "
+        f"one more unit of budget is worth about {plan.shadow_price:.2f} (the budget's shadow price, by re-solving)."
+    )
+    if plan.frontier is not None:
+        frontier = compact_table()
+        frontier.add_column("Budget", justify="right")
+        frontier.add_column("Expected value", justify="right")
+        for row in plan.frontier.itertuples():
+            frontier.add_row(money(row.budget), money(row.expected_profit))
+        console.print("Budget against expected value (currency units):")
+        console.print(frontier)
+
+
+def print_mail_list(console: Console, counts: dict[str, int], plan, out) -> None:
+    """Customers per decision (:func:`lapsewise.budget.mail_list.decision_counts`) and where the list is."""
+    table = compact_table()
+    table.add_column("Decision")
+    table.add_column("Customers", justify="right")
+    for decision in ("mail", "over-budget", "stop", "suppressed"):
+        table.add_row(decision, f"{counts[decision]:,}")
+    console.print(table)
+    budget = "no budget limit" if plan.budget is None else f"a budget of {money(plan.budget)}"
+    console.print(
+        f"With {budget}, mail {counts['mail']:,} customers for {money(plan.solution.spent)}; "
+        f"the list, one row per customer, is in {out}. Cells that a spreadsheet would run as formulas start with a quote."
+    )
+
+
+@contextmanager
+def progress(console: Console, steps: int, enabled: bool = True):
+    """Yield ``step(description)``, a context manager per stage, shown as a progress bar on a terminal only.
+
+    In CI, in a pipe or with ``--json`` (``enabled`` False) nothing is drawn.
+    """
+    if not (enabled and console.is_terminal):
+        yield lambda description: nullcontext()
+        return
+    with Progress(SpinnerColumn(), TextColumn("{task.description}"), BarColumn(), TimeElapsedColumn(), console=console, transient=True) as bar:
+        task = bar.add_task("", total=steps)
+
+        @contextmanager
+        def step(description: str):
+            bar.update(task, description=description)
+            yield
+            bar.advance(task)
+
+        yield step

@@ -1,0 +1,50 @@
+"""This quarter's mail list: one row per customer with the version and the decision.
+
+Decisions: ``mail``; ``stop`` (the stop rule says no: no version is worth
+mailing); ``over-budget`` (worth mailing, but the budget ran out);
+``suppressed`` (on the suppression list: never mailed, whatever their value).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from lapsewise.budget.segments import categorical
+from lapsewise.budget.values import CustomerValues
+
+DECISIONS = ("mail", "stop", "over-budget", "suppressed")
+
+
+def mail_list(values: CustomerValues, assignment: np.ndarray) -> pd.DataFrame:
+    """One row per customer: customer_id, segment, version, p_alive, p_buy, value_of_mailing, decision.
+
+    The version shown is the one assigned, or for customers not mailed the version
+    with the highest value. ``stop``: no version is worth mailing; ``over-budget``:
+    worth mailing but the budget ran out; ``suppressed``: on the suppression list.
+    """
+    best = values.values.argmax(axis=1)
+    version_index = np.where(assignment >= 0, assignment, best)
+    value = values.values[np.arange(len(version_index)), version_index]
+    decision = np.select(
+        [values.suppressed, assignment >= 0, value > 0],
+        [DECISIONS.index("suppressed"), DECISIONS.index("mail"), DECISIONS.index("over-budget")],
+        DECISIONS.index("stop"),
+    )
+    return pd.DataFrame(
+        {
+            "customer_id": values.customer_ids,
+            "segment": categorical(values.segment),
+            "version": pd.Categorical.from_codes(version_index, categories=list(values.versions)),
+            "p_alive": values.p_alive,
+            "p_buy": values.p_buy * values.responses[version_index],
+            "value_of_mailing": value,
+            "decision": pd.Categorical.from_codes(decision, categories=list(DECISIONS)),
+        }
+    )
+
+
+def decision_counts(rows: pd.DataFrame) -> dict[str, int]:
+    """Customers per decision, every decision listed (0 when none)."""
+    counts = rows["decision"].value_counts()
+    return {decision: int(counts.get(decision, 0)) for decision in DECISIONS}

@@ -1,0 +1,314 @@
+"""The stop-rule program: the belief-state dynamic program that values every customer state after a purchase.
+
+The decision is made at the start of each quarter: mail (pay the piece cost
+``c``) or hold. A customer who buys earns the margin ``m = gross_margin *
+order_value - order_cost``. A quarter ``i`` quarters ahead is discounted by
+``d ** i`` with ``d = (1 + annual_discount_rate) ** -0.25``; its cost and margin
+carry the same factor.
+
+The state is the exact posterior of the hidden-churn model given the history.
+Two facts make it small:
+
+* given that a customer is alive through quarter ``n``, the future depends only
+  on ``(n, x, b)``: churn ``theta ~ Beta(gamma, delta + n)`` and purchase
+  probability ``p`` with density proportional to
+  ``Beta(alpha, beta) * p^x (1-p)^a (1-rho p)^b`` where ``a = n - x - b`` mailed
+  and ``b`` unmailed silent quarters;
+* a customer who just bought is certainly alive, so after a purchase the
+  state is exactly ``(n, x, b)``. Between purchases the firm sees only
+  silence, so its decisions form a fixed sequence, and the belief is the
+  alive state weighted by ``P(alive)``.
+
+The recursion
+-------------
+Write ``M(x, a, b) = E[p^x (1-p)^a (1-rho p)^b]`` (:mod:`lapsewise.model.moments`)
+and ``S(n, i) = B(gamma, delta + n + i) / B(gamma, delta + n)``, the chance that a
+customer alive through quarter n is still alive i quarters later. Along a silent
+stretch in which every quarter is mailed, from a customer who bought in quarter
+n in state ``(n, x, b)``, the chance of the first purchase in the i-th quarter
+and of being alive and silent after i quarters are::
+
+    f_i(n, x, b) = S(n, i) M(x + 1, a + i - 1, b) / M(x, a, b)
+    s_i(n, x, b) = S(n, i) M(x, a + i, b) / M(x, a, b)
+
+and in a held quarter the chance of an (unprompted) purchase and of silence::
+
+    g(n, x, b) = rho S(n, 1) M(x + 1, a, b) / M(x, a, b)
+    q(n, x, b) =     S(n, 1) M(x, a, b + 1) / M(x, a, b)
+
+With ``h`` quarters left, ``W_h(n, x, b)`` is the value right after a purchase
+and ``H_h(n, x, b)`` the value of holding for all h quarters (for a customer
+alive through n)::
+
+    W_h = max over J = 0..h of   sum_{i=1..J} d^i [ f_i (m + W_{h-i}(n+i, x+1, b)) - c (1 - sum_{l<i} f_l) ]
+                               + d^J s_J H_{h-J}(n+J, x, b)
+
+    H_h = d [ g (m + W_{h-1}(n+1, x+1, b)) + q H_{h-1}(n+1, x, b+1) ]
+
+    W_0 = H_0 = 0
+
+The plan behind ``J`` is "mail J quarters, then hold" (``s_0 = 1``): a piece is
+paid for in quarter i unless the customer has bought before it (``1 - sum f_l``),
+and after a purchase the program starts again from the new post-purchase state.
+With ``rho = 0`` these plans are exactly the stopping rules; with ``rho > 0`` a plan
+that holds before it mails is not in the class. :mod:`lapsewise.decide.decisions`
+turns the tables into decisions at silent states; :mod:`lapsewise.decide.reference`
+evaluates the same recursion state by state, slowly, for the tests.
+
+References
+----------
+Bitran, G. R., & Mondschein, S. V. (1996). Mailing Decisions in the Catalog Sales
+Industry. Management Science, 42(9), 1364-1381.
+
+Simester, D. I., Sun, P., & Tsitsiklis, J. N. (2006). Dynamic Catalog Mailing
+Policies. Management Science, 52(5), 683-696.
+"""
+
+from __future__ import annotations
+
+import os
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+
+import numpy as np
+
+from lapsewise.model.churn import ChurnFit
+from lapsewise.model.moments import log_alive_ahead, log_moment_grid
+from lapsewise.model.process import Process
+
+
+def decision_process(fit: ChurnFit, unmailed_response: float | None = None) -> Process:
+    """The fitted process as the program plans against it: rho is a number.
+
+    ``unmailed_response`` (the policy's) overrides rho; without it and without a
+    mailing history a held customer is assumed not to buy (rho 0).
+    """
+    rho = unmailed_response if unmailed_response is not None else (fit.rho if fit.rho is not None else 0.0)
+    return Process(fit.alpha, fit.beta, fit.gamma, fit.delta, float(rho))
+
+
+@dataclass(frozen=True)
+class Program:
+    """The solved tables ``W_h`` and ``H_h`` of the recursion in the module docstring.
+
+    ``after_purchase_at(h, b, x, n)`` is ``W_h(n, x, b)``: the value, at the end of
+    quarter n, of a customer who bought in quarter n with x repeat purchases and b
+    unmailed silent quarters behind them, when h quarters are left to decide.
+    ``hold_throughout_at(h, b, x, n)`` is ``H_h(n, x, b)``. ``log_moment[b, x, n]`` is
+    ``log M(x, a, b)`` with ``a = n - x - b`` (minus infinity off the grid) and
+    ``log_alive[n, i]`` is ``log S(n, i)``.
+
+    Layout: the tables are indexed ``[b, x, n]`` with n last, the dimension every
+    step of the recursion shifts along, so its slices are contiguous. With h
+    quarters left only a band of n can be reached from the states the program was
+    solved for, so ``after_purchase[h]`` and ``hold_throughout[h]`` hold that band
+    alone: their column ``j`` is quarter ``first_n[h] + j``.
+    """
+
+    process: Process
+    margin: float
+    piece_cost: float
+    discount: float
+    horizon: int
+    log_moment: np.ndarray
+    log_alive: np.ndarray
+    after_purchase: list[np.ndarray]
+    hold_throughout: list[np.ndarray]
+    first_n: tuple[int, ...]
+
+    @property
+    def rho(self) -> float:
+        return float(self.process.rho)
+
+    def after_purchase_at(self, h: int, b, x, n) -> np.ndarray:
+        """``W_h(n, x, b)``."""
+        return self.after_purchase[h][b, x, self._column(h, n)]
+
+    def hold_throughout_at(self, h: int, b, x, n) -> np.ndarray:
+        """``H_h(n, x, b)``."""
+        return self.hold_throughout[h][b, x, self._column(h, n)]
+
+    def _column(self, h: int, n) -> np.ndarray:
+        """Where quarter n lies in the tables for h quarters left; a state the program cannot reach is an error."""
+        column = np.asarray(n) - self.first_n[h]
+        width = self.after_purchase[h].shape[2]
+        if column.size and (column.min() < 0 or column.max() >= width):
+            raise ValueError(f"quarter n outside {self.first_n[h]}..{self.first_n[h] + width - 1}, "
+                             f"the states solved for with {h} quarters left; solve with a wider n_min..n_max")
+        return column
+
+
+def one_quarter_chance(log_moment: np.ndarray, log_alive: np.ndarray, shift_x: int, shift_b: int) -> np.ndarray:
+    """``S(n, 1) M(next state) / M(state now)`` on the whole ``[b, x, n]`` grid (0 where the state does not exist).
+
+    The next state is ``(n + 1, x + shift_x, b + shift_b)``: with ``shift_x = 1`` the
+    chance of a purchase when mailed (``f_1``; times rho when held, ``g``); with both
+    shifts 0 the chance of being alive and silent after a mailed quarter (``s_1``);
+    with ``shift_b = 1`` alive and silent after a held quarter (``q``).
+    """
+    depth, columns, rows = log_moment.shape
+    here = log_moment[: depth - shift_b, : columns - shift_x, : rows - 1]
+    there = log_moment[shift_b:, shift_x:, 1:]
+    with np.errstate(invalid="ignore"):
+        ratio = np.exp(log_alive[None, None, : rows - 1, 1] + there - here)
+    out = np.zeros_like(log_moment)
+    out[: depth - shift_b, : columns - shift_x, : rows - 1] = np.where(np.isfinite(here), ratio, 0.0)
+    return out
+
+
+def _times_shifted(table: np.ndarray, factor: np.ndarray, quarters: int, out: np.ndarray) -> np.ndarray:
+    """``table`` times ``factor`` read ``quarters`` later along n (zero beyond the grid), into ``out`` (which may be ``table``)."""
+    rows = table.shape[2] - quarters
+    np.multiply(table[:, :, :rows], factor[:, :, quarters:], out=out[:, :, :rows])
+    out[:, :, rows:] = 0.0
+    return out
+
+
+B_BLOCKS = 4
+"""Blocks of b in the recursion's inner loop: each skips the (b, x) corner where no state is reached."""
+
+
+def workers() -> ThreadPoolExecutor:
+    """Two worker threads (one on a single core): the kernels' numpy operations release the GIL."""
+    return ThreadPoolExecutor(max_workers=min(2, os.cpu_count() or 1))
+
+
+@dataclass(frozen=True)
+class _Reach:
+    """The states reachable with h quarters left: n from ``first`` to ``last``, x up to ``x_last``, b up to ``b_last``."""
+
+    first: int
+    last: int
+    x_last: int
+    b_last: int
+
+
+def solve(
+    process: Process,
+    margin: float,
+    piece_cost: float,
+    discount: float,
+    horizon: int,
+    n_max: int,
+    b_max: int,
+    n_min: int = 0,
+    x_max: int | None = None,
+) -> Program:
+    """Solve the tables ``W_h`` and ``H_h`` of the module docstring's recursion for h = 0..horizon-1.
+
+    ``n_min``, ``n_max``, ``x_max`` and ``b_max`` bound the states the caller will
+    decide at; the grid reaches ``horizon`` quarters beyond them. With h quarters
+    left only the states that can be reached with h left are computed: n from
+    ``n_min + horizon - h - 1`` to ``n_max + horizon - h``, x up to
+    ``x_max + horizon - h + 1`` and b up to ``b_max + horizon - h + 1``.
+
+    How: the chances ``f_i`` and ``s_i`` and the plans' margins and costs,
+    ``K_J = sum_{i<=J} d^i [m f_i - c (1 - sum_{l<i} f_l)]``, do not depend on h, so
+    they are tabulated once (``f_i`` and ``s_i`` as products of one-quarter chances
+    along n). Then for each h the J-th plan's value is
+    ``K_J + sum_{i<=J} d^i f_i W_{h-i}(n+i, x+1, b) + d^J s_J H_{h-J}(n+J, x, b)``,
+    built up over J and maximised as it goes, a few numpy operations over the
+    reachable part of the grid per (h, J), in blocks of b that two threads share.
+    :mod:`lapsewise.decide.reference` computes the same tables state by state.
+    """
+    rho = float(process.rho)
+    # Held quarters add to b; with rho = 0 nothing is learnt from them but n still grows.
+    b_grid = b_max + 1 + (horizon if rho > 0 else 0)
+    n_grid = n_max + horizon + 1
+    x_top = n_max if x_max is None else x_max
+    # x never exceeds the largest x asked about plus one per quarter ahead (and one more for x + 1).
+    log_moment = log_moment_grid(process, n_grid + 1, b_grid + 1, x_top + horizon + 3)
+    shape = log_moment.shape
+    log_alive = log_alive_ahead(process.gamma, process.delta, shape[2], horizon + 1)
+
+    def reach(h: int) -> _Reach:
+        b_last = min(b_max + horizon - h + 1, shape[0] - 2) if rho > 0 else shape[0] - 2
+        last = n_max + horizon - h
+        return _Reach(max(n_min + horizon - h - 1, 0), last, min(last + 1, x_top + horizon - h + 1), b_last)
+
+    # The tables below are read only at n >= n_min (the first n reachable with at most horizon - 1 quarters
+    # left), so they start there: their column j is quarter n_min + j. The i-th is read only with i or more
+    # quarters left, so it keeps only the states reachable then. Running tables are updated in place.
+    mailed_buy = one_quarter_chance(log_moment, log_alive, 1, 0)  # f_1
+    mailed_silent = one_quarter_chance(log_moment, log_alive, 0, 0)  # s_1
+    later = (slice(None), slice(None), slice(n_min, None))
+    purchase_after, silent_after, known_part = [None], [None], [None]  # d^i f_i, d^i s_i, K_i
+    no_purchase_yet = np.ones_like(log_moment[later])  # 1 - sum_{l<i} f_l
+    margins_and_costs = np.zeros_like(no_purchase_yet)
+    still_silent = np.ones_like(no_purchase_yet)  # s_{i-1}
+    first_purchase = np.empty_like(no_purchase_yet)  # f_i
+    scratch = np.empty_like(no_purchase_yet)
+    for i in range(1, horizon + 1):
+        kept_reach = reach(min(i, horizon - 1))
+        kept = (slice(0, kept_reach.b_last + 1), slice(0, kept_reach.x_last + 1), slice(0, kept_reach.last + 1 - n_min))
+        _times_shifted(still_silent, mailed_buy[later], i - 1, first_purchase)  # f_i = s_{i-1} f_1(n + i - 1)
+        np.multiply(first_purchase, discount**i * margin, out=scratch)
+        margins_and_costs += scratch
+        np.multiply(no_purchase_yet, discount**i * piece_cost, out=scratch)
+        margins_and_costs -= scratch
+        no_purchase_yet -= first_purchase
+        purchase_after.append(first_purchase[kept] * discount**i)
+        known_part.append(margins_and_costs[kept].copy())
+        _times_shifted(still_silent, mailed_silent[later], i - 1, still_silent)  # s_i = s_{i-1} s_1(n + i - 1)
+        if rho > 0:
+            silent_after.append(still_silent[kept] * discount**i)
+    del no_purchase_yet, margins_and_costs, still_silent, first_purchase, scratch
+    if rho > 0:
+        held_buy = rho * mailed_buy  # g
+        held_silent = one_quarter_chance(log_moment, log_alive, 0, 1)  # q
+    first_n = [reach(h).first for h in range(horizon)]
+    band = n_max - n_min + 2  # the reachable band of n, the same width for every h
+    after_purchase = [np.zeros((shape[0], shape[1], band))]
+    hold_throughout = [np.zeros((shape[0], shape[1], band))]
+    with workers() as pool:
+        for h in range(1, horizon):
+            now = reach(h)
+
+            def at(table: np.ndarray, first: int, i: int = 0, shift_x: int = 0, shift_b: int = 0, rows: tuple[int, int, int] | None = None) -> np.ndarray:
+                """The states reachable with h left in ``table`` (whose column 0 is quarter ``first``), ``i`` quarters on
+                and shifted in x and b; ``rows`` = (first b, last b + 1, last x + 1) narrows them to a block of b."""
+                b0, b1, x1 = rows or (0, now.b_last + 1, now.x_last + 1)
+                return table[b0 + shift_b : b1 + shift_b, shift_x : x1 + shift_x, now.first + i - first : now.last + 1 + i - first]
+
+            def solved(tables: list[np.ndarray], i: int, shift_x: int = 0, shift_b: int = 0, rows=None) -> np.ndarray:
+                """``at`` in the solved table for h - i quarters left, i quarters on."""
+                return at(tables[h - i], first_n[h - i], i, shift_x, shift_b, rows)
+
+            held = np.zeros((shape[0], shape[1], band))
+            if rho > 0:
+                # H_h = d [g (m + W_{h-1}(n+1, x+1, b)) + q H_{h-1}(n+1, x, b+1)]
+                part = at(held, now.first)
+                np.add(solved(after_purchase, 1, 1), margin, out=part)
+                part *= at(held_buy, 0)
+                part += at(held_silent, 0) * solved(hold_throughout, 1, 0, 1)
+                part *= discount
+            hold_throughout.append(held)
+            # A state exists only where x + b <= n <= last, and is reached only where x + b <= x_top + b_max plus one
+            # per quarter gone (each quarter adds at most one purchase or one held quarter), one more for the x + 1
+            # and b + 1 that later tables read. So a block of b from b0 on needs x only up to the smaller bound less b0.
+            edges = np.linspace(0, now.b_last + 1, B_BLOCKS + 1).astype(int)
+            reached = x_top + b_max + horizon - h + 1
+
+            def best_plan(rows: tuple[int, int, int]) -> np.ndarray:
+                """W_h on a block of b: the best of the plans J = 0..h, built up over J."""
+                chosen = at(held, now.first, rows=rows).copy()  # J = 0: hold throughout
+                after_purchases = np.zeros_like(chosen)  # sum_{i<=J} d^i f_i W_{h-i}(n+i, x+1, b)
+                candidate = np.empty_like(chosen)
+                tail = np.empty_like(chosen)
+                for i in range(1, h + 1):
+                    np.multiply(at(purchase_after[i], n_min, rows=rows), solved(after_purchase, i, 1, rows=rows), out=candidate)
+                    after_purchases += candidate
+                    np.add(after_purchases, at(known_part[i], n_min, rows=rows), out=candidate)
+                    if rho > 0 and i < h:
+                        np.multiply(at(silent_after[i], n_min, rows=rows), solved(hold_throughout, i, rows=rows), out=tail)
+                        candidate += tail
+                    np.maximum(chosen, candidate, out=chosen)
+                return np.where(np.isfinite(at(log_moment, 0, rows=rows)), chosen, 0.0)
+
+            blocks = [(b0, b1, min(now.x_last, now.last - b0, reached - b0) + 1) for b0, b1 in zip(edges[:-1], edges[1:])]
+            blocks = [rows for rows in blocks if rows[1] > rows[0] and rows[2] > 0]
+            values = np.zeros((shape[0], shape[1], band))
+            for rows, block in zip(blocks, pool.map(best_plan, blocks)):  # two blocks at a time
+                at(values, now.first, rows=rows)[...] = block
+            after_purchase.append(values)
+    return Program(process, margin, piece_cost, discount, horizon, log_moment, log_alive, after_purchase, hold_throughout, tuple(first_n))

@@ -1,0 +1,158 @@
+"""Monte Carlo of mailing policies on new customers drawn from the fitted population.
+
+Every policy meets the same customers and the same random numbers (common random
+numbers, :class:`~lapsewise.evaluate.simulator.TabledUniforms`): each customer's
+purchase and churn probabilities, the uniform draw that decides whether they
+leave in each quarter, and the one that decides whether they buy. Differences
+between policies are therefore paired, and their standard errors small.
+
+Each simulated customer has just made their first purchase (quarter 0). In each
+of the following quarters the policy decides from what the firm can see, and
+the process runs as :mod:`lapsewise.evaluate.simulator` describes. Profit in
+quarter i is discounted by ``d ** i``, as in the program.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from lapsewise.data.histories import compress_arrays, history_arrays
+from lapsewise.decide.decisions import decide_within
+from lapsewise.decide.program import Program, solve
+from lapsewise.evaluate.simulator import (
+    MailingRule,
+    SoFar,
+    TabledUniforms,
+    Traits,
+    draw_traits,
+    every_quarter,
+    run_process,
+)
+from lapsewise.files.policy_file import Economics
+from lapsewise.model.posterior import posterior
+from lapsewise.model.process import Process
+
+STOP_AFTER = (1, 2, 3, 4, 6, 8, 12)
+
+
+@dataclass(frozen=True)
+class Simulation:
+    """Per-policy results: ``summary`` (one row per policy) and the program's own value of a new customer."""
+
+    customers: int
+    quarters: int
+    seed: int
+    order_value: float
+    margin: float
+    program_value: float | None
+    summary: pd.DataFrame
+
+    @property
+    def best_rule(self) -> pd.Series:
+        """The row of the best policy other than the optimal one (the best rule of thumb)."""
+        others = self.summary.iloc[1:]
+        return others.loc[others["mean_profit"].idxmax()]
+
+    def to_dict(self) -> dict:
+        return {
+            "customers": self.customers,
+            "quarters": self.quarters,
+            "seed": self.seed,
+            "order_value": round(self.order_value, 6),
+            "margin_per_order": round(self.margin, 6),
+            "program_value": None if self.program_value is None else round(self.program_value, 6),
+            "policies": [
+                {key: (round(float(value), 6) if isinstance(value, (float, np.floating)) else value) for key, value in row.items()}
+                for row in self.summary.to_dict(orient="records")
+            ],
+        }
+
+
+def policy_names() -> list[str]:
+    return ["optimal"] + [f"stop after {k}" for k in STOP_AFTER] + ["breakeven", "always mail"]
+
+
+def policy_rule(name: str, process: Process, program: Program, economics: Economics, margin: float, quarters: int) -> MailingRule:
+    """The mailing rule of a named policy: the program's, a rule of thumb, or always mail."""
+    if name == "always mail":
+        return every_quarter
+    if name.startswith("stop after "):
+        silent_limit = int(name.split()[2])
+        return lambda seen: (seen.quarter - 1 - seen.last_purchase) < silent_limit
+
+    def model_rule(seen: SoFar) -> np.ndarray:
+        before = seen.quarter - 1
+        n = np.full(seen.purchased.shape[0], before)
+        histories = compress_arrays(history_arrays(seen.purchased[:, : before + 1], seen.mailed[:, : before + 1], n))
+        post = posterior(process, histories)
+        if name == "breakeven":
+            return (post.p_buy * margin >= economics.piece_cost)[histories.inverse]
+        horizon = min(program.horizon, quarters - seen.quarter + 1)
+        decisions = decide_within(program, histories.n, histories.x, histories.unmailed_quarters, post.alive_now, horizon)
+        return decisions.mail[histories.inverse]
+
+    return model_rule
+
+
+def run_policy(name: str, process: Process, program: Program, economics: Economics, margin: float, traits: Traits, uniforms: TabledUniforms, quarters: int) -> dict:
+    """Simulate one policy over all customers; returns per-customer discounted profit, pieces and orders."""
+    rule = policy_rule(name, process, program, economics, margin, quarters)
+    result = run_process(process, traits, quarters + 1, rule, uniforms)
+    profit = np.zeros(traits.customers)
+    d = economics.discount
+    for quarter in range(1, quarters + 1):
+        profit += d**quarter * (margin * result.purchased[:, quarter] - economics.piece_cost * result.mailed[:, quarter])
+    return {"profit": profit, "pieces": result.mailed.sum(axis=1), "orders": result.purchased[:, 1:].sum(axis=1)}
+
+
+def simulate_policies(process: Process, economics: Economics, order_value: float, customers: int, quarters: int, seed: int) -> Simulation:
+    """Run every policy on the same simulated customers and compare them with the optimal one.
+
+    With ``quarters`` up to the horizon, "optimal" is the program's policy for
+    exactly that many quarters (the best any policy can do over the simulated
+    window) and the program's own value of a new customer is reported beside the
+    simulated mean. With more quarters, each decision looks ``horizon_quarters``
+    ahead (the rolling policy) and there is no single program value to compare.
+    """
+    margin = economics.margin(order_value)
+    horizon = min(quarters, economics.horizon_quarters)
+    rolling = quarters > economics.horizon_quarters
+    if rolling:
+        program = solve(process, margin, economics.piece_cost, economics.discount, horizon, n_max=quarters, b_max=quarters, x_max=quarters)
+    else:
+        # Quarter t decides with quarters - t + 1 left, so with h left a state has n, x and
+        # (when held quarters teach something) b of at most quarters - h: the grid of a
+        # single root at n = 0 with the whole window ahead covers them all. With rho = 0
+        # held quarters move n but not the belief, so b must be allowed in full.
+        program = solve(process, margin, economics.piece_cost, economics.discount, horizon, n_max=0, b_max=quarters if process.rho == 0 else 0, x_max=0)
+    program_value = None
+    if not rolling:
+        start = decide_within(program, np.array([0]), np.array([0]), np.array([0]), np.array([1.0]), horizon)
+        program_value = float(start.value[0])
+    rng = np.random.default_rng(seed)
+    traits = draw_traits(process, customers, rng)
+    uniforms = TabledUniforms.draw(rng, customers, quarters)
+    results = {name: run_policy(name, process, program, economics, margin, traits, uniforms, quarters) for name in policy_names()}
+    best = results["optimal"]["profit"]
+    rows = []
+    for name, result in results.items():
+        profit = result["profit"]
+        difference = profit - best
+        rows.append(
+            {
+                "policy": name,
+                "mean_profit": float(profit.mean()),
+                "profit_p5": float(np.percentile(profit, 5)),
+                "profit_p50": float(np.percentile(profit, 50)),
+                "profit_p95": float(np.percentile(profit, 95)),
+                "pieces": float(result["pieces"].mean()),
+                "orders": float(result["orders"].mean()),
+                "difference_to_optimal": float(difference.mean()),
+                "difference_std_error": float(difference.std(ddof=1) / np.sqrt(len(difference))),
+                "profit_std_error": float(profit.std(ddof=1) / np.sqrt(len(profit))),
+            }
+        )
+    return Simulation(customers, quarters, seed, float(order_value), float(margin), program_value, pd.DataFrame(rows))

@@ -1,0 +1,205 @@
+"""The policy file: the economics of a mailing, the segments of the budget plan and the versions of the piece.
+
+A policy file is TOML with three parts, ``[economics]``, ``[segments]`` and
+``[[versions]]`` (see ``policies/`` for commented examples). :func:`load_policy`
+reads it, applies command-line overrides of ``[economics]`` keys, and checks
+every key once, here at the edge: unknown keys, missing keys and impossible
+values raise :class:`~lapsewise.errors.InputError` naming the key.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from lapsewise.errors import InputError
+from lapsewise.files.tables import require_file
+
+ECONOMICS_KEYS = {
+    "gross_margin": "share of order value left after cost of goods (0 to 1)",
+    "order_cost": "pick, pack and payment cost per order",
+    "piece_cost": "print and postage per piece mailed",
+    "annual_discount_rate": "annual discount rate (0.10 = 10%)",
+    "horizon_quarters": "how many quarters ahead each decision looks",
+    "order_value": "optional: a fixed value per order instead of the spend model",
+    "unmailed_response": "optional: overrides the model's rho",
+}
+OPTIONAL_ECONOMICS = ("order_value", "unmailed_response")
+VERSION_KEYS = ("name", "piece_cost", "response", "setup_cost", "min_quantity")
+SEGMENT_KEYS = ("frequency_bands", "silent_bands", "spend_bands", "min_share", "max_share")
+MAX_HORIZON = 120
+
+
+@dataclass(frozen=True)
+class Economics:
+    """The money side of a mailing decision (see the policy file's ``[economics]`` section)."""
+
+    gross_margin: float
+    order_cost: float
+    piece_cost: float
+    annual_discount_rate: float
+    horizon_quarters: int
+    order_value: float | None = None
+    unmailed_response: float | None = None
+
+    @property
+    def discount(self) -> float:
+        """Quarterly discount factor ``(1 + annual_discount_rate) ** -0.25``."""
+        return (1.0 + self.annual_discount_rate) ** -0.25
+
+    def margin(self, order_value: float) -> float:
+        """Contribution of one order: ``gross_margin * order_value - order_cost``."""
+        return self.gross_margin * order_value - self.order_cost
+
+
+@dataclass(frozen=True)
+class Version:
+    """A version of the piece: its cost per piece, response relative to the full piece, setup cost and minimum run."""
+
+    name: str
+    piece_cost: float
+    response: float = 1.0
+    setup_cost: float = 0.0
+    min_quantity: int = 0
+
+
+@dataclass(frozen=True)
+class Segments:
+    """How customers are grouped for the budget plan."""
+
+    frequency_bands: tuple[int, ...] = (0, 1, 2, 4, 8)
+    silent_bands: tuple[int, ...] = (0, 1, 2, 4, 8)
+    spend_bands: int = 3
+    min_share: dict[str, float] = field(default_factory=dict)
+    max_share: dict[str, float] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Policy:
+    economics: Economics
+    versions: tuple[Version, ...]
+    segments: Segments
+    source: str = ""
+
+
+def _number(source: str, key: str, value, low: float | None = None, high: float | None = None, integer: bool = False) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise InputError(f"{source}: {key} = {value!r} is not a number; write a plain number such as 0.45")
+    if integer and int(value) != value:
+        raise InputError(f"{source}: {key} = {value!r} must be a whole number")
+    if low is not None and value < low:
+        raise InputError(f"{source}: {key} = {value!r} is below {low}; {key} cannot be negative" if low == 0 else f"{source}: {key} = {value!r} is below {low}")
+    if high is not None and value > high:
+        raise InputError(f"{source}: {key} = {value!r} is above {high}")
+    return int(value) if integer else float(value)
+
+
+def _economics(source: str, raw: dict) -> Economics:
+    unknown = [k for k in raw if k not in ECONOMICS_KEYS]
+    if unknown:
+        raise InputError(f"{source}: unknown key '{unknown[0]}' in [economics]; known keys: {', '.join(ECONOMICS_KEYS)}")
+    missing = [k for k in ECONOMICS_KEYS if k not in OPTIONAL_ECONOMICS and raw.get(k) is None]
+    if missing:
+        raise InputError(f"{source}: [economics] is missing '{missing[0]}' ({ECONOMICS_KEYS[missing[0]]}); add it or pass --{missing[0].replace('_', '-')}")
+    values = {
+        "gross_margin": _number(source, "gross_margin", raw["gross_margin"], 0.0, 1.0),
+        "order_cost": _number(source, "order_cost", raw["order_cost"], 0.0),
+        "piece_cost": _number(source, "piece_cost", raw["piece_cost"], 0.0),
+        "annual_discount_rate": _number(source, "annual_discount_rate", raw["annual_discount_rate"], 0.0, 10.0),
+        "horizon_quarters": _number(source, "horizon_quarters", raw["horizon_quarters"], 1, MAX_HORIZON, integer=True),
+    }
+    if raw.get("order_value") is not None:
+        values["order_value"] = _number(source, "order_value", raw["order_value"], 0.0)
+    if raw.get("unmailed_response") is not None:
+        values["unmailed_response"] = _number(source, "unmailed_response", raw["unmailed_response"], 0.0, 1.0)
+    return Economics(**values)
+
+
+def _versions(source: str, raw: list, economics: Economics) -> tuple[Version, ...]:
+    if not raw:
+        return (Version(name="standard", piece_cost=economics.piece_cost),)
+    versions = []
+    for position, entry in enumerate(raw, start=1):
+        where = f"[[versions]] number {position}"
+        if not isinstance(entry, dict):
+            raise InputError(f"{source}: {where} is not a table of keys")
+        unknown = [k for k in entry if k not in VERSION_KEYS]
+        if unknown:
+            raise InputError(f"{source}: unknown key '{unknown[0]}' in {where}; known keys: {', '.join(VERSION_KEYS)}")
+        for key in ("name", "piece_cost"):
+            if key not in entry:
+                raise InputError(f"{source}: {where} is missing '{key}'")
+        name = str(entry["name"]).strip()
+        if not name:
+            raise InputError(f"{source}: {where} has a blank name")
+        versions.append(
+            Version(
+                name=name,
+                piece_cost=_number(source, f"{name}.piece_cost", entry["piece_cost"], 0.0),
+                response=_number(source, f"{name}.response", entry.get("response", 1.0), 0.0, 1.0),
+                setup_cost=_number(source, f"{name}.setup_cost", entry.get("setup_cost", 0.0), 0.0),
+                min_quantity=_number(source, f"{name}.min_quantity", entry.get("min_quantity", 0), 0, integer=True),
+            )
+        )
+    names = [v.name for v in versions]
+    if len(set(names)) != len(names):
+        raise InputError(f"{source}: two [[versions]] share a name; give each version its own name")
+    return tuple(versions)
+
+
+def _bands(source: str, key: str, value) -> tuple[int, ...]:
+    if not isinstance(value, list) or not value or any(isinstance(v, bool) or not isinstance(v, int) or v < 0 for v in value):
+        raise InputError(f"{source}: [segments] {key} must be a list of whole numbers such as [0, 1, 2, 4, 8]")
+    if list(value) != sorted(set(value)) or value[0] != 0:
+        raise InputError(f"{source}: [segments] {key} must start at 0 and rise, such as [0, 1, 2, 4, 8]")
+    return tuple(value)
+
+
+def _segments(source: str, raw: dict) -> Segments:
+    unknown = [k for k in raw if k not in SEGMENT_KEYS]
+    if unknown:
+        raise InputError(f"{source}: unknown key '{unknown[0]}' in [segments]; known keys: {', '.join(SEGMENT_KEYS)}")
+    defaults = Segments()
+    shares = {}
+    for key in ("min_share", "max_share"):
+        table = raw.get(key, {})
+        if not isinstance(table, dict):
+            raise InputError(f"{source}: [segments] {key} must be a table of segment = share, such as {{ \"5+ repeat, 0 silent\" = 1.0 }}")
+        shares[key] = {str(k): _number(source, f"{key}.{k}", v, 0.0, 1.0) for k, v in table.items()}
+    return Segments(
+        frequency_bands=_bands(source, "frequency_bands", raw["frequency_bands"]) if "frequency_bands" in raw else defaults.frequency_bands,
+        silent_bands=_bands(source, "silent_bands", raw["silent_bands"]) if "silent_bands" in raw else defaults.silent_bands,
+        spend_bands=_number(source, "spend_bands", raw.get("spend_bands", defaults.spend_bands), 1, 10, integer=True),
+        min_share=shares["min_share"],
+        max_share=shares["max_share"],
+    )
+
+
+def load_policy(path: str | Path, overrides: dict | None = None) -> Policy:
+    """Read a policy file (TOML) and apply command-line overrides of ``[economics]`` keys.
+
+    Unknown keys, missing keys and impossible values are InputErrors naming the key.
+    """
+    path = require_file(path, "see policies/ for examples", "a policy file")
+    source = str(path)
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except UnicodeDecodeError:
+        raise InputError(f"{source}: is not UTF-8 text; save the policy file as UTF-8") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{source}: is not valid TOML ({exc}); see policies/ for examples") from None
+    unknown = [k for k in raw if k not in ("economics", "versions", "segments")]
+    if unknown:
+        raise InputError(f"{source}: unknown section or key '{unknown[0]}'; a policy file has [economics], [segments] and [[versions]]")
+    economics_raw = dict(raw.get("economics", {}))
+    if not isinstance(raw.get("economics", {}), dict):
+        raise InputError(f"{source}: economics must be a [economics] section")
+    for key, value in (overrides or {}).items():
+        if value is not None:
+            economics_raw[key] = value
+    economics = _economics(source, economics_raw)
+    versions = _versions(source, raw.get("versions", []), economics)
+    segments = _segments(source, raw.get("segments", {}))
+    return Policy(economics=economics, versions=versions, segments=segments, source=source)

@@ -1,0 +1,62 @@
+"""The hidden-churn process: the parameters every later stage reads, with their published names.
+
+Customer i has a purchase probability ``p ~ Beta(alpha, beta)`` and a churn
+probability ``theta ~ Beta(gamma, delta)``. Quarter 0 is the first purchase. At
+the start of every later quarter an alive customer leaves, for good, with
+probability ``theta``. An alive customer buys with probability ``p`` in a
+mailed quarter and ``rho * p`` in an unmailed one. With every quarter mailed
+this is the BG/BB model of Fader, Hardie & Berger (2010), and ``rho`` is then
+``None``: the data say nothing about it.
+
+The fit estimates a process (:class:`lapsewise.model.churn.ChurnFit`), the
+posterior and the simulator read one, and the stop-rule program plans against
+one whose rho is a number (the policy may set it).
+
+References
+----------
+Fader, P. S., Hardie, B. G. S., & Berger, P. D. (2010). Customer-Base Analysis
+with Discrete-Time Transaction Data. Marketing Science, 29(6), 1086-1108.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True)
+class Process:
+    """The parameters of the hidden-churn process.
+
+    Attributes
+    ----------
+    alpha, beta : float
+        Beta distribution of the purchase probability p.
+    gamma, delta : float
+        Beta distribution of the churn probability theta.
+    rho : float or None
+        Share of the purchase probability left in an unmailed quarter; None when
+        every quarter counts as mailed (no mailing history).
+    """
+
+    alpha: float
+    beta: float
+    gamma: float
+    delta: float
+    rho: float | None = None
+
+    @property
+    def mailing_history(self) -> bool:
+        return self.rho is not None
+
+    @property
+    def unmailed_response(self) -> float:
+        """rho, or 1.0 when every quarter counts as mailed."""
+        return 1.0 if self.rho is None else float(self.rho)
+
+    @property
+    def mean_p(self) -> float:
+        return self.alpha / (self.alpha + self.beta)
+
+    @property
+    def mean_theta(self) -> float:
+        return self.gamma / (self.gamma + self.delta)

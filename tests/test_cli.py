@@ -1,0 +1,283 @@
+"""The commands end to end, run as a user would run them: on a small demo scenario, and on bad input
+(exit code 2, one line on stderr naming the file, never a traceback)."""
+
+import json
+
+import pandas as pd
+import pytest
+from hypothesis import given
+
+from builders import run
+from conftest import (
+    ANY_FILE,
+    ANY_FILE_SETTINGS,
+    BAD_INPUTS,
+    GOOD_ORDERS,
+    assert_one_error_line,
+    file_holding,
+    orders_text,
+    run_cli,
+    run_cli_process,
+)
+
+
+def test_fit_writes_model_and_refuses_to_overwrite(demo_dir, tmp_path):
+    out = tmp_path / "model.json"
+    result = run("fit", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--out", out)
+    assert result.returncode == 0, result.stderr
+    model = json.loads(out.read_text())
+    assert model["mailing_history"] is True and model["churn"]["rho"] is not None
+    assert "Lapse curve" in result.stdout
+    again = run("fit", demo_dir / "orders.csv", "--out", out)
+    assert again.returncode == 2 and "already exists" in again.stderr
+    forced = run("fit", demo_dir / "orders.csv", "--out", out, "--force")
+    assert forced.returncode == 0
+    # Without a mailings file rho is not estimated and the output says every quarter counts as mailed.
+    assert json.loads(out.read_text())["churn"]["rho"] is None
+    assert "counted as mailed" in forced.stdout
+
+
+def test_backtest_json_is_stable_and_has_its_keys(demo_dir):
+    args = ("backtest", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--holdout-quarters", 3, "--json")
+    first, second = run(*args), run(*args)
+    assert first.returncode == 0, first.stderr
+    assert first.stdout == second.stdout
+    data = json.loads(first.stdout)
+    assert data["holdout_quarters"] == 3
+    assert data["actual_repeat_purchases"] >= 0 and data["predicted_repeat_purchases"] > 0
+
+
+def test_score_writes_one_row_per_customer(demo_dir, tmp_path):
+    out = tmp_path / "scores.csv"
+    result = run("score", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--out", out)
+    assert result.returncode == 0, result.stderr
+    lines = out.read_text().splitlines()
+    assert lines[0] == "customer_id,x,t_x,n,silent_quarters,p_alive,p_buy,expected_orders,dert,expected_order_value"
+    model = json.loads((demo_dir / "model.json").read_text())
+    assert len(lines) - 1 == model["customers"]
+
+
+def test_model_argument_errors_are_one_line(tmp_path, demo_dir):
+    bad = tmp_path / "bad.json"
+    bad.write_text("{}")
+    result = run("score", bad, demo_dir / "orders.csv", "--out", tmp_path / "s.csv")
+    assert result.returncode == 2
+    assert result.stderr.startswith("error: ") and "not a lapsewise model file" in result.stderr
+    assert "Traceback" not in result.stderr
+    assert not (tmp_path / "s.csv").exists()
+
+
+POLICY = __import__("pathlib").Path(__file__).parent.parent / "policies" / "full-catalog.toml"
+
+
+def test_stop_table_json_lists_every_state(demo_dir):
+    result = run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 8, "--json")
+    assert result.returncode == 0, result.stderr
+    data = json.loads(result.stdout)
+    # (0, 0) and every 1 <= x <= t_x <= 8, for each of the 3 spend bands.
+    assert len(data["rows"]) == 3 * (1 + 8 * 9 // 2)
+    row = data["rows"][0]
+    assert set(row) >= {"frequency", "last_purchase_quarter", "stop_after", "spend_band"}
+    assert data["economics"]["horizon_quarters"] == 8
+
+
+def test_stop_table_prints_optimal_beside_breakeven(demo_dir):
+    result = run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 8, "--order-value", 50)
+    assert result.returncode == 0, result.stderr
+    assert "Breakeven rule" in result.stdout and "Stop mailing one-time buyers" in result.stdout
+
+
+def test_override_with_an_impossible_value_is_refused(demo_dir):
+    result = run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--gross-margin", 1.5)
+    assert result.returncode == 2 and "gross_margin" in result.stderr and "Traceback" not in result.stderr
+
+
+def test_simulate_json(demo_dir):
+    args = ("simulate", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 6, "--customers", 2000, "--seed", 4, "--json")
+    first, second = run(*args), run(*args)
+    assert first.returncode == 0, first.stderr
+    assert first.stdout == second.stdout
+    data = json.loads(first.stdout)
+    names = [p["policy"] for p in data["policies"]]
+    assert names[0] == "optimal" and "breakeven" in names and "always mail" in names and "stop after 12" in names
+
+
+SEASON = POLICY.parent / "high-cost-season.toml"
+
+
+def test_plan_json_has_its_keys_and_is_stable(demo_dir):
+    args = ("plan", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--policy", POLICY, "--budget", 400, "--horizon-quarters", 8, "--json")
+    first, second = run(*args), run(*args)
+    assert first.returncode == 0, first.stderr
+    assert first.stdout == second.stdout
+    data = json.loads(first.stdout)
+    for key in ("budget", "spent", "expected_profit", "shadow_price", "segments"):
+        assert key in data
+    assert data["spent"] <= 400
+    segment = data["segments"][0]
+    assert set(segment) == {"segment", "version", "customers", "mailed", "cost", "expected_orders", "expected_profit"}
+    assert sum(s["customers"] for s in data["segments"]) == json.loads((demo_dir / "model.json").read_text())["customers"]
+
+
+def test_plan_with_versions_and_frontier(demo_dir):
+    result = run("plan", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--policy", SEASON, "--budget", 2500, "--horizon-quarters", 8, "--frontier")
+    assert result.returncode == 0, result.stderr
+    assert "shadow price" in result.stdout and "Budget against expected value" in result.stdout
+
+
+def test_infeasible_plan_names_the_rule(demo_dir):
+    result = run("plan", demo_dir / "model.json", demo_dir / "orders.csv", "--policy", SEASON, "--budget", 5, "--horizon-quarters", 8)
+    assert result.returncode == 2
+    assert "min_share" in result.stderr and "Traceback" not in result.stderr
+
+
+def test_mail_list_writes_the_columns_in_order_and_honours_suppression(demo_dir, tmp_path):
+    suppress = tmp_path / "suppress.csv"
+    orders = (demo_dir / "orders.csv").read_text().splitlines()
+    suppressed_ids = sorted({line.split(",")[0] for line in orders[1:40]})
+    suppress.write_text("customer_id\n" + "\n".join(suppressed_ids) + "\n")
+    out = tmp_path / "list.csv"
+    result = run("mail-list", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--policy", POLICY, "--horizon-quarters", 8, "--suppress", suppress, "--out", out)
+    assert result.returncode == 0, result.stderr
+
+    rows = pd.read_csv(out)
+    assert list(rows.columns) == ["customer_id", "segment", "version", "p_alive", "p_buy", "value_of_mailing", "decision"]
+    assert set(rows.loc[rows.customer_id.isin(suppressed_ids), "decision"]) == {"suppressed"}
+    # No budget: everyone worth mailing and not suppressed is mailed.
+    assert (rows.loc[(rows.value_of_mailing > 0) & (rows.decision != "suppressed"), "decision"] == "mail").all()
+    again = run("mail-list", demo_dir / "model.json", demo_dir / "orders.csv", "--policy", POLICY, "--out", out)
+    assert again.returncode == 2 and "already exists" in again.stderr
+
+
+def test_mail_list_segments_can_be_crossed_with_an_attribute(demo_dir, tmp_path):
+    ids = pd.read_csv(demo_dir / "orders.csv").customer_id.unique()
+    attributes = tmp_path / "attributes.csv"
+    pd.DataFrame({"customer_id": ids, "region": ["north" if i % 2 else "south" for i in range(len(ids))]}).to_csv(attributes, index=False)
+    out = tmp_path / "list.csv"
+    result = run("mail-list", demo_dir / "model.json", demo_dir / "orders.csv", "--policy", POLICY, "--horizon-quarters", 6, "--attributes", attributes, "--segment-column", "region", "--budget", 300, "--out", out)
+    assert result.returncode == 0, result.stderr
+    rows = pd.read_csv(out, keep_default_na=False)
+    assert rows.segment.str.endswith(", south").any() and rows.segment.str.endswith(", north").any()
+
+
+def test_formula_like_cells_reach_the_mail_list_neutralised(demo_dir, tmp_path):
+    # OWASP CSV-injection guidance: a cell starting with = + - @ is prefixed with a single quote. Customer ids and
+    # version names start their cells in the mail list; each formula-like one must arrive quoted.
+    ids = ["=1+1", "@SUM(A1)", "+7", "-HYPERLINK(x)", "plain"]
+    orders = tmp_path / "orders.csv"
+    orders.write_text("customer_id,order_date,amount\n" + "".join(f'"{i}",2024-01-15,40\n"{i}",2024-05-02,25\n' for i in ids))
+    policy = tmp_path / "policy.toml"
+    policy.write_text(POLICY.read_text().replace('name = "full"', 'name = "=WEBSERVICE(1)"'))
+    out = tmp_path / "list.csv"
+    result = run("mail-list", demo_dir / "model.json", orders, "--policy", policy, "--horizon-quarters", 4, "--as-of", "2024-06-30", "--out", out)
+    assert result.returncode == 0, result.stderr
+    rows = pd.read_csv(out, keep_default_na=False, dtype=str)
+    assert sorted(rows.customer_id) == sorted("'" + i if i[0] in "=+-@" else i for i in ids)
+    assert set(rows.version) == {"'=WEBSERVICE(1)"}
+
+
+def test_every_command_says_when_there_is_no_mailings_file(demo_dir, tmp_path):
+    orders = demo_dir / "orders.csv"
+    model = tmp_path / "model.json"
+    note = "counted as mailed"
+    fitted = run("fit", orders, "--out", model)
+    assert fitted.returncode == 0 and note in " ".join(fitted.stdout.split())
+    commands = [
+        ("summary", orders),
+        ("backtest", orders, "--holdout-quarters", 2),
+        ("score", model, orders, "--out", tmp_path / "scores.csv"),
+        ("stop-table", model, "--policy", POLICY, "--horizon-quarters", 4),
+        ("simulate", model, "--policy", POLICY, "--horizon-quarters", 4, "--customers", 500),
+        ("plan", model, orders, "--policy", POLICY, "--horizon-quarters", 4, "--budget", 100),
+        ("mail-list", model, orders, "--policy", POLICY, "--horizon-quarters", 4, "--out", tmp_path / "list.csv"),
+    ]
+    for command in commands:
+        result = run(*command)
+        assert result.returncode == 0, (command[0], result.stderr)
+        assert note in " ".join(result.stdout.split()), command[0]  # rich wraps lines at 80 columns
+
+
+# ---------------------------------------------------------------- bad input through the command line
+
+
+def test_clean_file_summary_succeeds(write_file):
+    result = run_cli("summary", write_file("orders.csv", GOOD_ORDERS))
+    # GOOD_ORDERS has two customers, A1 and B2, both starting in January-March 2023.
+    assert (result.code, result.stderr) == (0, "")
+    assert "2 customers" in result.stdout
+
+
+def test_bad_input_exits_2_with_one_line(bad_input, tmp_path):
+    """Each fatal case (see conftest.BAD_INPUTS): exit 2, one 'error:' line naming the file, row or column."""
+    orders, mailings = bad_input.make(tmp_path)
+    assert_one_error_line(run_cli(*bad_input.cli_args(orders, mailings)), *bad_input.expected(orders, mailings))
+
+
+@pytest.mark.parametrize("case", ["missing-file", "non-numeric-amount", "binary-garbage"])
+def test_bad_input_in_a_real_process_prints_no_traceback(tmp_path, case):
+    """The installed entry point, run as its own process, behaves as the in-process runs above."""
+    bad = next(b for b in BAD_INPUTS if b.id == case)
+    orders, mailings = bad.make(tmp_path)
+    assert_one_error_line(run_cli_process(*bad.cli_args(orders, mailings)), *bad.expected(orders, mailings))
+
+
+@pytest.mark.parametrize(
+    "old, new, option",
+    [("customer_id", "client", "--id-column"), ("order_date", "date", "--date-column"), ("amount", "value", "--amount-column")],
+)
+def test_column_options_fix_a_misnamed_column(write_file, old, new, option):
+    path = write_file("orders.csv", GOOD_ORDERS.replace(old, new, 1))
+    # Without the option the column is missing (exit 2); with it the file reads as GOOD_ORDERS does.
+    assert_one_error_line(run_cli("summary", path), str(path), f"'{old}'", option)
+    result = run_cli("summary", path, option, new)
+    assert result.code == 0, result.stderr
+    assert "2 customers" in result.stdout
+
+
+def test_id_column_option_renames_the_mailings_id_too(write_file):
+    orders = write_file("orders.csv", GOOD_ORDERS.replace("customer_id", "client", 1))
+    mailings = write_file("mailings.csv", "client,mail_date\nA1,2023-04-10\n")
+    result = run_cli("summary", orders, "--mailings", mailings, "--id-column", "client")
+    assert result.code == 0, result.stderr
+
+
+def test_line_break_inside_a_quoted_cell_stays_on_one_line(write_file):
+    path = write_file("orders.csv", orders_text("A1,2023-01-15,10", 'B2,2023-02-01,"12\n50"'))
+    # The quoted amount holds a line break; the message shows it escaped as \n.
+    line = assert_one_error_line(run_cli("summary", path), str(path), "row 3", "column amount")
+    assert "'12\\n50'" in line
+
+
+def test_orders_in_one_incomplete_quarter_name_the_file(write_file):
+    path = write_file("orders.csv", orders_text("A1,2023-01-15,10", "B2,2023-02-01,5"))
+    # Both orders fall in January-March 2023, which the last order (2023-02-01) does not complete.
+    assert_one_error_line(run_cli("summary", path), str(path), "--as-of 2023-03-31")
+    assert run_cli("summary", path, "--as-of", "2023-03-31").code == 0
+
+
+@pytest.mark.parametrize(
+    "options, fragments",
+    [
+        (["--fiscal-year-start", "13"], ["--fiscal-year-start", "13 is not a month"]),
+        # Past the last year datetime64[ns] holds; the panel would otherwise fail on an impossible date.
+        (["--as-of", "9999-12-31"], ["--as-of 9999-12-31"]),
+        # A date with a time is not a YYYY-MM-DD date.
+        (["--as-of", "2023-06-30T12:00"], ["--as-of", "YYYY-MM-DD"]),
+    ],
+    ids=["fiscal-year-start", "as-of-far-ahead", "as-of-with-time"],
+)
+def test_bad_options_exit_2_with_one_line(write_file, options, fragments):
+    assert_one_error_line(run_cli("summary", write_file("orders.csv", GOOD_ORDERS), *options), *fragments)
+
+
+@ANY_FILE_SETTINGS
+@given(content=ANY_FILE)
+def test_summary_command_succeeds_or_exits_2_on_any_file(content):
+    """Whatever the bytes: exit 0, or exit 2 with one 'error:' line naming the file; never a traceback."""
+    with file_holding(content) as path:
+        result = run_cli("summary", path)
+    if result.code == 0:
+        assert "customers" in result.stdout
+        assert result.stderr == ""
+    else:
+        assert_one_error_line(result, str(path))

@@ -1,0 +1,267 @@
+"""The input files: orders, mailings, id lists and the customer-quarter table; what a clean file gives,
+what is counted, what is refused, and that any file at all is read or refused with an InputError.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import given
+
+from builders import typed_orders, write_parquet
+from conftest import (
+    ANY_FILE,
+    ANY_FILE_SETTINGS,
+    GOOD_ORDERS,
+    MAILINGS_HEADER,
+    ORDERS_HEADER,
+    csv_text,
+    file_holding,
+    mailings_text,
+    orders_text,
+    repair_count,
+)
+from lapsewise.data.panel import build_panel, panel_from_files
+from lapsewise.errors import InputError
+from lapsewise.files.inputs import (
+    load_id_list,
+    load_mailings,
+    load_orders,
+    load_orders_and_mailings,
+)
+
+
+def ids_of(loaded) -> list[str]:
+    return [str(i) for i in loaded.frame["customer_id"]]
+
+
+def dates_of(loaded, column: str = "order_date") -> list[str]:
+    return [str(d) for d in loaded.frame[column]]
+
+
+def test_clean_orders_file_is_read_as_written(write_file):
+    loaded = load_orders(write_file("orders.csv", GOOD_ORDERS))
+    # GOOD_ORDERS holds three rows, A1, B2, A1, in that order, and needs no repair.
+    assert ids_of(loaded) == ["A1", "B2", "A1"]
+    assert dates_of(loaded) == ["2023-01-15 00:00:00", "2023-02-01 00:00:00", "2023-05-02 00:00:00"]
+    assert loaded.frame["amount"].tolist() == [10.0, 25.5, 12.0]
+    assert isinstance(loaded.frame["customer_id"].dtype, pd.CategoricalDtype)
+    assert loaded.repairs == {}
+
+
+def test_bad_input_raises_input_error(bad_input, tmp_path):
+    """Each fatal case (see conftest.BAD_INPUTS) raises InputError naming the file, row or column and the fix."""
+    orders, mailings = bad_input.make(tmp_path)
+    with pytest.raises(InputError) as caught:
+        panel_from_files(str(orders), str(mailings) if mailings else None, **bad_input.library_kwargs())
+    for fragment in bad_input.expected(orders, mailings):
+        assert fragment in str(caught.value)
+
+
+@pytest.mark.parametrize(
+    "old, new, keyword",
+    [("customer_id", "client", "id_column"), ("order_date", "date", "date_column"), ("amount", "value", "amount_column")],
+)
+def test_column_options_accept_other_column_names(write_file, old, new, keyword):
+    path = write_file("orders.csv", GOOD_ORDERS.replace(old, new, 1))
+    loaded = load_orders(path, **{keyword: new})
+    # The same three rows as GOOD_ORDERS, under the standard names.
+    assert list(loaded.frame.columns) == ["customer_id", "order_date", "amount"]
+    assert loaded.frame["amount"].tolist() == [10.0, 25.5, 12.0]
+
+
+def test_exact_duplicate_rows_are_dropped_and_counted(write_file):
+    rows = ["A1,2023-01-15,10", "A1,2023-01-15,10", "A1,2023-01-15,10", "A1,2023-01-15,11"]
+    loaded = load_orders(write_file("orders.csv", orders_text(*rows)))
+    # Rows 2 and 3 repeat row 1 exactly; row 4 differs in the amount and stays.
+    assert repair_count(loaded.repairs, "duplicate") == 2
+    assert loaded.frame["amount"].tolist() == [10.0, 11.0]
+
+
+def test_returns_are_kept_and_counted(write_file):
+    rows = ["A1,2023-01-15,40", "A1,2023-01-20,-15", "B2,2023-02-01,5", "B2,2023-02-03,-5"]
+    loaded = load_orders(write_file("orders.csv", orders_text(*rows)))
+    # Two negative amounts: both are returns, kept for netting.
+    assert repair_count(loaded.repairs, "return") == 2
+    assert loaded.frame["amount"].tolist() == [40.0, -15.0, 5.0, -5.0]
+
+
+def test_extra_columns_are_ignored_and_counted(write_file):
+    text = csv_text(ORDERS_HEADER + ",channel,note", "A1,2023-01-15,10,web,first", "B2,2023-02-01,5,phone,")
+    loaded = load_orders(write_file("orders.csv", text))
+    # channel and note are two columns the orders do not use.
+    assert repair_count(loaded.repairs, "extra columns ignored (channel, note)") == 2
+    assert list(loaded.frame.columns) == ["customer_id", "order_date", "amount"]
+
+
+def test_mailings_file_is_read_with_its_version_column(write_file):
+    text = csv_text(MAILINGS_HEADER + ",version,cost", " A1 ,2023-04-10,spring,0.6", "B2,2023-07-01 09:30,summer,0.6")
+    loaded = load_mailings(write_file("mailings.csv", text))
+    # version is a known optional column (recognised, not carried: the model needs only mailed quarters);
+    # cost is extra; " A1 " is padded.
+    assert ids_of(loaded) == ["A1", "B2"]
+    assert "version" not in loaded.frame.columns
+    assert dates_of(loaded, "mail_date") == ["2023-04-10 00:00:00", "2023-07-01 09:30:00"]
+    assert loaded.repairs == {"extra columns ignored (cost)": 1, "ids with surrounding spaces trimmed": 1}
+
+
+def test_orders_and_mailings_read_side_by_side_match_each_read_alone(write_file):
+    orders = write_file("orders.csv", GOOD_ORDERS)
+    mailings = write_file("mailings.csv", mailings_text(" A1 ,2023-04-10", "B2,2023-07-01"))
+    pair = load_orders_and_mailings(orders, mailings)
+    pd.testing.assert_frame_equal(pair[0].frame, load_orders(orders).frame)
+    pd.testing.assert_frame_equal(pair[1].frame, load_mailings(mailings).frame)
+    assert pair[1].repairs == {"ids with surrounding spaces trimmed": 1}
+    assert load_orders_and_mailings(orders, None)[1] is None
+    # ``then`` works on the orders while the mailings load, and its result stands in their place.
+    rows, loaded_mailings = load_orders_and_mailings(orders, mailings, then=lambda loaded: len(loaded.frame))
+    assert rows == 3 and len(loaded_mailings.frame) == 2
+
+
+def test_side_by_side_read_reports_the_orders_problem_first(write_file):
+    # Both files are broken; the orders file's problem is the one reported, as when they are read in turn.
+    orders = write_file("orders.csv", csv_text("customer_id,order_date", "A1,2023-01-15"))
+    mailings = write_file("mailings.csv", csv_text("customer_id", "A1"))
+    with pytest.raises(InputError, match="orders.csv: no column 'amount'"):
+        load_orders_and_mailings(orders, mailings)
+
+
+def test_id_list_keeps_each_id_once(write_file):
+    loaded = load_id_list(write_file("suppress.csv", csv_text("customer_id,reason", "A1,moved", " A1,moved", ",deceased", "B2,")))
+    # A1 twice (once padded), one row with a blank id, B2: two distinct ids.
+    assert ids_of(loaded) == ["A1", "B2"]
+    assert repair_count(loaded.repairs, "blank customer id") == 1
+
+
+def test_parquet_orders_load_like_the_same_csv(tmp_path, write_file):
+    from_parquet = load_orders(write_parquet(tmp_path / "orders.parquet", typed_orders()))
+    from_csv = load_orders(write_file("orders.csv", GOOD_ORDERS))
+    # The same three orders, whatever the format.
+    assert ids_of(from_parquet) == ids_of(from_csv)
+    assert dates_of(from_parquet) == dates_of(from_csv)
+    assert from_parquet.frame["amount"].tolist() == from_csv.frame["amount"].tolist()
+    assert from_parquet.repairs == {}
+
+
+def test_parquet_missing_column_is_refused_and_the_option_fixes_it(tmp_path):
+    path = write_parquet(tmp_path / "orders.parquet", typed_orders().rename(columns={"amount": "value"}))
+    with pytest.raises(InputError, match=r"orders.parquet: no column 'amount' .*--amount-column"):
+        load_orders(path)
+    assert load_orders(path, amount_column="value").frame["amount"].tolist() == [10.0, 25.5, 12.0]
+
+
+@ANY_FILE_SETTINGS
+@given(content=ANY_FILE)
+def test_load_orders_accepts_or_refuses_any_file(content):
+    """Whatever the bytes: a tidy result or an InputError, never another exception."""
+    with file_holding(content) as path:
+        try:
+            loaded = load_orders(path)
+        except InputError as exc:
+            assert str(exc).startswith(str(path))
+            return
+        # A tidy result has the three standard columns, no blank or padded id and only finite amounts.
+        assert list(loaded.frame.columns) == ["customer_id", "order_date", "amount"]
+        ids = [str(i) for i in loaded.frame["customer_id"]]
+        assert all(i == i.strip() and i != "" for i in ids)
+        assert np.isfinite(loaded.frame["amount"].to_numpy()).all()
+        assert all(count > 0 for count in loaded.repairs.values())
+        try:
+            build_panel(loaded)
+        except InputError:
+            pass
+
+
+# ---------------------------------------------------------------- the customer-quarter table
+
+
+ORDERS = """customer_id,order_date,amount
+A,2023-01-15,40
+A,2023-02-20,10
+A,2023-08-03,25
+A,2023-08-30,-25
+B,2023-04-02,60
+B,2024-01-09,15
+C,2023-11-11,30
+"""
+
+
+MAILINGS = """customer_id,mail_date
+A,2023-04-01
+A,2023-07-01
+B,2023-07-01
+B,2023-10-01
+C,2024-01-01
+"""
+
+
+# The same history as one row per customer and quarter with a purchase or a mailing
+# (what GROUP BY customer_id, quarter gives): A's third quarter nets to 0, so it is not a purchase.
+QUARTERS = """customer_id,quarter,purchased,spend,mailed
+A,2023-01-01,1,50,0
+A,2023-04-01,0,0,1
+A,2023-07-01,0,0,1
+B,2023-04-01,1,60,0
+B,2023-07-01,0,0,1
+B,2023-10-01,0,0,1
+B,2024-01-01,1,15,0
+C,2023-10-01,1,30,0
+C,2024-01-01,0,0,1
+"""
+
+
+def write(tmp_path, name, text):
+    path = tmp_path / name
+    path.write_text(text)
+    return str(path)
+
+
+def test_quarterly_table_gives_the_same_panel_as_orders_and_mailings(tmp_path):
+    raw = panel_from_files(write(tmp_path, "orders.csv", ORDERS), write(tmp_path, "mailings.csv", MAILINGS), as_of="2024-03-31")
+    table = panel_from_files(write(tmp_path, "quarters.csv", QUARTERS))
+    assert table.mailing_history and table.end_quarter == raw.end_quarter
+    np.testing.assert_array_equal(table.customer_ids, raw.customer_ids)
+    np.testing.assert_array_equal(table.first_quarter, raw.first_quarter)
+    np.testing.assert_array_equal(table.purchased, raw.purchased)
+    np.testing.assert_array_equal(table.mailed, raw.mailed)
+    np.testing.assert_allclose(table.spend, raw.spend)
+
+
+def test_quarterly_table_as_parquet_and_without_mailed_column(tmp_path):
+    frame = pd.read_csv(pd.io.common.StringIO(QUARTERS)).drop(columns="mailed")
+    path = tmp_path / "quarters.parquet"
+    frame.to_parquet(path)
+    panel = panel_from_files(str(path))
+    assert not panel.mailing_history
+    # Without a mailed column every quarter after the first purchase counts as mailed.
+    assert panel.mailed[:, 1:].sum() == panel.n.sum()
+
+
+def test_quarterly_table_refuses_a_separate_mailings_file(tmp_path):
+    with pytest.raises(InputError, match="drop --mailings"):
+        panel_from_files(write(tmp_path, "quarters.csv", QUARTERS), write(tmp_path, "mailings.csv", MAILINGS))
+
+
+def test_quarterly_flags_must_be_zero_or_one(tmp_path):
+    with pytest.raises(InputError, match="row 3, column purchased: 'maybe'"):
+        panel_from_files(write(tmp_path, "quarters.csv", QUARTERS.replace("A,2023-04-01,0,0,1", "A,2023-04-01,maybe,0,1")))
+
+
+def test_every_command_reads_the_quarterly_table(tmp_path):
+    path = write(tmp_path, "quarters.csv", QUARTERS)
+    result = subprocess.run([sys.executable, "-m", "lapsewise", "summary", path], capture_output=True, text=True)
+    assert result.returncode == 0, result.stderr
+    assert "3 customers" in result.stdout
+    # Output to a pipe shows no progress bar.
+    fit = subprocess.run([sys.executable, "-m", "lapsewise", "fit", path, "--out", str(tmp_path / "m.json")], capture_output=True, text=True)
+    assert fit.returncode == 0, fit.stderr
+    assert "\x1b[?25l" not in fit.stdout and "━" not in fit.stderr
+
+
+def test_an_as_of_centuries_after_the_orders_is_refused_before_memory_is_spent(tmp_path):
+    with pytest.raises(InputError, match="up to 400 quarters"):
+        panel_from_files(write(tmp_path, "orders.csv", ORDERS), as_of="2200-12-31")

@@ -1,0 +1,53 @@
+"""The pipeline: the stages run side by side give what they give one after another."""
+
+import numpy as np
+import pandas as pd
+from numpy.testing import assert_allclose
+
+from builders import MODEL, POLICY, SPEND, small_panel
+from lapsewise.app import pipeline
+from lapsewise.budget.integer_program import make_plan
+from lapsewise.budget.values import (
+    band_program,
+    band_values,
+    customer_order_values,
+    customer_values,
+    valued_states,
+)
+from lapsewise.data.histories import compress
+from lapsewise.data.summary import summarize
+from lapsewise.decide.order_values import spend_bands
+from lapsewise.decide.program import decision_process
+from lapsewise.decide.stop_table import build_stop_table
+from lapsewise.files.policy_file import Economics, Policy, Segments
+from lapsewise.model.posterior import posterior
+
+
+def test_customer_values_side_by_side_equal_the_stages_in_turn():
+    panel = small_panel()
+    ours = pipeline.value_customers(MODEL, panel, POLICY)
+    process = decision_process(MODEL.churn, None)
+    histories, summary = compress(panel), summarize(panel)
+    post = posterior(process, histories)
+    bands = spend_bands(SPEND, POLICY.economics, 3)
+    states = valued_states(histories, bands, customer_order_values(SPEND, POLICY, summary))
+    values = np.zeros((len(states.history), 2))
+    for index, band in enumerate(bands):
+        members = states.in_band(index)
+        program = band_program(process, POLICY, band.order_value, states, members)
+        values[members] = band_values(program, POLICY, states, members, post.alive_now[states.history[members]])
+    theirs = customer_values(panel.customer_ids, summary, POLICY, histories, post, states, values)
+    assert_allclose(ours.values, theirs.values, rtol=0, atol=0)
+    assert (ours.segment == theirs.segment).all() and np.array_equal(ours.p_buy, theirs.p_buy)
+
+
+def test_stop_table_and_plan_side_by_side_equal_them_in_turn():
+    economics = Economics(0.45, 4.0, 0.9, 0.10, 6)
+    together = pipeline.stop_table(MODEL, Policy(economics, POLICY.versions, Segments(), "test"))
+    in_turn = build_stop_table(MODEL.churn, SPEND, economics, 3, each=map)
+    pd.testing.assert_frame_equal(together.rows, in_turn.rows)
+    values = pipeline.value_customers(MODEL, small_panel(), POLICY)
+    side_by_side, one_by_one = pipeline.plan(values, POLICY, 60.0), make_plan(values, POLICY, 60.0)
+    assert side_by_side.solution.objective == one_by_one.solution.objective
+    assert side_by_side.shadow_price == one_by_one.shadow_price
+    np.testing.assert_array_equal(side_by_side.assignment, one_by_one.assignment)

@@ -1,0 +1,35 @@
+"""The policy simulation: the optimal policy matches the program and beats every rule of thumb; seeds repeat."""
+
+import numpy as np
+import pytest
+
+from lapsewise.evaluate.policies import simulate_policies
+from lapsewise.files.policy_file import Economics
+from lapsewise.model.process import Process
+
+FIT = Process(alpha=1.1, beta=2.4, gamma=0.7, delta=4.5, rho=0.3)
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.3])
+def test_simulated_optimal_policy_matches_the_program_and_beats_every_rule(rho):
+    process = Process(FIT.alpha, FIT.beta, FIT.gamma, FIT.delta, rho)
+    economics = Economics(0.45, 4.0, 0.9, 0.10, 12)
+    result = simulate_policies(process, economics, 45.0, customers=40_000, quarters=12, seed=5)
+    summary = result.summary.set_index("policy")
+    optimal = summary.loc["optimal"]
+    # The program's value of a new customer lies within 4 standard errors of the simulated mean.
+    assert abs(result.program_value - optimal.mean_profit) < 4 * optimal.profit_std_error
+    # No rule of thumb beats the optimal policy by more than 4 standard errors of the paired difference.
+    others = summary.drop(index="optimal")
+    assert np.all(others.difference_to_optimal < 4 * others.difference_std_error)
+    # And the crude rules lose clearly.
+    assert others.loc["always mail", "difference_to_optimal"] < -4 * others.loc["always mail", "difference_std_error"]
+    assert others.loc["stop after 1", "difference_to_optimal"] < -4 * others.loc["stop after 1", "difference_std_error"]
+
+
+def test_simulation_is_deterministic_for_a_seed():
+    process = Process(FIT.alpha, FIT.beta, FIT.gamma, FIT.delta, 0.3)
+    economics = Economics(0.45, 4.0, 0.9, 0.10, 6)
+    first = simulate_policies(process, economics, 45.0, 2000, 6, seed=9).to_dict()
+    second = simulate_policies(process, economics, 45.0, 2000, 6, seed=9).to_dict()
+    assert first == second

@@ -1,0 +1,36 @@
+"""Per-customer scores and lapse curves of a fitted model."""
+
+import numpy as np
+from numpy.testing import assert_allclose
+
+from builders import TRUTH, simulated_panel
+from lapsewise.data.summary import summarize
+from lapsewise.model.churn import ChurnFit
+from lapsewise.model.fitted import Model
+from lapsewise.model.scores import lapse_curves, quarterly_rate, score_customers
+
+
+def test_scores_are_probabilities_and_dert_exceeds_one_quarter():
+    panel = simulated_panel(3_000, seed=12)
+    model = Model(churn=ChurnFit(**TRUTH), spend=None, as_of="x", end_quarter=panel.end_quarter, fiscal_year_start=1, customers=panel.customers)
+    scores = score_customers(model, panel, horizon=4, annual_discount_rate=0.1)
+    assert len(scores) == panel.customers
+    assert scores["p_alive"].between(0, 1).all() and scores["p_buy"].between(0, 1).all()
+    assert (scores["p_buy"] <= scores["p_alive"]).all()
+    # Expected purchases over 4 quarters exceed next quarter's chance, and DERT (infinite horizon,
+    # discounted) exceeds the discounted next-quarter chance.
+    assert (scores["expected_orders"] >= scores["p_buy"]).all()
+    assert (scores["dert"] >= scores["p_buy"] / (1 + quarterly_rate(0.1)) - 1e-12).all()
+
+
+def test_quarterly_rate_compounds_to_the_annual_rate():
+    # (1 + r_q)^4 = 1 + r_annual (compound interest, handbook identity).
+    assert_allclose((1 + quarterly_rate(0.10)) ** 4, 1.10)
+
+
+def test_lapse_curves_cover_each_present_band():
+    panel = simulated_panel(3_000, seed=13)
+    model = Model(churn=ChurnFit(**TRUTH), spend=None, as_of="x", end_quarter=panel.end_quarter, fiscal_year_start=1, customers=panel.customers)
+    curves = lapse_curves(model, summarize(panel), max_silent=6)
+    assert set(curves["k"]) == set(range(7))
+    assert (curves.groupby("band")["p_buy"].apply(lambda s: np.all(np.diff(s.to_numpy()) <= 1e-12))).all()
