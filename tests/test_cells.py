@@ -112,3 +112,33 @@ def test_parquet_date_outside_the_supported_years_is_refused(tmp_path):
     frame.loc[0, "order_date"] = pd.Timestamp(dt.datetime(1000, 1, 15)).as_unit("s")
     with pytest.raises(InputError, match=r"row 1, column order_date: .*outside the years"):
         load_orders(write_parquet(tmp_path / "orders.parquet", frame))
+
+
+# ---------------------------------------------------------------- ids in one canonical form
+
+
+@pytest.mark.parametrize(
+    "written, canonical",
+    [
+        (["1.0", "42.00", "007", "1.5"], ["1", "42", "007", "1.5"]),  # whole numbers written as decimals; leading zeros kept
+        ([" A1 ", "A1\t"], ["A1", "A1"]),  # surrounding spaces
+        (["Jose\u0301", "Jos\u00e9"], ["Jos\u00e9", "Jos\u00e9"]),  # decomposed (NFD) and composed (NFC) accents: one id
+    ],
+    ids=["decimal-numbers", "padded", "unicode-forms"],
+)
+def test_ids_are_read_in_one_canonical_form(write_file, written, canonical):
+    rows = [f"{customer},2023-0{i + 1}-15,10" for i, customer in enumerate(written)]
+    loaded = load_orders(write_file("orders.csv", orders_text(*rows)))
+    assert ids_of(loaded) == canonical
+
+
+def test_float_and_integer_id_columns_read_as_plain_whole_numbers(tmp_path):
+    # A Parquet export that typed the ids as floats (1.0, 2.0) or integers (1, 2) gives the text ids "1", "2".
+    for ids in ([1.0, 2.0], [1, 2]):
+        frame = typed_orders().iloc[:2].assign(customer_id=ids)
+        assert ids_of(load_orders(write_parquet(tmp_path / "orders.parquet", frame))) == ["1", "2"]
+
+
+def test_an_id_that_cannot_be_an_id_is_refused_with_its_row(write_file):
+    with pytest.raises(InputError, match="row 3, column customer_id: an id of 300 characters"):
+        load_orders(write_file("orders.csv", orders_text("A1,2023-01-15,10", "x" * 300 + ",2023-01-15,10")))

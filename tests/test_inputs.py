@@ -13,26 +13,10 @@ import pytest
 from hypothesis import given
 
 from builders import typed_orders, write_parquet
-from conftest import (
-    ANY_FILE,
-    ANY_FILE_SETTINGS,
-    GOOD_ORDERS,
-    MAILINGS_HEADER,
-    ORDERS_HEADER,
-    csv_text,
-    file_holding,
-    mailings_text,
-    orders_text,
-    repair_count,
-)
+from conftest import ANY_FILE, ANY_FILE_SETTINGS, GOOD_ORDERS, MAILINGS_HEADER, ORDERS_HEADER, csv_text, file_holding, mailings_text, orders_text, repair_count
 from lapsewise.data.panel import build_panel, panel_from_files
 from lapsewise.errors import InputError
-from lapsewise.files.inputs import (
-    load_id_list,
-    load_mailings,
-    load_orders,
-    load_orders_and_mailings,
-)
+from lapsewise.files.inputs import load_id_list, load_mailings, load_orders, load_orders_and_mailings
 
 
 def ids_of(loaded) -> list[str]:
@@ -263,5 +247,5 @@ def test_every_command_reads_the_quarterly_table(tmp_path):
 
 
 def test_an_as_of_centuries_after_the_orders_is_refused_before_memory_is_spent(tmp_path):
-    with pytest.raises(InputError, match="up to 400 quarters"):
+    with pytest.raises(InputError, match="up to 120 quarters"):
         panel_from_files(write(tmp_path, "orders.csv", ORDERS), as_of="2200-12-31")

@@ -7,15 +7,7 @@ from __future__ import annotations
 
 from numpy.testing import assert_array_equal
 
-from conftest import (
-    GOOD_ORDERS,
-    Q1_2023,
-    THREE_CUSTOMERS,
-    mailings_text,
-    orders_text,
-    repair_count,
-    row_of,
-)
+from conftest import GOOD_ORDERS, Q1_2023, THREE_CUSTOMERS, mailings_text, orders_text, repair_count, row_of
 from lapsewise.data.panel import panel_from_files, truncate
 from lapsewise.data.summary import summarize
 

@@ -12,9 +12,10 @@ import datetime as dt
 import pytest
 from numpy.testing import assert_array_equal
 
-from conftest import Q1_2023, repair_count, row_of
+from conftest import Q1_2023, orders_text, repair_count, row_of
 from lapsewise.data.quarters import quarter_start
 from lapsewise.errors import InputError
+from lapsewise.files.inputs import load_orders
 
 
 @pytest.mark.parametrize(
@@ -101,3 +102,35 @@ def test_order_dates_with_a_time_fall_in_their_calendar_quarter(make_panel):
     panel = make_panel(["A1,2023-03-31T23:59:59,10", "A1,2023-04-01 00:00:01,20"], as_of="2023-06-30")
     # The last second of March is in January-March, the first second of April in April-June.
     assert_array_equal(panel.spend[0], [10, 20])
+
+
+# ---------------------------------------------------------------- dates that cannot end the history
+
+
+def test_an_order_dated_in_the_future_is_refused_with_its_row(make_panel):
+    # Without --as-of the latest order would set the as-of quarter: one typo would make every customer look silent.
+    with pytest.raises(InputError, match=r"row 4: the date 2099-05-01 is after today"):
+        make_panel(["A1,2023-01-15,10", "B2,2023-02-01,5", "A1,2099-05-01,7"])
+    # With --as-of it is simply after the as-of quarter: left out and counted.
+    panel = make_panel(["A1,2023-01-15,10", "B2,2023-02-01,5", "A1,2099-05-01,7"], as_of="2023-06-30")
+    assert repair_count(panel.counts, "orders after the as-of quarter") == 1
+
+
+def test_a_stray_order_years_after_the_rest_is_refused_with_its_row(make_panel):
+    # 2,000 orders in 2021 and one in 2025: from the fourth quarter of 2021 to the first of 2025 is 13 quarters.
+    rows = [f"C{i},2021-{i % 12 + 1:02d}-10,10" for i in range(2_000)] + ["Z9,2025-03-31,4"]
+    with pytest.raises(InputError, match=r"row 2002: the date 2025-03-31 is 13 quarters after nearly every other \(99.9% by 2021-12-10\)"):
+        make_panel(rows)
+
+
+def test_dates_with_a_time_zone_keep_their_own_calendar_day(write_file, tmp_path):
+    # An order at 01:00 on 1 January in Tokyo (+09:00) is a January order, in the first quarter, whatever UTC says.
+    loaded = load_orders(write_file("orders.csv", orders_text("A1,2023-01-01T01:00+09:00,10", "A1,2023-04-02T23:30-05:00,10")))
+    assert [str(d) for d in loaded.frame["order_date"]] == ["2023-01-01 01:00:00", "2023-04-02 23:30:00"]
+    import pandas as pd
+
+    aware = pd.DataFrame(
+        {"customer_id": ["A1"], "order_date": pd.to_datetime(["2023-01-01 01:00"]).tz_localize("Asia/Tokyo"), "amount": [10.0]}
+    )
+    aware.to_parquet(tmp_path / "orders.parquet", index=False)
+    assert str(load_orders(tmp_path / "orders.parquet").frame["order_date"][0]) == "2023-01-01 01:00:00"

@@ -106,3 +106,48 @@ def test_duplicate_rows_agree_with_pandas(rows):
     frame = pd.DataFrame(rows, columns=["customer_id", "amount", "order_date", "count"])
     frame["order_date"] = pd.to_datetime(frame["order_date"])
     assert duplicate_rows(frame).tolist() == frame.duplicated(keep="first").tolist()
+
+
+# ---------------------------------------------------------------- hostile files
+
+
+def test_a_fifo_or_a_device_is_refused_before_anything_reads_it(tmp_path):
+    import os
+
+    fifo = tmp_path / "orders.csv"
+    os.mkfifo(fifo)  # reading it would wait forever for a writer
+    for path in (fifo, "/dev/zero"):
+        with pytest.raises(InputError, match="is not a regular file"):
+            load_orders(path)
+
+
+def test_a_header_of_a_megabyte_of_commas_is_refused_at_once(write_file):
+    # Without a line break in the first 64 KB there is no header row to read; pandas would spend minutes and gigabytes.
+    path = write_file("orders.csv", "," * 1_000_000 + "\n1,2,3\n")
+    with pytest.raises(InputError, match="no line break in the first 64 KB"):
+        load_orders(path)
+    wide = write_file("wide.csv", ",".join(f"c{i}" for i in range(2_000)) + "\n" + ",".join("1" * 2_000) + "\n")
+    with pytest.raises(InputError, match="the header row has 2,000 fields"):
+        load_orders(wide)
+
+
+def test_nested_parquet_columns_are_refused_only_when_used(tmp_path):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    base = {"order_date": pa.array(pd.to_datetime(["2023-01-15", "2023-05-02"])), "amount": pa.array([10.0, 12.0])}
+    listed = tmp_path / "lists.parquet"
+    pq.write_table(pa.table({"customer_id": pa.array([[1], [2]]), **base}), listed)
+    with pytest.raises(InputError, match="'customer_id' holds lists or records"):
+        load_orders(listed)
+    extra = tmp_path / "extra.parquet"
+    pq.write_table(pa.table({"customer_id": pa.array(["A1", "B2"]), **base, "tags": pa.array([{"a": 1}, {"a": 2}])}), extra)
+    assert load_orders(extra).frame["customer_id"].tolist() == ["A1", "B2"]  # an unused nested column is no obstacle
+
+
+def test_an_unreadable_or_impossible_path_is_refused(tmp_path):
+    through_a_file = tmp_path / "orders.csv"
+    through_a_file.write_text("x")
+    for path in (through_a_file / "inner.csv", tmp_path / ("n" * 300 + ".csv")):
+        with pytest.raises(InputError):
+            load_orders(path)

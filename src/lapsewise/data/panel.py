@@ -17,20 +17,9 @@ import numpy as np
 import pandas as pd
 
 from lapsewise.data.codes import integer_codes
-from lapsewise.data.quarters import (
-    as_of_quarter,
-    parse_as_of,
-    quarter_end,
-    quarter_index,
-)
+from lapsewise.data.quarters import as_of_quarter, check_latest_date, parse_as_of, quarter_end, quarter_index
 from lapsewise.errors import InputError
-from lapsewise.files.inputs import (
-    AMOUNT_COLUMN,
-    ID_COLUMN,
-    MAIL_DATE_COLUMN,
-    ORDER_DATE_COLUMN,
-    Loaded,
-)
+from lapsewise.files.inputs import AMOUNT_COLUMN, ID_COLUMN, MAIL_DATE_COLUMN, ORDER_DATE_COLUMN, Loaded
 
 
 @dataclass(frozen=True)
@@ -143,7 +132,7 @@ def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_sta
     counts = dict(orders.repairs)
     frame = orders.frame
     dates = frame[ORDER_DATE_COLUMN].to_numpy()
-    end_quarter = as_of_quarter(orders.name, dates, as_of, fiscal_year_start)
+    end_quarter = as_of_quarter(orders.name, dates, as_of, fiscal_year_start, orders.row_label)
     quarters = quarter_index(dates, fiscal_year_start)
     ids = frame[ID_COLUMN].array
     codes = np.asarray(ids.codes, dtype=np.int64)
@@ -318,9 +307,13 @@ def panel_from_files(
             raise InputError(f"{orders_path}: is a customer-quarter table, which already says which quarters were mailed; drop --mailings")
         orders, mailings = load_quarterly(orders_path, id_column)
         if as_of_date is None:
-            last = int(quarter_index(orders.frame[ORDER_DATE_COLUMN].to_numpy(), fiscal_year_start).max())
+            dates = orders.frame[ORDER_DATE_COLUMN].to_numpy()
+            check_latest_date(orders.name, dates, orders.row_label)
+            last = int(quarter_index(dates, fiscal_year_start).max())
             if mailings is not None and len(mailings.frame):
-                last = max(last, int(quarter_index(mailings.frame[MAIL_DATE_COLUMN].to_numpy(), fiscal_year_start).max()))
+                mail_dates = mailings.frame[MAIL_DATE_COLUMN].to_numpy()
+                check_latest_date(mailings.name, mail_dates, mailings.row_label)
+                last = max(last, int(quarter_index(mail_dates, fiscal_year_start).max()))
             as_of_date = quarter_end(last, fiscal_year_start)
         return build_panel(orders, mailings, as_of_date, fiscal_year_start)
     # The purchase side of the panel is built from the orders while the (larger) mailings file is still loading.

@@ -9,13 +9,14 @@ The quarter of the (fiscal) year of quarter ``q`` is ``q % 4`` (0 for the first)
 from __future__ import annotations
 
 import datetime as dt
+from typing import Callable
 
 import numpy as np
 import pandas as pd
 
 from lapsewise.errors import InputError
 
-MAX_QUARTERS = 400  # a century of quarters: the panel is customers x quarters, so this bounds its memory
+MAX_QUARTERS = 120  # thirty years of quarters: the panel is customers x quarters and the stop-rule program grows with the history too
 
 
 _PER_DAY = {"h": 24, "m": 24 * 60, "s": 86_400, "ms": 86_400_000, "us": 86_400_000_000, "ns": 86_400_000_000_000}
@@ -78,12 +79,37 @@ def parse_as_of(text: str | None) -> dt.date | None:
         raise InputError(f"--as-of: '{text}' is not a date; write it as YYYY-MM-DD") from None
 
 
-def as_of_quarter(name: str, order_dates: np.ndarray, as_of: dt.date | None, fiscal_year_start: int) -> int:
-    """The last complete quarter on or before the as-of date (default: the last order date)."""
+STRAY_QUARTERS = 4
+"""An order more than this many quarters after nearly all others (99.9%) is taken for a mistyped date."""
+
+
+def check_latest_date(name: str, dates: np.ndarray, row_of: Callable[[int], int] = lambda index: index + 2) -> dt.date:
+    """The latest date, refused when it cannot be the end of the history: after today, or a stray far past the rest.
+
+    Without ``--as-of`` the latest order sets the as-of quarter, so one mistyped year
+    (2099 for 2019) would make every customer look silent for decades. ``row_of`` turns
+    an index of ``dates`` into the row number the file shows.
+    """
+    last = int(np.argmax(dates))
+    latest = pd.Timestamp(dates[last]).date()
+    today = dt.date.today()
+    hint = "fix the date, or pass --as-of to set the last day used (later orders are then left out and counted)"
+    if latest > today:
+        raise InputError(f"{name}, row {row_of(last)}: the date {latest} is after today ({today}); {hint}")
+    days = dates.astype("datetime64[D]").astype(np.int64)
+    bulk = dt.date(1970, 1, 1) + dt.timedelta(days=int(np.quantile(days, 0.999, method="higher")))
+    gap = (latest.year - bulk.year) * 4 + (latest.month - 1) // 3 - (bulk.month - 1) // 3
+    if gap > STRAY_QUARTERS:
+        raise InputError(f"{name}, row {row_of(last)}: the date {latest} is {gap} quarters after nearly every other (99.9% by {bulk}); {hint}")
+    return latest
+
+
+def as_of_quarter(name: str, order_dates: np.ndarray, as_of: dt.date | None, fiscal_year_start: int, row_of: Callable[[int], int] = lambda index: index + 2) -> int:
+    """The last complete quarter on or before the as-of date (default: the last order date, checked by :func:`check_latest_date`)."""
     first = pd.Timestamp(order_dates.min()).date()
     given = as_of is not None
     if as_of is None:
-        as_of = pd.Timestamp(order_dates.max()).date()
+        as_of = check_latest_date(name, order_dates, row_of)
     elif as_of < first:
         raise InputError(f"--as-of {as_of} is before the first order in {name} ({first}); choose a later date")
     elif as_of > pd.Timestamp.max.date():

@@ -19,14 +19,8 @@ import numpy as np
 import pandas as pd
 
 from lapsewise.errors import InputError
-from lapsewise.files.cells import (
-    clean_ids,
-    drop_blank_ids,
-    parse_amounts,
-    parse_dates,
-    parse_flags,
-)
-from lapsewise.files.tables import duplicate_rows, header_columns, read_table
+from lapsewise.files.cells import clean_ids, drop_blank_ids, parse_amounts, parse_dates, parse_flags
+from lapsewise.files.tables import duplicate_rows, header_columns, read_table, row_label
 
 ID_COLUMN = "customer_id"
 ORDER_DATE_COLUMN = "order_date"
@@ -47,16 +41,29 @@ class Loaded:
         The tidy rows: ``customer_id`` (Categorical of text ids) and the file's own columns.
     repairs : dict
         What was repaired or left out, as ``{description: count}``; only non-zero counts.
+    kept : numpy.ndarray or None
+        The file row of each frame row, counted from 0 over the data rows (None: every row was kept).
+    is_csv : bool
+        Whether the file was CSV (its rows are numbered as a spreadsheet shows them, the header being row 1).
     """
 
     name: str
     frame: pd.DataFrame
     repairs: dict[str, int] = field(default_factory=dict)
+    kept: np.ndarray | None = None
+    is_csv: bool = True
+
+    def row_label(self, index: int) -> int:
+        """The row number a person sees for frame row ``index``."""
+        return row_label(int(index if self.kept is None else self.kept[index]), self.is_csv)
 
 
 def _require_columns(name: str, frame: pd.DataFrame, wanted: dict[str, str]) -> None:
-    """Check that every wanted column exists. ``wanted`` maps column name to the option that renames it."""
+    """Check that every wanted column exists and holds plain values. ``wanted`` maps column name to the option that renames it."""
+    nested = set(frame.attrs.get("nested", ()))
     for column, option in wanted.items():
+        if column in nested:
+            raise InputError(f"{name}: the column '{column}' holds lists or records (a nested Parquet type); export it as plain values")
         if column not in frame.columns:
             found = ", ".join(f"'{c}'" for c in list(frame.columns)[:8])
             hint = f"; rename the column or pass {option}" if option else "; rename the column"
@@ -73,6 +80,10 @@ def _frame(columns: dict, keep: np.ndarray) -> pd.DataFrame:
     if not keep.all():
         columns = {name: values[keep] for name, values in columns.items()}
     return pd.DataFrame(columns, copy=False)
+
+
+def _kept(keep: np.ndarray) -> np.ndarray | None:
+    return None if keep.all() else np.flatnonzero(keep)
 
 
 def _count_extra_columns(frame: pd.DataFrame, used: list[str], repairs: dict[str, int]) -> None:
@@ -103,7 +114,7 @@ def load_orders(
     duplicated = duplicate_rows(frame.assign(**{id_column: factorized[0]}))
     if duplicated.any():
         repairs["exact duplicate rows dropped"] = int(duplicated.sum())
-    ids = clean_ids(name, frame[id_column], repairs, factorized)
+    ids = clean_ids(name, frame[id_column], repairs, factorized, id_column, is_csv)
     keep = drop_blank_ids(name, ids, ~duplicated, repairs)
     amounts, blank_amount = parse_amounts(name, amount_column, frame[amount_column], is_csv)
     dropped_blank = blank_amount & keep
@@ -119,7 +130,7 @@ def load_orders(
         repairs["return rows (negative amounts) netted into their quarter"] = int(returns.sum())
     if not keep.any():
         raise InputError(f"{name}: no usable order rows (every row has a blank id or amount); check the file")
-    return Loaded(name, _frame({ID_COLUMN: ids, ORDER_DATE_COLUMN: dates, AMOUNT_COLUMN: amounts}, keep), repairs)
+    return Loaded(name, _frame({ID_COLUMN: ids, ORDER_DATE_COLUMN: dates, AMOUNT_COLUMN: amounts}, keep), repairs, _kept(keep), is_csv)
 
 
 def load_mailings(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
@@ -133,10 +144,10 @@ def load_mailings(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
     _require_columns(name, frame, {id_column: "--id-column", MAIL_DATE_COLUMN: ""})
     used = [id_column, MAIL_DATE_COLUMN] + ([VERSION_COLUMN] if VERSION_COLUMN in frame.columns else [])
     _count_extra_columns(frame, used, repairs)
-    ids = clean_ids(name, frame[id_column], repairs)
+    ids = clean_ids(name, frame[id_column], repairs, None, id_column, is_csv)
     keep = drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
     dates = parse_dates(name, MAIL_DATE_COLUMN, frame[MAIL_DATE_COLUMN], is_csv, keep)
-    return Loaded(name, _frame({ID_COLUMN: ids, MAIL_DATE_COLUMN: dates}, keep), repairs)
+    return Loaded(name, _frame({ID_COLUMN: ids, MAIL_DATE_COLUMN: dates}, keep), repairs, _kept(keep), is_csv)
 
 
 def load_orders_and_mailings(
@@ -173,7 +184,7 @@ def load_id_list(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
     frame, is_csv, repairs = read_table(path)
     _require_columns(name, frame, {id_column: "--id-column"})
     _count_extra_columns(frame, [id_column], repairs)
-    ids = clean_ids(name, frame[id_column], repairs)
+    ids = clean_ids(name, frame[id_column], repairs, None, id_column, is_csv)
     keep = drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
     unique = pd.Index(np.asarray(ids[keep]).astype(str)).unique()
     return Loaded(name, pd.DataFrame({ID_COLUMN: unique}), repairs)
@@ -184,7 +195,7 @@ def load_attributes(path: str | Path, column: str, id_column: str = ID_COLUMN) -
     name = str(path)
     frame, is_csv, repairs = read_table(path)
     _require_columns(name, frame, {id_column: "--id-column", column: "--segment-column"})
-    ids = clean_ids(name, frame[id_column], repairs)
+    ids = clean_ids(name, frame[id_column], repairs, None, id_column, is_csv)
     keep = drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
     out = pd.DataFrame({ID_COLUMN: np.asarray(ids[keep]).astype(str), column: frame[column].astype(str).str.strip().to_numpy()[keep]})
     duplicated = out.duplicated(subset=[ID_COLUMN], keep="first").to_numpy()
@@ -221,7 +232,7 @@ def load_quarterly(path: str | Path, id_column: str = ID_COLUMN) -> tuple[Loaded
     _require_columns(name, frame, {id_column: "--id-column", QUARTER_COLUMN: "", PURCHASED_COLUMN: "", SPEND_COLUMN: ""})
     has_mailed = MAILED_COLUMN in frame.columns
     _count_extra_columns(frame, [id_column, QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN] + ([MAILED_COLUMN] if has_mailed else []), repairs)
-    ids = clean_ids(name, frame[id_column], repairs)
+    ids = clean_ids(name, frame[id_column], repairs, None, id_column, is_csv)
     keep = drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
     dates = parse_dates(name, QUARTER_COLUMN, frame[QUARTER_COLUMN], is_csv, keep)
     purchased = parse_flags(name, PURCHASED_COLUMN, frame[PURCHASED_COLUMN], is_csv) & keep
@@ -233,8 +244,9 @@ def load_quarterly(path: str | Path, id_column: str = ID_COLUMN) -> tuple[Loaded
     orders = _frame({ID_COLUMN: ids, ORDER_DATE_COLUMN: dates, AMOUNT_COLUMN: spend}, purchased)
     if not len(orders):
         raise InputError(f"{name}: no row has purchased = 1; a customer-quarter table needs the quarters with purchases")
+    orders_kept = _kept(purchased)
     mailings = None
     if has_mailed:
         mailed = parse_flags(name, MAILED_COLUMN, frame[MAILED_COLUMN], is_csv) & keep
-        mailings = Loaded(name, _frame({ID_COLUMN: ids, MAIL_DATE_COLUMN: dates}, mailed), {})
-    return Loaded(name, orders, repairs), mailings
+        mailings = Loaded(name, _frame({ID_COLUMN: ids, MAIL_DATE_COLUMN: dates}, mailed), {}, _kept(mailed), is_csv)
+    return Loaded(name, orders, repairs, orders_kept, is_csv), mailings

@@ -9,15 +9,20 @@ with one line naming the file and what to do.
 from __future__ import annotations
 
 import csv
+import os
 import warnings
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 
 from lapsewise.errors import InputError
 
 _SNIFF_BYTES = 64 * 1024
+"""The bytes read to recognise a file; its header row must end within them."""
+MAX_COLUMNS = 1_000
+"""More columns than this is an export gone wrong; refused before pandas spends memory on them."""
 
 def row_label(index: int, is_csv: bool) -> int:
     """The row number a person sees: spreadsheet rows for CSV (header is row 1), 1-based for Parquet."""
@@ -25,12 +30,24 @@ def row_label(index: int, is_csv: bool) -> int:
 
 
 def require_file(path: str | Path, missing_hint: str, kind: str = "a CSV or Parquet file") -> Path:
-    """The path of an existing file, or an InputError saying what to do instead."""
+    """The path of an existing regular file, or an InputError saying what to do instead.
+
+    A folder, a pipe (FIFO), a device such as ``/dev/zero`` or a socket is refused before
+    anything reads it: reading one could wait forever or never end.
+    """
     path = Path(path)
-    if not path.exists():
+    try:
+        exists, is_dir, is_file = path.exists(), path.is_dir(), path.is_file()
+    except OSError as exc:  # a name too long, a path through a file, no permission to look
+        raise InputError(f"{path}: cannot be opened ({exc.strerror or exc}); check the path") from None
+    if not exists:
         raise InputError(f"{path}: file not found; {missing_hint}")
-    if path.is_dir():
+    if is_dir:
         raise InputError(f"{path}: is a folder, not a file; give the path of {kind}")
+    if not is_file:
+        raise InputError(f"{path}: is not a regular file (a pipe, a device or a socket); give the path of {kind}")
+    if not os.access(path, os.R_OK):
+        raise InputError(f"{path}: cannot be read (no permission); check the file's permissions")
     return path
 
 
@@ -62,7 +79,12 @@ def _read_parquet(path: Path) -> pd.DataFrame:
         table = pq.read_table(path)
     except Exception as exc:  # pyarrow raises several types for damaged files
         raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]}); export it again") from None
-    frame = table.to_pandas()
+    if table.num_columns > MAX_COLUMNS:
+        raise InputError(f"{path}: has {table.num_columns:,} columns (at most {MAX_COLUMNS:,}); export only the columns needed")
+    # Lists, structs and maps are not plain values; a loader refuses such a column if it needs it.
+    nested = [field.name for field in table.schema if pa.types.is_nested(field.type)]
+    frame = table.drop_columns(nested).to_pandas()
+    frame.attrs["nested"] = [str(name).strip() for name in nested]
     if len(frame) == 0:
         raise InputError(f"{path}: has columns but no rows; export it again with data")
     _strip_column_names(path, frame)
@@ -89,6 +111,7 @@ def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, in
             raise InputError(
                 f"{path}: is not UTF-8 text (bad byte at position {exc.start}); save it as UTF-8 CSV or as Parquet"
             ) from None
+    _check_header(path, head)
     if head.startswith(b"\xef\xbb\xbf"):
         repairs["byte-order mark at the start of the file removed"] = 1
     if b"\r\n" in head:
@@ -129,6 +152,20 @@ def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, in
     if len(frame) == 0:
         raise InputError(f"{path}: has a header but no data rows; export it again with data")
     return frame, True, repairs
+
+
+def _check_header(path: Path, head: bytes) -> None:
+    """Refuse a header line too long or with too many fields before pandas reads the file."""
+    end = head.find(b"\n")
+    if end < 0 and len(head) >= _SNIFF_BYTES:
+        raise InputError(
+            f"{path}: no line break in the first {_SNIFF_BYTES // 1024} KB, so no header row to read; "
+            "export the data as CSV with a header row and one row per line"
+        )
+    line = head if end < 0 else head[:end]
+    fields = line.count(b",") + 1
+    if fields > MAX_COLUMNS:
+        raise InputError(f"{path}: the header row has {fields:,} fields (at most {MAX_COLUMNS:,}); check the delimiters")
 
 
 def _rows_with_surplus_fields(path: Path, width: int) -> int:
@@ -180,9 +217,12 @@ def duplicate_rows(frame: pd.DataFrame) -> np.ndarray:
 
 
 def header_columns(path: str | Path) -> list[str]:
-    """The column names of a CSV or Parquet file, read without loading its rows ([] when unreadable)."""
+    """The column names of a CSV or Parquet file, read without loading its rows ([] when unreadable or not a
+    regular file: a pipe or a device is never opened here, :func:`read_table` refuses it)."""
     path = Path(path)
     try:
+        if not path.is_file():
+            return []
         with open(path, "rb") as handle:
             head = handle.read(4)
         if head == b"PAR1":
@@ -190,7 +230,7 @@ def header_columns(path: str | Path) -> list[str]:
 
             return [str(c).strip() for c in pq.read_schema(path).names]
         with open(path, encoding="utf-8-sig", errors="replace") as handle:
-            return [c.strip().strip('"') for c in handle.readline().rstrip("\r\n").split(",")]
+            return [c.strip().strip('"') for c in handle.readline(_SNIFF_BYTES).rstrip("\r\n").split(",")]
     except (OSError, ValueError):
         return []
 
