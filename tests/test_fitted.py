@@ -29,7 +29,8 @@ def test_model_file_round_trip_and_keys(tmp_path):
     [
         ("not json", "not JSON"),
         ('{"a": 1}', "not a lapsewise model file"),
-        ('{"format": "lapsewise-model", "churn": {}}', "damaged"),
+        ('{"format": "lapsewise-model", "churn": {}}', "of version null"),
+        ('{"format": "lapsewise-model", "version": 1, "churn": {}}', "churn.alpha = null is not a number"),
     ],
 )
 def test_load_model_rejects_bad_files(tmp_path, content, message):

@@ -1,12 +1,15 @@
 """The model file: JSON written by ``lapsewise fit``, read back by every later command.
 
 This module knows the file's format (its ``format`` and ``version`` keys) and
-checks the parameters once, here at the edge; turning the checked data into a
+checks everything in it once, here at the edge: the types of the keys, and
+every parameter finite and in the range a fit can produce. A file that fails a
+check is refused with one line naming the key; turning the checked data into a
 model is :meth:`lapsewise.model.fitted.Model.from_dict`'s job.
 """
 
 from __future__ import annotations
 
+import datetime as dt
 import json
 import math
 from pathlib import Path
@@ -17,23 +20,98 @@ from lapsewise.files.tables import require_file
 MODEL_FORMAT = "lapsewise-model"
 MODEL_VERSION = 1
 
+CHURN_RANGE = (1e-4, 1e5)
+"""alpha, beta, gamma and delta: the fit searches 1e-3 to 1e4; a file outside this wider range was not written by it."""
+SPEND_RANGE = {"p": (1e-5, 1e5), "q": (1e-5, 1e5), "gamma": (1e-9, 1e12)}
+"""The order-value model's p, q and gamma (gamma is in currency units)."""
+MAX_FILE_BYTES = 10_000_000
+
+
+class _Check:
+    """Checks of one model file's keys; every refusal names the file and the key."""
+
+    def __init__(self, source: str):
+        self.source = source
+
+    def fail(self, key: str, what: str):
+        raise InputError(f"{self.source}: {key} {what}; fit the model again with 'lapsewise fit'")
+
+    def table(self, data: dict, key: str) -> dict:
+        value = data.get(key)
+        if not isinstance(value, dict):
+            self.fail(key, "is missing or is not a table of keys")
+        return value
+
+    def number(self, data: dict, key: str, low: float, high: float, where: str, optional: bool = False) -> None:
+        value = data.get(key)
+        if value is None and optional:
+            return
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            self.fail(f"{where}{key}", f"= {_shown(value)} is not a number")
+        if not math.isfinite(value) or not low <= value <= high:
+            self.fail(f"{where}{key}", f"= {_shown(value)} is outside {low:g} to {high:g}")
+
+    def integer(self, data: dict, key: str, low: int, high: int) -> None:
+        value = data.get(key)
+        if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+            self.fail(key, f"= {_shown(value)} is not a whole number from {low} to {high}")
+
+    def errors(self, data: dict, where: str) -> None:
+        errors = data.get("std_errors", {})
+        if not isinstance(errors, dict):
+            self.fail(f"{where}std_errors", "is not a table of standard errors")
+        for name, error in errors.items():
+            if error is not None:
+                self.number(errors, name, 0.0, math.inf, f"{where}std_errors.")
+
+
+def _shown(value) -> str:
+    text = json.dumps(value) if not isinstance(value, float) or math.isfinite(value) else str(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
 
 def read_model_file(path: str | Path) -> tuple[dict, str]:
-    """The model file's data and its name for messages; a damaged or foreign file is an InputError."""
+    """The model file's data, checked, and its name for messages; a damaged or foreign file is an InputError."""
     path = require_file(path, f"write a model with 'lapsewise fit ... --out {path}'", "a model file")
+    source = str(path)
+    if path.stat().st_size > MAX_FILE_BYTES:
+        raise InputError(f"{source}: is {path.stat().st_size:,} bytes, far more than a model file holds; check the path")
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise InputError(f"{path}: is not a lapsewise model file (not JSON: {exc}); write one with 'lapsewise fit'") from None
+        raise InputError(f"{source}: is not a lapsewise model file (not JSON: {exc}); write one with 'lapsewise fit'") from None
+    except RecursionError:
+        raise InputError(f"{source}: is nested too deeply to be a lapsewise model file; write one with 'lapsewise fit'") from None
     if not isinstance(data, dict) or data.get("format") != MODEL_FORMAT:
-        raise InputError(f"{path}: is not a lapsewise model file (no \"format\": \"{MODEL_FORMAT}\"); write one with 'lapsewise fit'")
-    churn = data.get("churn")
-    if isinstance(churn, dict):
-        for name in ("alpha", "beta", "gamma", "delta"):
-            value = churn.get(name)
-            if isinstance(value, (int, float)) and not isinstance(value, bool) and not (math.isfinite(value) and value > 0):
-                raise InputError(f"{path}: churn.{name} = {value} is not a positive number; fit the model again")
-        rho = churn.get("rho")
-        if isinstance(rho, (int, float)) and not isinstance(rho, bool) and not 0 <= rho <= 1:
-            raise InputError(f"{path}: churn.rho = {rho} is outside [0, 1]; fit the model again")
-    return data, str(path)
+        raise InputError(f"{source}: is not a lapsewise model file (no \"format\": \"{MODEL_FORMAT}\"); write one with 'lapsewise fit'")
+    check = _Check(source)
+    version = data.get("version")
+    if version != MODEL_VERSION:
+        raise InputError(
+            f"{source}: is a lapsewise model file of version {_shown(version)}, and this lapsewise reads version {MODEL_VERSION}; "
+            "fit the model again with this lapsewise"
+        )
+    churn = check.table(data, "churn")
+    for name in ("alpha", "beta", "gamma", "delta"):
+        check.number(churn, name, *CHURN_RANGE, "churn.")
+    check.number(churn, "rho", 0.0, 1.0, "churn.", optional=True)
+    check.errors(churn, "churn.")
+    spend = data.get("spend")
+    if spend is not None:
+        spend = check.table(data, "spend")
+        for name, (low, high) in SPEND_RANGE.items():
+            check.number(spend, name, low, high, "spend.", optional=name == "q")
+        check.errors(spend, "spend.")
+        check.number(spend, "frequency_value_correlation", -1.0, 1.0, "spend.", optional=True)
+        check.number(spend, "log_likelihood", -math.inf, math.inf, "spend.", optional=True)
+        check.integer(spend, "customers", 0, 10**12)
+    check.integer(data, "end_quarter", 0, 12 * 10_000 // 3)
+    check.integer(data, "fiscal_year_start", 1, 12)
+    check.integer(data, "customers", 0, 10**12)
+    try:
+        dt.date.fromisoformat(str(data.get("as_of")))
+    except ValueError:
+        check.fail("as_of", f"= {_shown(data.get('as_of'))} is not a date (YYYY-MM-DD)")
+    if not isinstance(data.get("warnings", []), list) or not all(isinstance(w, str) for w in data.get("warnings", [])):
+        check.fail("warnings", "is not a list of texts")
+    return data, source

@@ -29,7 +29,14 @@ ECONOMICS_KEYS = {
 OPTIONAL_ECONOMICS = ("order_value", "unmailed_response")
 VERSION_KEYS = ("name", "piece_cost", "response", "setup_cost", "min_quantity")
 SEGMENT_KEYS = ("frequency_bands", "silent_bands", "spend_bands", "min_share", "max_share")
-MAX_HORIZON = 120
+MAX_HORIZON = 80
+"""The longest horizon taken: the program's memory grows with the fourth power of the horizon (20 years need about 5 GB)."""
+MAX_COST = 1e9
+"""No piece or order costs this much: a larger value is a typo (and would swamp every other figure)."""
+MAX_VALUE = 1e12
+"""The largest order value or setup cost taken (as for amounts in the orders file)."""
+MAX_QUANTITY = 1_000_000_000
+MAX_BANDS = 20
 
 
 @dataclass(frozen=True)
@@ -84,16 +91,29 @@ class Policy:
     source: str = ""
 
 
-def _number(source: str, key: str, value, low: float | None = None, high: float | None = None, integer: bool = False) -> float:
+def _shown(value) -> str:
+    """A value as the message quotes it: short, one line."""
+    text = f"{value:.6g}" if isinstance(value, float) else repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+def _number(source: str, key: str, value, low: float | None = None, high: float | None = None, integer: bool = False, why: str = "") -> float:
+    """A finite number in [low, high] (a whole number when ``integer``), or an InputError naming the key (and ``why`` the limit)."""
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise InputError(f"{source}: {key} = {value!r} is not a number; write a plain number such as 0.45")
+        raise InputError(f"{source}: {key} = {_shown(value)} is not a number; write a plain number such as 0.45")
     if integer and int(value) != value:
-        raise InputError(f"{source}: {key} = {value!r} must be a whole number")
+        raise InputError(f"{source}: {key} = {_shown(value)} must be a whole number")
     if low is not None and value < low:
-        raise InputError(f"{source}: {key} = {value!r} is below {low}; {key} cannot be negative" if low == 0 else f"{source}: {key} = {value!r} is below {low}")
+        raise InputError(f"{source}: {key} = {_shown(value)} is below {low:g}; {key} cannot be negative" if low == 0 else f"{source}: {key} = {_shown(value)} is below {low:g}")
     if high is not None and value > high:
-        raise InputError(f"{source}: {key} = {value!r} is above {high}")
+        raise InputError(f"{source}: {key} = {_shown(value)} is above {high:g}; " + (why or f"no {key} is that large, check the value"))
     return int(value) if integer else float(value)
+
+
+def _table(source: str, key: str, value, example: str) -> dict:
+    if not isinstance(value, dict):
+        raise InputError(f"{source}: {key} must be a table of keys (such as {example}), not {_shown(value)}")
+    return value
 
 
 def _economics(source: str, raw: dict) -> Economics:
@@ -105,21 +125,26 @@ def _economics(source: str, raw: dict) -> Economics:
         raise InputError(f"{source}: [economics] is missing '{missing[0]}' ({ECONOMICS_KEYS[missing[0]]}); add it or pass --{missing[0].replace('_', '-')}")
     values = {
         "gross_margin": _number(source, "gross_margin", raw["gross_margin"], 0.0, 1.0),
-        "order_cost": _number(source, "order_cost", raw["order_cost"], 0.0),
-        "piece_cost": _number(source, "piece_cost", raw["piece_cost"], 0.0),
+        "order_cost": _number(source, "order_cost", raw["order_cost"], 0.0, MAX_COST),
+        "piece_cost": _number(source, "piece_cost", raw["piece_cost"], 0.0, MAX_COST),
         "annual_discount_rate": _number(source, "annual_discount_rate", raw["annual_discount_rate"], 0.0, 10.0),
-        "horizon_quarters": _number(source, "horizon_quarters", raw["horizon_quarters"], 1, MAX_HORIZON, integer=True),
+        "horizon_quarters": _number(
+            source, "horizon_quarters", raw["horizon_quarters"], 1, MAX_HORIZON, integer=True,
+            why=f"the stop-rule program's memory grows with the fourth power of the horizon, so {MAX_HORIZON} quarters (20 years) is the most it looks ahead",
+        ),
     }
     if raw.get("order_value") is not None:
-        values["order_value"] = _number(source, "order_value", raw["order_value"], 0.0)
+        values["order_value"] = _number(source, "order_value", raw["order_value"], 0.0, MAX_VALUE)
     if raw.get("unmailed_response") is not None:
         values["unmailed_response"] = _number(source, "unmailed_response", raw["unmailed_response"], 0.0, 1.0)
     return Economics(**values)
 
 
-def _versions(source: str, raw: list, economics: Economics) -> tuple[Version, ...]:
+def _versions(source: str, raw, economics: Economics) -> tuple[Version, ...]:
     if not raw:
         return (Version(name="standard", piece_cost=economics.piece_cost),)
+    if not isinstance(raw, list):
+        raise InputError(f"{source}: versions must be [[versions]] tables, one per version of the piece, not {_shown(raw)}")
     versions = []
     for position, entry in enumerate(raw, start=1):
         where = f"[[versions]] number {position}"
@@ -131,16 +156,18 @@ def _versions(source: str, raw: list, economics: Economics) -> tuple[Version, ..
         for key in ("name", "piece_cost"):
             if key not in entry:
                 raise InputError(f"{source}: {where} is missing '{key}'")
-        name = str(entry["name"]).strip()
-        if not name:
-            raise InputError(f"{source}: {where} has a blank name")
+        if not isinstance(entry["name"], str):
+            raise InputError(f"{source}: {where} has name = {_shown(entry['name'])}; write the name in quotes, such as \"postcard\"")
+        name = entry["name"].strip()
+        if not name or len(name) > 80 or not name.isprintable():
+            raise InputError(f"{source}: {where} needs a name of 1 to 80 printable characters")
         versions.append(
             Version(
                 name=name,
-                piece_cost=_number(source, f"{name}.piece_cost", entry["piece_cost"], 0.0),
+                piece_cost=_number(source, f"{name}.piece_cost", entry["piece_cost"], 0.0, MAX_COST),
                 response=_number(source, f"{name}.response", entry.get("response", 1.0), 0.0, 1.0),
-                setup_cost=_number(source, f"{name}.setup_cost", entry.get("setup_cost", 0.0), 0.0),
-                min_quantity=_number(source, f"{name}.min_quantity", entry.get("min_quantity", 0), 0, integer=True),
+                setup_cost=_number(source, f"{name}.setup_cost", entry.get("setup_cost", 0.0), 0.0, MAX_VALUE),
+                min_quantity=_number(source, f"{name}.min_quantity", entry.get("min_quantity", 0), 0, MAX_QUANTITY, integer=True),
             )
         )
     names = [v.name for v in versions]
@@ -150,14 +177,20 @@ def _versions(source: str, raw: list, economics: Economics) -> tuple[Version, ..
 
 
 def _bands(source: str, key: str, value) -> tuple[int, ...]:
-    if not isinstance(value, list) or not value or any(isinstance(v, bool) or not isinstance(v, int) or v < 0 for v in value):
-        raise InputError(f"{source}: [segments] {key} must be a list of whole numbers such as [0, 1, 2, 4, 8]")
+    if (
+        not isinstance(value, list)
+        or not value
+        or len(value) > MAX_BANDS
+        or any(isinstance(v, bool) or not isinstance(v, int) or not 0 <= v <= 10_000 for v in value)
+    ):
+        raise InputError(f"{source}: [segments] {key} must be a list of up to {MAX_BANDS} whole numbers such as [0, 1, 2, 4, 8]")
     if list(value) != sorted(set(value)) or value[0] != 0:
         raise InputError(f"{source}: [segments] {key} must start at 0 and rise, such as [0, 1, 2, 4, 8]")
     return tuple(value)
 
 
-def _segments(source: str, raw: dict) -> Segments:
+def _segments(source: str, raw) -> Segments:
+    raw = _table(source, "segments", raw, "[segments] with frequency_bands = [0, 1, 2, 4, 8]")
     unknown = [k for k in raw if k not in SEGMENT_KEYS]
     if unknown:
         raise InputError(f"{source}: unknown key '{unknown[0]}' in [segments]; known keys: {', '.join(SEGMENT_KEYS)}")
@@ -168,6 +201,13 @@ def _segments(source: str, raw: dict) -> Segments:
         if not isinstance(table, dict):
             raise InputError(f"{source}: [segments] {key} must be a table of segment = share, such as {{ \"5+ repeat, 0 silent\" = 1.0 }}")
         shares[key] = {str(k): _number(source, f"{key}.{k}", v, 0.0, 1.0) for k, v in table.items()}
+    for segment, least in shares["min_share"].items():
+        most = shares["max_share"].get(segment)
+        if most is not None and least > most:
+            raise InputError(
+                f"{source}: [segments] segment '{segment}' has min_share {least:g} above its max_share {most:g}; "
+                "the two rules contradict each other, lower min_share or raise max_share"
+            )
     return Segments(
         frequency_bands=_bands(source, "frequency_bands", raw["frequency_bands"]) if "frequency_bands" in raw else defaults.frequency_bands,
         silent_bands=_bands(source, "silent_bands", raw["silent_bands"]) if "silent_bands" in raw else defaults.silent_bands,
@@ -180,22 +220,25 @@ def _segments(source: str, raw: dict) -> Segments:
 def load_policy(path: str | Path, overrides: dict | None = None) -> Policy:
     """Read a policy file (TOML) and apply command-line overrides of ``[economics]`` keys.
 
-    Unknown keys, missing keys and impossible values are InputErrors naming the key.
+    Every section and key is checked for its type and a sane range; unknown keys,
+    missing keys and impossible or contradictory values are InputErrors naming the key.
     """
     path = require_file(path, "see policies/ for examples", "a policy file")
     source = str(path)
+    if path.stat().st_size > 1_000_000:
+        raise InputError(f"{source}: is {path.stat().st_size:,} bytes, far more than a policy file holds; check the path")
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
     except UnicodeDecodeError:
         raise InputError(f"{source}: is not UTF-8 text; save the policy file as UTF-8") from None
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{source}: is not valid TOML ({exc}); see policies/ for examples") from None
+    except RecursionError:
+        raise InputError(f"{source}: is nested too deeply to be a policy file; see policies/ for examples") from None
     unknown = [k for k in raw if k not in ("economics", "versions", "segments")]
     if unknown:
         raise InputError(f"{source}: unknown section or key '{unknown[0]}'; a policy file has [economics], [segments] and [[versions]]")
-    economics_raw = dict(raw.get("economics", {}))
-    if not isinstance(raw.get("economics", {}), dict):
-        raise InputError(f"{source}: economics must be a [economics] section")
+    economics_raw = dict(_table(source, "economics", raw.get("economics", {}), "[economics] with gross_margin = 0.45"))
     for key, value in (overrides or {}).items():
         if value is not None:
             economics_raw[key] = value
