@@ -13,13 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from lapsewise.errors import InputError
-from lapsewise.files.writing import (
-    neutralise_formulas,
-    round_significant,
-    write_atomic,
-    write_csv,
-    write_text_atomic,
-)
+from lapsewise.files.writing import round_significant, write_atomic, write_csv, write_text_atomic
 
 
 def _read_back(path):
@@ -35,8 +29,10 @@ def test_text_survives_the_round_trip_through_the_csv_module(tmp_path_factory, t
     write_csv(path, pd.DataFrame({"customer_id": np.array(texts, dtype=object), "label": pd.Categorical(texts)}))
     rows = _read_back(path)
     assert rows[0] == ["customer_id", "label"]
-    assert [row[0] for row in rows[1:]] == texts
-    assert [row[1] for row in rows[1:]] == texts
+    # Every text comes back as written, but for the quote that neutralises a formula-like cell (OWASP).
+    expected = ["'" + text if text[:1] in ("=", "+", "-", "@", "\t", "\r") else text for text in texts]
+    assert [row[0] for row in rows[1:]] == expected
+    assert [row[1] for row in rows[1:]] == expected
 
 
 def test_numbers_are_what_printf_g_with_six_digits_rounds_them_to(tmp_path):
@@ -56,7 +52,8 @@ def test_numbers_are_what_printf_g_with_six_digits_rounds_them_to(tmp_path):
 
 def test_quoting_matches_the_csv_module_minimal_quoting(tmp_path):
     # Reference: csv.writer with QUOTE_MINIMAL writes the same bytes for text fields.
-    frame = pd.DataFrame({"id": ["plain", "a,b", 'say "hi"', "two\nlines", "=SUM(A1)", ""], "flag": [True, False, True, False, True, False]})
+    # (A formula-like cell is compared in its neutralised form, with the quote in front.)
+    frame = pd.DataFrame({"id": ["plain", "a,b", 'say "hi"', "two\nlines", "'=SUM(A1)", ""], "flag": [True, False, True, False, True, False]})
     path = tmp_path / "quoted.csv"
     write_csv(path, frame)
     expected = io.StringIO(newline="")
@@ -118,9 +115,97 @@ def test_output_to_a_folder_or_a_missing_folder_is_refused(tmp_path, name, messa
 
 
 @pytest.mark.parametrize("text", ["=SUM(A1)", "+1", "-2", "@cmd", "\tx", "\rx"])
-def test_formula_cells_are_neutralised(text):
+def test_formula_cells_are_neutralised_in_every_kind_of_text_column(tmp_path, text):
     # OWASP CSV-injection guidance: prefix cells starting with = + - @ tab or carriage return with a quote.
-    frame = pd.DataFrame({"customer_id": [text, "A1"], "value_of_mailing": [-1.5, 2.0]})
-    out = neutralise_formulas(frame)
-    assert out.customer_id.tolist() == ["'" + text, "A1"]
-    assert out.value_of_mailing.tolist() == [-1.5, 2.0]  # numbers stay numbers
+    frame = pd.DataFrame(
+        {
+            "customer_id": np.array([text, "A1"], dtype=object),
+            "segment": pd.Categorical([text, "A1"]),
+            "version": pd.array([text, "A1"], dtype="string[pyarrow]"),
+            "value_of_mailing": [-1.5, 2.0],
+        }
+    )
+    path = tmp_path / "out.csv"
+    write_csv(path, frame)
+    rows = _read_back(path)
+    assert rows[1][:3] == ["'" + text] * 3 and rows[2][:3] == ["A1"] * 3
+    assert [row[3] for row in rows[1:]] == ["-1.5", "2"]  # numbers stay numbers
+
+
+# ---------------------------------------------------------------- no overwrite, even in a race; no temporary file left
+
+
+def test_two_runs_racing_for_one_output_end_with_exactly_one_writer(demo_dir, tmp_path):
+    import subprocess
+    import sys
+
+    out = tmp_path / "list.csv"
+    policy = demo_dir / "policy.toml"
+    command = [sys.executable, "-m", "lapsewise", "mail-list", demo_dir / "model.json", demo_dir / "orders.csv", "--policy", policy,
+               "--horizon-quarters", 6, "--out", out]
+    runs = [subprocess.Popen(list(map(str, command)), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for _ in range(2)]
+    results = [(run.wait(timeout=300), run.stderr.read()) for run in runs]
+    assert sorted(code for code, _ in results) == [0, 2], results
+    loser = next(stderr for code, stderr in results if code == 2)
+    assert "already exists" in loser and "Traceback" not in loser and len(loser.strip().splitlines()) == 1
+    assert [p.name for p in tmp_path.iterdir()] == ["list.csv"]  # the winner's file, and no temporary file
+
+
+def test_a_temporary_file_of_a_killed_run_is_removed_by_the_next_write(tmp_path):
+    import subprocess
+
+    child = subprocess.Popen(["true"])
+    child.wait()  # a process that has ended: its id names no running process
+    stale = tmp_path / f".scores.csv.lapsewise-tmp-{child.pid}-abc.tmp"
+    stale.write_text("half")
+    foreign = tmp_path / ".notes.tmp"  # not ours: left alone
+    foreign.write_text("keep")
+    write_text_atomic(tmp_path / "other.csv", "new\n")
+    assert sorted(p.name for p in tmp_path.iterdir()) == [".notes.tmp", "other.csv"]
+
+
+def test_sigterm_during_a_write_removes_the_temporary_file(tmp_path):
+    # The command's entry point turns SIGTERM into an ordinary exit, so the writer's cleanup runs.
+    import subprocess
+    import sys
+
+    script = (
+        "import os, signal, sys\n"
+        "from lapsewise.app.cli import _stop_on_sigterm\n"
+        "from lapsewise.files.writing import write_atomic\n"
+        "signal.signal(signal.SIGTERM, _stop_on_sigterm)\n"
+        "def write(path):\n"
+        "    path.write_text('half')\n"
+        "    os.kill(os.getpid(), signal.SIGTERM)\n"
+        f"write_atomic({str(tmp_path / 'out.csv')!r}, write)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=60)
+    assert done.returncode == 128 + 15, done.stderr
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize(
+    "make, message",
+    [
+        (lambda folder: (folder / "file.csv").write_text("x") and folder / "file.csv" / "out.csv", r"file.csv is a file, not a folder"),
+        (lambda folder: folder / ("n" * 240 + ".csv"), r"the file name is 244 bytes long"),
+    ],
+    ids=["path-through-a-file", "name-too-long"],
+)
+def test_outputs_that_cannot_be_written_are_refused_before_any_work(tmp_path, make, message):
+    from lapsewise.files.writing import check_writable
+
+    with pytest.raises(InputError, match=message):
+        check_writable(make(tmp_path), force=False)
+
+
+def test_numbers_that_are_not_finite_are_refused_by_the_writers(tmp_path):
+    from lapsewise.files.writing import dumps_stable, save_csv
+
+    with pytest.raises(InputError, match="column dert would hold 1 values that are not finite"):
+        save_csv(tmp_path / "scores.csv", pd.DataFrame({"dert": [1.0, np.inf], "expected_order_value": [np.nan, 2.0]}), nullable=["expected_order_value"])
+    assert not (tmp_path / "scores.csv").exists()
+    save_csv(tmp_path / "scores.csv", pd.DataFrame({"dert": [1.0, 2.0], "expected_order_value": [np.nan, 2.0]}), nullable=["expected_order_value"])
+    assert (tmp_path / "scores.csv").read_text() == "dert,expected_order_value\n1,\n2,2\n"
+    with pytest.raises(InputError, match=r"segments\[1\].value is not a finite number"):
+        dumps_stable({"segments": [{"value": 1.0}, {"value": float("nan")}]})

@@ -57,7 +57,7 @@ from lapsewise.decide import program as program_module  # noqa: E402
 from lapsewise.decide import stop_table as stop_table_module
 from lapsewise.files import policy_file  # noqa: E402
 from lapsewise.files.inputs import load_orders_and_mailings  # noqa: E402
-from lapsewise.files.writing import dumps_stable, write_atomic, write_csv, write_text_atomic  # noqa: E402
+from lapsewise.files.writing import dumps_stable, save_csv, write_text_atomic  # noqa: E402
 from lapsewise.model import fitted as model_module  # noqa: E402
 from lapsewise.model import posterior as posterior_module
 from lapsewise.model.process import Process  # noqa: E402
@@ -171,13 +171,11 @@ def run_mail_list_stages(meter: Meter, paths: dict[str, Path], meta: dict, refit
         )
     out["segments"] = len(plans[None].segments)
 
-    with CountedCalls(pipeline, "mail_list") as assembly, CountedCalls(pipeline, "neutralise_formulas") as neutralise:
-        rows = meter.run("mail list assembly", pipeline.mail_list_rows, values, plans[None])
-    meter.stages[-1].note = f"mail_list {assembly.seconds:.2f} s, neutralise_formulas {neutralise.seconds:.2f} s"
+    rows = meter.run("mail list assembly", pipeline.mail_list_rows, values, plans[None])
     out["decisions"] = rows["decision"].value_counts().to_dict()
     csv = out_folder / "mail-list.csv"
-    meter.run("write CSV", write_atomic, csv, lambda p: write_csv(p, rows), True)
-    meter.stages[-1].note = f"{len(rows):,} rows, {csv.stat().st_size / 2**20:.0f} MB"
+    meter.run("write CSV", save_csv, csv, rows, True)
+    meter.stages[-1].note = f"{len(rows):,} rows, {csv.stat().st_size / 2**20:.0f} MB (formula-like text neutralised, numbers checked)"
     out["model"], out["policy"], out["customers"] = model, policy, panel.customers
     return out
 

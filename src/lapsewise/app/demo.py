@@ -20,19 +20,8 @@ from lapsewise.budget.mail_list import decision_counts
 from lapsewise.data.summary import describe_base
 from lapsewise.errors import InputError
 from lapsewise.evaluate.backtest import run_backtest
-from lapsewise.evaluate.scenario import (
-    SCENARIO_NAME,
-    DemoData,
-    compare_with_truth,
-    simulate_base,
-)
-from lapsewise.files.writing import (
-    check_writable,
-    dumps_stable,
-    write_atomic,
-    write_csv,
-    write_text_atomic,
-)
+from lapsewise.evaluate.scenario import SCENARIO_NAME, DemoData, compare_with_truth, simulate_base
+from lapsewise.files.writing import check_writable, dumps_stable, save_csv, write_text_atomic
 
 DEMO_BUDGET = 3000.0
 SIMULATED_CUSTOMERS = 10_000
@@ -58,9 +47,9 @@ def write_demo_files(folder: Path, data: DemoData, force: bool) -> dict[str, Pat
     }
     for path in paths.values():
         check_writable(path, force)  # every output of the demo, before anything is written
-    write_atomic(paths["orders"], lambda p: data.orders.to_csv(p, index=False), force)
+    save_csv(paths["orders"], data.orders, force, significant=15)
     mailings = data.mailings.assign(mail_date=pd.to_datetime(data.mailings["mail_date"]).dt.strftime("%Y-%m-%d"))
-    write_atomic(paths["mailings"], lambda p: mailings.to_csv(p, index=False), force)
+    save_csv(paths["mailings"], mailings, force)
     truth = {"scenario": SCENARIO_NAME, "as_of": str(data.as_of), **data.truth.as_dict()}
     write_text_atomic(paths["truth"], dumps_stable(truth), force)
     write_text_atomic(paths["policy"], demo_policy_text(), force)
@@ -105,6 +94,6 @@ def run_demo(console: Console, folder: Path, customers: int, quarters: int, seed
     plan = pipeline.plan(values, policy, DEMO_BUDGET)
     render.print_plan(console, plan, panel, values)
     rows = pipeline.mail_list_rows(values, plan)
-    write_atomic(paths["mail_list"], lambda p: write_csv(p, rows), force)
+    save_csv(paths["mail_list"], rows, force)
     render.print_mail_list(console, decision_counts(rows), plan, paths["mail_list"])
     render.print_caution(console)
