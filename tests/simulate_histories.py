@@ -5,13 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from lapsewise.data.histories import Histories, compress_arrays, history_arrays
-from lapsewise.evaluate.simulator import (
-    StreamedUniforms,
-    draw_traits,
-    every_quarter,
-    lapse_rule,
-    run_process,
-)
+from lapsewise.evaluate.simulator import StreamedUniforms, draw_traits, every_quarter, lapse_rule, run_process
 from lapsewise.model.process import Process
 
 

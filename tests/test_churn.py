@@ -6,15 +6,7 @@ from numpy.testing import assert_allclose
 from scipy import integrate, special
 
 from lapsewise.data.histories import compress_arrays, history_arrays
-from lapsewise.model.churn import (
-    ChurnFit,
-    expand,
-    fit_churn,
-    history_log_likelihood,
-    total_gradient,
-    total_hessian,
-    total_log_likelihood,
-)
+from lapsewise.model.churn import ChurnFit, expand, fit_churn, history_log_likelihood, total_gradient, total_hessian, total_log_likelihood
 from lapsewise.model.process import Process
 from simulate_histories import simulate, simulate_histories
 

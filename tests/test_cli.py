@@ -8,17 +8,7 @@ import pytest
 from hypothesis import given
 
 from builders import run
-from conftest import (
-    ANY_FILE,
-    ANY_FILE_SETTINGS,
-    BAD_INPUTS,
-    GOOD_ORDERS,
-    assert_one_error_line,
-    file_holding,
-    orders_text,
-    run_cli,
-    run_cli_process,
-)
+from conftest import ANY_FILE, ANY_FILE_SETTINGS, BAD_INPUTS, GOOD_ORDERS, assert_one_error_line, file_holding, orders_text, run_cli, run_cli_process
 
 
 def test_fit_writes_model_and_refuses_to_overwrite(demo_dir, tmp_path):
@@ -281,3 +271,89 @@ def test_summary_command_succeeds_or_exits_2_on_any_file(content):
         assert result.stderr == ""
     else:
         assert_one_error_line(result, str(path))
+
+
+# ---------------------------------------------------------------- hostile and careless command lines
+
+
+@pytest.fixture(scope="module")
+def hostile(demo_dir, tmp_path_factory):
+    """Files for the hostile command lines: a model fitted without mailings, lists, a pipe, a file in the way."""
+    import os
+
+    folder = tmp_path_factory.mktemp("hostile")
+    assert run("fit", demo_dir / "orders.csv", "--out", folder / "no-mailings.json").returncode == 0
+    (folder / "strangers.csv").write_text("customer_id\n1\n2\n3\n")
+    ids = pd.read_csv(demo_dir / "orders.csv").customer_id.unique()
+    pd.DataFrame({"customer_id": ids}).to_csv(folder / "everyone.csv", index=False)
+    os.mkfifo(folder / "pipe.csv")
+    (folder / "a-file").write_text("x")
+    return folder
+
+
+HOSTILE = [
+    ("budget-infinite", ["plan", "{model}", "{orders}", "--policy", "{policy}", "--budget", "inf"], ["--budget"]),
+    ("budget-nan", ["plan", "{model}", "{orders}", "--policy", "{policy}", "--budget", "nan"], ["--budget"]),
+    ("budget-negative", ["plan", "{model}", "{orders}", "--policy", "{policy}", "--budget", "-5"], ["--budget"]),
+    ("seed-negative", ["simulate", "{model}", "--policy", "{policy}", "--seed", "-1"], ["--seed"]),
+    ("customers-huge", ["simulate", "{model}", "--policy", "{policy}", "--customers", "50000000"], ["--customers"]),
+    ("out-in-missing-folder", ["mail-list", "{model}", "{orders}", "--policy", "{policy}", "--out", "{hostile}/nowhere/list.csv"], ["does not exist"]),
+    ("out-through-a-file", ["mail-list", "{model}", "{orders}", "--policy", "{policy}", "--out", "{hostile}/a-file/list.csv"], ["is a file, not a folder"]),
+    ("orders-a-pipe", ["summary", "{hostile}/pipe.csv"], ["not a regular file"]),
+    ("dert-infinite", ["score", "{model}", "{orders}", "--annual-discount-rate", "0", "--out", "{hostile}/scores.csv"], ["DERT is infinite"]),
+    ("suppression-matches-nobody", ["plan", "{model}", "{orders}", "--policy", "{policy}", "--budget", "100", "--suppress", "{hostile}/strangers.csv"], ["none of its 3 ids"]),
+    ("held-never-orders-but-did", ["plan", "{hostile}/no-mailings.json", "{orders}", "--mailings", "{mailings}", "--policy", "{policy}", "--budget", "100"],
+     ["fitted without a mailings file", "ordered in quarters", "--mailings"]),
+    ("horizon-beyond-the-maximum", ["stop-table", "{model}", "--policy", "{policy}", "--horizon-quarters", "120"], ["horizon_quarters = 120 is above 80"]),
+]
+
+
+@pytest.mark.parametrize("case", HOSTILE, ids=[case[0] for case in HOSTILE])
+def test_hostile_command_lines_exit_2_with_one_line_and_write_nothing(demo_dir, hostile, case):
+    _, template, fragments = case
+    names = {"model": demo_dir / "model.json", "orders": demo_dir / "orders.csv", "mailings": demo_dir / "mailings.csv",
+             "policy": demo_dir / "policy.toml", "hostile": hostile}
+    before = set(hostile.iterdir())
+    result = run_cli(*[part.format(**names) for part in template])
+    assert_one_error_line(result, *fragments)
+    assert set(hostile.iterdir()) == before
+
+
+def test_everyone_suppressed_gives_an_empty_plan_and_a_list_of_suppressed(demo_dir, hostile, tmp_path):
+    out = tmp_path / "list.csv"
+    args = ("--policy", demo_dir / "policy.toml", "--horizon-quarters", 4, "--suppress", hostile / "everyone.csv")
+    result = run_cli("mail-list", demo_dir / "model.json", demo_dir / "orders.csv", *args, "--out", out)
+    assert result.code == 0, result.stderr
+    assert set(pd.read_csv(out).decision) == {"suppressed"}
+    assert "3,000 of its 3,000 ids are customers here" in " ".join(result.stdout.split())
+    plan = json.loads(run_cli("plan", demo_dir / "model.json", demo_dir / "orders.csv", *args, "--budget", 100, "--json").stdout)
+    assert plan["spent"] == 0 and plan["suppression"] == {"file": str(hostile / "everyone.csv"), "ids_listed": 3000, "ids_matched": 3000}
+
+
+def test_absurd_but_allowed_models_and_policies_give_finite_outputs_or_one_line(demo_dir, tmp_path):
+    # Parameters at the edges of what a model file may hold, a policy at the edges of what it may say:
+    # every output is finite, or the command refuses in one line; never NaN or infinity with exit 0.
+    model = json.loads((demo_dir / "model.json").read_text())
+    policy = (demo_dir / "policy.toml").read_text()
+    policy = policy.replace("annual_discount_rate = 0.10", "annual_discount_rate = 0").replace("horizon_quarters = 40", "horizon_quarters = 3")
+    policy = policy.replace("order_cost = 4.00", "order_cost = 0").replace("gross_margin = 0.45", "gross_margin = 1.0")
+    (tmp_path / "edge.toml").write_text(policy)
+    edges = [dict(alpha=1e-4, beta=1e5, gamma=1e5, delta=1e-4), dict(alpha=1e5, beta=1e-4, gamma=1e-4, delta=1e5), dict(alpha=1e-4, beta=1e-4, gamma=1e-4, delta=1e-4)]
+    for index, churn in enumerate(edges):
+        path = tmp_path / f"edge{index}.json"
+        path.write_text(json.dumps({**model, "churn": {**model["churn"], **churn, "rho": 1e-6}}))
+        common = (demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv")
+        outputs = [
+            ("score", [path, *common, "--out", tmp_path / f"scores{index}.csv"], tmp_path / f"scores{index}.csv"),
+            ("stop-table", [path, "--policy", tmp_path / "edge.toml", "--json"], None),
+            ("simulate", [path, "--policy", tmp_path / "edge.toml", "--customers", 300, "--json"], None),
+            ("plan", [path, *common, "--policy", tmp_path / "edge.toml", "--budget", 50, "--json"], None),
+            ("mail-list", [path, *common, "--policy", tmp_path / "edge.toml", "--out", tmp_path / f"list{index}.csv"], tmp_path / f"list{index}.csv"),
+        ]
+        for command, args, written in outputs:
+            result = run_cli(command, *args)
+            if result.code != 0:
+                assert_one_error_line(result)
+                continue
+            text = written.read_text() if written is not None else result.stdout
+            assert not any(token in text.lower() for token in ("nan", "inf")), (command, index)

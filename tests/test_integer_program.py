@@ -9,13 +9,7 @@ from numpy.testing import assert_allclose
 from scipy.optimize import Bounds, LinearConstraint, milp
 
 from builders import one_version_policy, synthetic_values
-from lapsewise.budget.integer_program import (
-    CHUNKS,
-    PlanProblem,
-    chunk_values,
-    make_plan,
-    solve_plan,
-)
+from lapsewise.budget.integer_program import CHUNKS, PlanProblem, chunk_values, make_plan, solve_plan
 from lapsewise.budget.mail_list import mail_list
 from lapsewise.budget.values import CustomerValues
 from lapsewise.errors import PlanError
@@ -201,8 +195,29 @@ def test_a_minimum_run_that_cannot_fit_names_the_rule():
         "test.toml",
     )
     values = CustomerValues(**{**values.__dict__, "values": np.column_stack([values.values[:, 0], values.values[:, 0]]), "versions": ("v0", "slim"), "responses": np.ones(2)})
-    with pytest.raises(PlanError, match="min_share"):
+    members = int((values.segment == "0 repeat, 0 silent").sum())
+    with pytest.raises(PlanError, match="min_share") as caught:
         make_plan(values, policy, budget=1.0)
+    # The figure quoted is the cheapest way to meet the shares: the plain version (slim's print run of 40 and setup of
+    # 50 cost more for this segment's few customers), members x 0.5 each.
+    assert f"they take {members:,} pieces; the cheapest way, version 'v0' at 0.50 a piece, costs {0.5 * members:,.2f} of a budget of 1.00" in str(caught.value)
+    # With a run and setup that the shares cannot avoid, the figure includes them.
+    only_slim = Policy(policy.economics, (Version("slim", 0.3, 0.9, 50.0, 40),), policy.segments, "test.toml")
+    single = CustomerValues(**{**values.__dict__, "values": values.values[:, :1], "versions": ("slim",), "responses": np.ones(1)})
+    with pytest.raises(PlanError) as caught:
+        make_plan(single, only_slim, budget=1.0)
+    run = max(members, 40)
+    assert f"version 'slim' at 0.30 a piece" in str(caught.value) and f"costs {50 + 0.3 * run:,.2f}" in str(caught.value)
+
+
+def test_a_frontier_budget_that_cannot_meet_the_rules_has_no_value():
+    rng = np.random.default_rng(9)
+    values = synthetic_values(rng, customers=200)
+    policy = Policy(one_version_policy().economics, one_version_policy().versions, Segments(min_share={"1 repeat, 1 silent": 1.0}), "test.toml")
+    plan = make_plan(values, policy, budget=None, frontier_points=10)
+    data = plan.to_dict()["frontier"]
+    # The smallest budgets cannot pay for the minimum share: null, not a number; the largest can.
+    assert data[0]["expected_profit"] is None and data[-1]["expected_profit"] is not None
 
 
 def test_min_share_naming_a_missing_segment_is_refused():

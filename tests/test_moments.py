@@ -5,12 +5,7 @@ import pytest
 from numpy.testing import assert_allclose
 from scipy import special
 
-from lapsewise.model.moments import (
-    log_alive_ahead,
-    log_moment_grid,
-    log_p_moments,
-    log_survival,
-)
+from lapsewise.model.moments import log_alive_ahead, log_moment_grid, log_p_moments, log_survival
 from lapsewise.model.process import Process
 
 

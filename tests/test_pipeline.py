@@ -7,13 +7,7 @@ from numpy.testing import assert_allclose
 from builders import MODEL, POLICY, SPEND, small_panel
 from lapsewise.app import pipeline
 from lapsewise.budget.integer_program import make_plan
-from lapsewise.budget.values import (
-    band_program,
-    band_values,
-    customer_order_values,
-    customer_values,
-    valued_states,
-)
+from lapsewise.budget.values import band_program, band_values, customer_order_values, customer_values, valued_states
 from lapsewise.data.histories import compress
 from lapsewise.data.summary import summarize
 from lapsewise.decide.order_values import spend_bands

@@ -33,3 +33,12 @@ def test_simulation_is_deterministic_for_a_seed():
     first = simulate_policies(process, economics, 45.0, 2000, 6, seed=9).to_dict()
     second = simulate_policies(process, economics, 45.0, 2000, 6, seed=9).to_dict()
     assert first == second
+
+
+def test_a_simulation_too_large_for_the_free_memory_is_refused(monkeypatch):
+    from lapsewise.errors import InputError
+    from lapsewise.evaluate import policies
+
+    monkeypatch.setattr(policies, "available_memory", lambda: 1_000_000)
+    with pytest.raises(InputError, match="simulating 100,000 customers over 40 quarters needs about"):
+        simulate_policies(FIT, Economics(0.45, 4.0, 0.9, 0.10, 40), 45.0, 100_000, 40, seed=1)

@@ -44,3 +44,20 @@ def test_lapse_curve_is_a_probability_and_fades(x, extra, alpha, beta, gamma, de
     # Every further mailed quarter without a purchase can only lower the hope of a return.
     assert np.all(np.diff(p_alive) <= 1e-12)
     assert np.all(np.diff(p_buy) <= 1e-12)
+
+
+def test_dert_series_summed_term_by_term_equals_scipys_hypergeometric_function():
+    # Reference: scipy.special.hyp2f1, where it is finite. The plain sum is used where it is not (very large gamma).
+    from scipy import special
+
+    from lapsewise.model.posterior import _survival_series
+
+    process = Process(1.2, 2.5, 0.7, 4.0, 0.3)
+    n = np.arange(0, 30.0)
+    expected = special.hyp2f1(1.0, process.delta + n + 1, process.gamma + process.delta + n + 1, 1 / 1.05)
+    np.testing.assert_allclose(_survival_series(process, n, 0.05), expected, rtol=1e-12)
+    # With gamma = 1e5 SciPy gives NaN; the terms fall at once and the sum is barely above 1.
+    extreme = Process(1e-4, 1e5, 1e5, 1e-4, None)
+    assert np.isnan(special.hyp2f1(1.0, 1e-4 + 4, 1e5 + 1e-4 + 4, 1 / 1.05))
+    value = _survival_series(extreme, np.array([3.0]), 0.05)[0]
+    assert 1.0 <= value < 1.0 + 1e-3

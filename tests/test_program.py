@@ -145,3 +145,27 @@ def test_solve_equals_the_plain_recursion_state_by_state(seed):
         ours = version_mail_value(program, n, x, b, alive, response, piece)
         theirs = [plain.version_mail_value(horizon, int(n[i]), int(x[i]), int(b[i]), float(alive[i]), response, piece) for i in range(20)]
         assert_allclose(ours, theirs, rtol=1e-10, atol=1e-12)
+
+
+def test_a_program_too_large_for_the_free_memory_is_refused_before_any_work(monkeypatch):
+    from lapsewise.decide import program as program_module
+    from lapsewise.errors import InputError
+
+    needed = program_module.program_bytes(40, 80, 0, 0, 40, rho=0.3)
+    monkeypatch.setattr(program_module, "available_memory", lambda: needed // 2)
+    with pytest.raises(InputError, match="looking 40 quarters ahead .* needs about .* GB of memory"):
+        solve(FIT, 16.0, 0.9, DISCOUNT, 40, n_max=80, b_max=0, n_min=0, x_max=40)
+
+
+def test_the_memory_estimate_is_what_the_program_takes():
+    # Reference: Python's own accounting of the arrays numpy allocates (tracemalloc), at a modest size.
+    import tracemalloc
+
+    from lapsewise.decide.program import program_bytes
+
+    tracemalloc.start()
+    solve(FIT, 16.0, 0.9, DISCOUNT, 20, n_max=40, b_max=0, n_min=0, x_max=20)
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    estimate = program_bytes(20, 40, 0, 0, 20, rho=0.3)
+    assert 0.8 * peak <= estimate <= 1.5 * peak

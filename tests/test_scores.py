@@ -34,3 +34,20 @@ def test_lapse_curves_cover_each_present_band():
     curves = lapse_curves(model, summarize(panel), max_silent=6)
     assert set(curves["k"]) == set(range(7))
     assert (curves.groupby("band")["p_buy"].apply(lambda s: np.all(np.diff(s.to_numpy()) <= 1e-12))).all()
+
+
+def test_dert_at_a_zero_discount_rate_is_refused_when_it_is_infinite_and_given_when_finite():
+    # sum_h B(gamma, delta + n + h) / B(gamma, delta) behaves like sum_h h^-gamma: finite only for gamma > 1.
+    import pytest
+
+    from lapsewise.errors import InputError
+
+    panel = simulated_panel(500, seed=14)
+    infinite = Model(churn=ChurnFit(**{**TRUTH, "gamma": 0.7}), spend=None, as_of="x", end_quarter=panel.end_quarter, fiscal_year_start=1, customers=500)
+    with pytest.raises(InputError, match="DERT is infinite for this model"):
+        score_customers(infinite, panel, annual_discount_rate=0.0)
+    finite = Model(churn=ChurnFit(**{**TRUTH, "gamma": 2.5}), spend=None, as_of="x", end_quarter=panel.end_quarter, fiscal_year_start=1, customers=500)
+    scores = score_customers(finite, panel, annual_discount_rate=0.0)
+    assert np.isfinite(scores["dert"]).all()
+    # Undiscounted, DERT is at least the expected orders over any finite stretch.
+    assert (scores["dert"] >= score_customers(finite, panel, horizon=40, annual_discount_rate=0.0)["expected_orders"] - 1e-9).all()

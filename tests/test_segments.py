@@ -2,12 +2,7 @@
 
 import numpy as np
 
-from lapsewise.budget.segments import (
-    categorical,
-    grouped,
-    segment_codes,
-    segment_labels,
-)
+from lapsewise.budget.segments import categorical, grouped, segment_codes, segment_labels
 from lapsewise.data.summary import CustomerSummary
 from lapsewise.files.policy_file import Segments
 

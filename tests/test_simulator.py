@@ -8,14 +8,7 @@ import numpy as np
 import pytest
 from scipy import special
 
-from lapsewise.evaluate.simulator import (
-    StreamedUniforms,
-    TabledUniforms,
-    draw_traits,
-    every_quarter,
-    lapse_rule,
-    run_process,
-)
+from lapsewise.evaluate.simulator import StreamedUniforms, TabledUniforms, draw_traits, every_quarter, lapse_rule, run_process
 from lapsewise.model.process import Process
 
 PROCESS = Process(alpha=1.1, beta=2.4, gamma=0.7, delta=4.5, rho=0.3)

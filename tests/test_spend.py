@@ -18,12 +18,7 @@ from scipy import integrate, stats
 from scipy.special import digamma
 
 from lapsewise.errors import InputError
-from lapsewise.model.spend import (
-    SpendFit,
-    expected_order_value,
-    fit_spend,
-    spend_log_likelihood,
-)
+from lapsewise.model.spend import SpendFit, expected_order_value, fit_spend, spend_log_likelihood
 
 
 def per_customer_gradient(p: float, q: float, gamma: float, x: np.ndarray, m_x: np.ndarray) -> np.ndarray:

@@ -5,12 +5,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 from builders import PROCESS, SPEND, small_panel
-from lapsewise.budget.values import (
-    band_program,
-    band_values,
-    customer_order_values,
-    valued_states,
-)
+from lapsewise.budget.values import band_program, band_values, customer_order_values, valued_states
 from lapsewise.data.histories import compress
 from lapsewise.data.summary import summarize
 from lapsewise.decide.decisions import decide

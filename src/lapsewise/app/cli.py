@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import functools
 import inspect
+import signal
 import sys
 import typing
 from pathlib import Path
@@ -19,13 +20,7 @@ from rich.console import Console
 from lapsewise.app import pipeline, render
 from lapsewise.budget.mail_list import decision_counts
 from lapsewise.errors import InputError
-from lapsewise.files.writing import (
-    check_writable,
-    dumps_stable,
-    write_atomic,
-    write_csv,
-    write_text_atomic,
-)
+from lapsewise.files.writing import check_writable, dumps_stable, save_csv, write_text_atomic
 
 app = typer.Typer(
     add_completion=False,
@@ -33,6 +28,8 @@ app = typer.Typer(
     help="lapsewise: when to stop mailing lapsed customers, and how to spread a mail budget.",
     pretty_exceptions_enable=False,
 )
+
+MAX_BUDGET = 1e15  # a finite amount: no quarter's mail budget is larger, and inf or nan are refused
 
 MailingsOption = typer.Option(None, "--mailings", help="Mailings file (CSV or Parquet): customer_id, mail_date[, version].")
 AsOfOption = typer.Option(None, "--as-of", help="Last day to use (YYYY-MM-DD); default: end of the last complete quarter in the orders.")
@@ -116,9 +113,9 @@ def summary(
 @app.command()
 def demo(
     folder: Path = typer.Option(Path("lapsewise-demo"), "--dir", help="Folder to write the demo files into."),
-    customers: int = typer.Option(20_000, "--customers", min=100, help="Number of customers to generate."),
-    quarters: int = typer.Option(24, "--quarters", min=4, max=200, help="Quarters of history to generate."),
-    seed: int = typer.Option(7, "--seed", help="Seed of every random step."),
+    customers: int = typer.Option(20_000, "--customers", min=100, max=1_000_000, help="Number of customers to generate."),
+    quarters: int = typer.Option(24, "--quarters", min=4, max=80, help="Quarters of history to generate."),
+    seed: int = typer.Option(7, "--seed", min=0, max=2**32 - 1, help="Seed of every random step (0 to 4294967295)."),
     force: bool = typer.Option(False, "--force", help="Overwrite demo files already in the folder."),
 ) -> None:
     """Generate the Mail-Order Garden Seeds scenario and run every step on it."""
@@ -175,13 +172,13 @@ def score(
 ) -> None:
     """Write per-customer P(alive), P(order next quarter), expected orders, DERT and expected order value."""
     from lapsewise.model.fitted import load_model
-    from lapsewise.model.scores import score_customers, score_totals
+    from lapsewise.model.scores import SCORE_NULLABLE, score_customers, score_totals
 
     check_writable(out, force)
     model = load_model(model_file)
     panel = pipeline.read_panel(orders, mailings, as_of or model.as_of, model.fiscal_year_start, columns)
     scores = score_customers(model, panel, horizon, annual_discount_rate)
-    write_atomic(out, lambda p: write_csv(p, scores), force)
+    save_csv(out, scores, force, nullable=SCORE_NULLABLE)
     console = _console()
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
@@ -254,9 +251,9 @@ def stop_table(
 def simulate(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     policy_file: Path = PolicyOption,
-    customers: int = typer.Option(10_000, "--customers", min=100, max=5_000_000, help="New customers to simulate."),
-    quarters: Optional[int] = typer.Option(None, "--quarters", min=1, max=200, help="Quarters to simulate (default: the horizon)."),
-    seed: int = typer.Option(1, "--seed", help="Seed of every random draw."),
+    customers: int = typer.Option(10_000, "--customers", min=100, max=1_000_000, help="New customers to simulate."),
+    quarters: Optional[int] = typer.Option(None, "--quarters", min=1, max=120, help="Quarters to simulate (default: the horizon)."),
+    seed: int = typer.Option(1, "--seed", min=0, max=2**32 - 1, help="Seed of every random draw (0 to 4294967295)."),
     json_output: bool = JsonOption,
     overrides: dict | None = None,
 ) -> None:
@@ -291,7 +288,7 @@ def plan(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     orders: Path = OrdersArgument,
     policy_file: Path = PolicyOption,
-    budget: float = typer.Option(..., "--budget", min=0.0, help="Mail budget for this quarter, currency units (pieces and setup)."),
+    budget: float = typer.Option(..., "--budget", min=0.0, max=MAX_BUDGET, help="Mail budget for this quarter, currency units (pieces and setup)."),
     mailings: Optional[Path] = MailingsOption,
     as_of: Optional[str] = AsOfOption,
     suppress: Optional[Path] = SuppressOption,
@@ -311,10 +308,12 @@ def plan(
             result = pipeline.plan(inputs.values, inputs.policy, budget, frontier_points=10 if frontier else 0)
     panel = inputs.panel
     if json_output:
-        typer.echo(dumps_stable({**result.to_dict(), "mailing_history": panel.mailing_history}), nl=False)
+        suppression = None if inputs.suppression is None else inputs.suppression.to_dict()
+        typer.echo(dumps_stable({**result.to_dict(), "mailing_history": panel.mailing_history, "suppression": suppression}), nl=False)
         return
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
+    render.print_suppression(console, inputs.suppression)
     render.print_plan(console, result, panel, inputs.values)
     render.print_caution(console)
 
@@ -327,7 +326,7 @@ def mail_list_command(
     orders: Path = OrdersArgument,
     policy_file: Path = PolicyOption,
     out: Path = typer.Option(..., "--out", help="Mail list to write (CSV)."),
-    budget: Optional[float] = typer.Option(None, "--budget", min=0.0, help="Mail budget; without it everyone worth mailing is mailed."),
+    budget: Optional[float] = typer.Option(None, "--budget", min=0.0, max=MAX_BUDGET, help="Mail budget; without it everyone worth mailing is mailed."),
     mailings: Optional[Path] = MailingsOption,
     as_of: Optional[str] = AsOfOption,
     suppress: Optional[Path] = SuppressOption,
@@ -347,22 +346,26 @@ def mail_list_command(
             result = pipeline.plan(inputs.values, inputs.policy, budget)
         with step("Writing the mail list"):
             rows = pipeline.mail_list_rows(inputs.values, result)
-            write_atomic(out, lambda p: write_csv(p, rows), force)
+            save_csv(out, rows, force)
     if not inputs.panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
+    render.print_suppression(console, inputs.suppression)
     render.print_mail_list(console, decision_counts(rows), result, out)
     render.print_caution(console)
 
 
+def _stop_on_sigterm(signum, frame) -> None:
+    """SIGTERM ends the run the way Ctrl-C does, so that temporary files are removed on the way out."""
+    raise SystemExit(128 + signum)
+
+
 def main() -> None:
     """Entry point: run the app, turning input problems into one line and exit code 2."""
+    signal.signal(signal.SIGTERM, _stop_on_sigterm)
     try:
         app(standalone_mode=False)
     except InputError as exc:
-        # One line, whatever the message quotes from the file: line breaks and other control characters are escaped.
-        message = "".join(c if c.isprintable() else repr(c)[1:-1] for c in str(exc))
-        Console(stderr=True, highlight=False, soft_wrap=True).print(f"error: {message}", markup=False, emoji=False)
-        sys.exit(2)
+        _one_line_error(str(exc))
     except typer.Exit as exc:
         sys.exit(exc.exit_code)
     except typer.Abort:
@@ -371,8 +374,19 @@ def main() -> None:
     except KeyboardInterrupt:
         sys.exit(130)
     except Exception as exc:
-        # Usage errors from the option parser know how to show themselves (exit code 2).
-        if hasattr(exc, "show") and hasattr(exc, "exit_code"):
-            exc.show()
-            sys.exit(exc.exit_code)
+        if hasattr(exc, "format_message") and hasattr(exc, "exit_code"):  # a usage error from the option parser
+            if type(exc).__name__ == "NoArgsIsHelpError":  # a command given without its arguments: show its help
+                exc.show()
+                sys.exit(exc.exit_code)
+            context = getattr(exc, "ctx", None)
+            command = context.command_path if context is not None else "lapsewise"
+            _one_line_error(f"{exc.format_message()} (see '{command} --help')")
         raise
+
+
+def _one_line_error(message: str) -> None:
+    """Print ``error: message`` as one line on stderr, whatever it quotes from a file, and exit with code 2."""
+    # Line breaks and other control characters are escaped.
+    message = "".join(c if c.isprintable() else repr(c)[1:-1] for c in message)
+    Console(stderr=True, highlight=False, soft_wrap=True).print(f"error: {message}", markup=False, emoji=False)
+    sys.exit(2)

@@ -19,25 +19,19 @@ import pandas as pd
 
 from lapsewise.budget.integer_program import Plan, make_plan
 from lapsewise.budget.mail_list import mail_list
-from lapsewise.budget.values import (
-    CustomerValues,
-    band_program,
-    band_values,
-    customer_order_values,
-    customer_values,
-    valued_states,
-)
+from lapsewise.budget.values import CustomerValues, band_program, band_program_bytes, band_values, customer_order_values, customer_values, valued_states
 from lapsewise.data.histories import compress
 from lapsewise.data.panel import Panel, panel_from_files
 from lapsewise.data.summary import CustomerSummary, summarize
+from lapsewise.data.suppression import Suppression, match_suppression
 from lapsewise.decide.order_values import spend_bands, typical_order_value
-from lapsewise.decide.program import decision_process, workers
+from lapsewise.decide.program import check_unmailed_purchases, decision_process, program_bytes, workers
 from lapsewise.decide.stop_table import StopTable, build_stop_table
 from lapsewise.errors import InputError
+from lapsewise.machine import available_memory
 from lapsewise.evaluate.policies import Simulation, simulate_policies
 from lapsewise.files.inputs import ID_COLUMN, load_attributes, load_id_list
 from lapsewise.files.policy_file import Policy, load_policy
-from lapsewise.files.writing import neutralise_formulas
 from lapsewise.model.fitted import Model, fit_model, load_model
 from lapsewise.model.posterior import posterior
 from lapsewise.model.scores import lapse_curves
@@ -47,6 +41,11 @@ def two_at_a_time(function: Callable, items) -> list:
     """``[function(item) for item in items]``, two at a time on two threads (their numpy work releases the GIL)."""
     with workers() as pool:
         return list(pool.map(function, items))
+
+
+def side_by_side_if_they_fit(sizes: list[int]) -> Callable:
+    """Two stop-rule programs at a time when two of the largest fit in the free memory, else one after the other."""
+    return two_at_a_time if 2 * max(sizes, default=0) < available_memory() else lambda function, items: list(map(function, items))
 
 
 # ---------------------------------------------------------------- files to panel
@@ -61,12 +60,11 @@ def read_policy(path: str | Path, overrides: dict | None = None) -> Policy:
     return load_policy(path, overrides)
 
 
-def suppression_flags(panel: Panel, path: str | Path | None, id_column: str = ID_COLUMN) -> np.ndarray | None:
-    """Which of the panel's customers are on the suppression list (None without a list)."""
+def read_suppression(panel: Panel, path: str | Path | None, id_column: str = ID_COLUMN, orders_name: str = "the orders") -> Suppression | None:
+    """The suppression list matched against the panel's customers (None without a list)."""
     if not path:
         return None
-    ids = load_id_list(path, id_column).frame[ID_COLUMN].to_numpy()
-    return np.isin(panel.customer_ids, ids)
+    return match_suppression(panel, load_id_list(path, id_column), orders_name)
 
 
 def attribute_values(panel: Panel, path: str | Path | None, column: str | None, id_column: str = ID_COLUMN) -> np.ndarray | None:
@@ -102,8 +100,10 @@ def fit(panel: Panel) -> Fitted:
 
 
 def stop_table(model: Model, policy: Policy) -> StopTable:
-    """The stop table, the spend bands' programs two at a time."""
-    return build_stop_table(model.churn, model.spend, policy.economics, policy.segments.spend_bands, each=two_at_a_time)
+    """The stop table, the spend bands' programs two at a time when memory allows."""
+    economics = policy.economics
+    size = program_bytes(economics.horizon_quarters, 2 * economics.horizon_quarters, 0, 0, economics.horizon_quarters)
+    return build_stop_table(model.churn, model.spend, economics, policy.segments.spend_bands, each=side_by_side_if_they_fit([size]))
 
 
 def simulation(model: Model, policy: Policy, customers: int, quarters: int | None, seed: int) -> Simulation:
@@ -122,29 +122,35 @@ def value_customers(model: Model, panel: Panel, policy: Policy, suppressed: np.n
 
     On two workers: the summary beside the compression, then the posterior beside
     the spend bands' programs (a band's program needs only the band's states; its
-    values wait for the posterior).
+    values wait for the posterior); the programs two at a time when memory allows.
     """
     economics = policy.economics
     process = decision_process(model.churn, economics.unmailed_response)
     with workers() as pool:
         summary_job = pool.submit(summarize, panel)
         histories = compress(panel)
+        check_unmailed_purchases(model.churn, economics.unmailed_response, histories, policy.source)
         posterior_job = pool.submit(posterior, process, histories)
         summary = summary_job.result()
         bands = spend_bands(model.spend, economics, policy.segments.spend_bands)
         states = valued_states(histories, bands, customer_order_values(model.spend, policy, summary))
         values = np.empty((len(states.history), len(policy.versions)))
+        members = [states.in_band(index) for index in range(len(bands))]
 
         def value_band(index: int) -> None:
-            members = states.in_band(index)
-            if not members.any():
+            if not members[index].any():
                 return
-            program = band_program(process, policy, bands[index].order_value, states, members)
-            alive = posterior_job.result().alive_now[states.history[members]]
-            values[members] = band_values(program, policy, states, members, alive)
+            program = band_program(process, policy, bands[index].order_value, states, members[index])
+            alive = posterior_job.result().alive_now[states.history[members[index]]]
+            values[members[index]] = band_values(program, policy, states, members[index], alive)
 
-        for job in [pool.submit(value_band, index) for index in range(len(bands))]:
-            job.result()
+        sizes = [band_program_bytes(process, policy, states, band) for band in members if band.any()]
+        if side_by_side_if_they_fit(sizes) is two_at_a_time:
+            for job in [pool.submit(value_band, index) for index in range(len(bands))]:
+                job.result()
+        else:
+            for index in range(len(bands)):
+                value_band(index)
         post = posterior_job.result()
     return customer_values(panel.customer_ids, summary, policy, histories, post, states, values, suppressed, attribute)
 
@@ -155,8 +161,8 @@ def plan(values: CustomerValues, policy: Policy, budget: float | None, frontier_
 
 
 def mail_list_rows(values: CustomerValues, chosen: Plan) -> pd.DataFrame:
-    """The mail list as it is written: one row per customer, formula-like text neutralised."""
-    return neutralise_formulas(mail_list(values, chosen.assignment))
+    """The mail list: one row per customer with the version and the decision."""
+    return mail_list(values, chosen.assignment)
 
 
 @dataclass(frozen=True)
@@ -165,6 +171,7 @@ class PlanInputs:
     policy: Policy
     panel: Panel
     values: CustomerValues
+    suppression: Suppression | None
 
 
 def plan_inputs(
@@ -183,6 +190,7 @@ def plan_inputs(
     model = load_model(model_file)
     policy = read_policy(policy_file, overrides)
     panel = read_panel(orders, mailings, as_of, model.fiscal_year_start, columns)
-    suppressed = suppression_flags(panel, suppress, columns["id_column"])
+    suppression = read_suppression(panel, suppress, columns["id_column"], str(orders))
     attribute = attribute_values(panel, attributes, segment_column, columns["id_column"])
-    return PlanInputs(model, policy, panel, value_customers(model, panel, policy, suppressed, attribute))
+    flags = None if suppression is None else suppression.flags
+    return PlanInputs(model, policy, panel, value_customers(model, panel, policy, flags, attribute), suppression)

@@ -12,13 +12,7 @@ from contextlib import contextmanager, nullcontext
 
 from rich import box
 from rich.console import Console
-from rich.progress import (
-    BarColumn,
-    Progress,
-    SpinnerColumn,
-    TextColumn,
-    TimeElapsedColumn,
-)
+from rich.progress import BarColumn, Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
 from lapsewise.data.panel import Panel
@@ -358,10 +352,26 @@ def print_simulation(console: Console, result, economics) -> None:
     )
 
 
+def print_suppression(console: Console, suppression) -> None:
+    """How many of the suppression list's ids are customers here (they are never mailed), with a warning when few are."""
+    if suppression is None:
+        console.print("No suppression list given (--suppress): nobody is held back from mailing for opt-outs or returned mail.")
+        return
+    console.print(
+        f"Suppression list {suppression.source}: {suppression.matched:,} of its {suppression.listed:,} ids are customers here; "
+        "they are never mailed."
+    )
+    if suppression.few_matched:
+        console.print(
+            "[yellow]warning:[/yellow] fewer than half of the suppression list's ids match a customer; if the list should cover "
+            "this base, check that both files use the same id format"
+        )
+
+
 def print_plan(console: Console, plan, panel, values) -> None:
     solution = plan.solution
     console.print(
-        f"As of {panel.as_of}: {panel.customers:,} customers, {values.suppressed_count:,} on the suppression list (never mailed). "
+        f"As of {panel.as_of}: {panel.customers:,} customers, {values.suppressed_count:,} of them suppressed (never mailed). "
         f"Budget {money(plan.budget)}; solver {solution.status} (relative gap tolerance {solution.gap_tolerance:g}) in {solution.solve_seconds:.2f} s."
     )
     table = compact_table()

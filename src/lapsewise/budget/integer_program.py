@@ -246,15 +246,23 @@ def _infeasible_reason(problem: PlanProblem) -> str:
         model, _, _ = _model(problem, relax={group})
         model.solve(_cbc())
         if pulp.LpStatus[model.status] == "Optimal":
-            cheapest = _min_share_cost(problem) if group == "min_share" else None
-            extra = f" (they need at least {cheapest:,.2f} of a budget of {problem.budget:,.2f})" if cheapest is not None and problem.budget is not None else ""
+            extra = _min_share_cost(problem) if group == "min_share" and problem.budget is not None else ""
             return f"the plan is infeasible: {text}{extra}; raise --budget or relax the rule in the policy file"
     return "the plan is infeasible: the policy's rules contradict each other (minimum shares, print runs and budget); check the policy file"
 
 
-def _min_share_cost(problem: PlanProblem) -> float:
-    cheapest = problem.piece_cost.min() if len(problem.piece_cost) else 0.0
-    return float((problem.min_count * cheapest).sum())
+def _min_share_cost(problem: PlanProblem) -> str:
+    """The cheapest way to meet every minimum share with one version, print run and setup included, as the message quotes it."""
+    pieces = int(problem.min_count.sum())
+    runs = np.maximum(pieces, problem.min_quantity)
+    costs = problem.setup_cost + problem.piece_cost * runs
+    v = int(np.argmin(costs))
+    setup = f" and its setup cost {problem.setup_cost[v]:,.2f}" if problem.setup_cost[v] else ""
+    run = f", a print run of {runs[v]:,} (its minimum)" if runs[v] > pieces else ""
+    return (
+        f" (they take {pieces:,} pieces; the cheapest way, version '{problem.versions[v]}' at {problem.piece_cost[v]:,.2f} a piece{run}{setup}, "
+        f"costs {costs[v]:,.2f} of a budget of {problem.budget:,.2f})"
+    )
 
 
 # ---------------------------------------------------------------- the plan
@@ -302,7 +310,11 @@ class Plan:
             ],
         }
         if self.frontier is not None:
-            data["frontier"] = [{"budget": round(float(r.budget), 2), "expected_profit": round(float(r.expected_profit), 4)} for r in self.frontier.itertuples()]
+            # A budget at which no plan meets the policy's rules has no value: null.
+            data["frontier"] = [
+                {"budget": round(float(r.budget), 2), "expected_profit": None if np.isnan(r.expected_profit) else round(float(r.expected_profit), 4)}
+                for r in self.frontier.itertuples()
+            ]
         return data
 
 
@@ -322,6 +334,9 @@ def assign(values: CustomerValues, problem: PlanProblem, solution: PlanSolution)
     return assignment
 
 
+SEGMENT_COLUMNS = ("segment", "version", "customers", "mailed", "cost", "expected_orders", "expected_profit")
+
+
 def segment_report(values: CustomerValues, problem: PlanProblem, solution: PlanSolution, assignment: np.ndarray) -> pd.DataFrame:
     rows = []
     for s, candidates in enumerate(_members(values, problem)):
@@ -339,7 +354,7 @@ def segment_report(values: CustomerValues, problem: PlanProblem, solution: PlanS
                 "expected_profit": float(values.values[members, assignment[members]].sum()) if len(members) else 0.0,
             }
         )
-    return pd.DataFrame(rows)
+    return pd.DataFrame(rows, columns=SEGMENT_COLUMNS)
 
 
 def make_plan(values: CustomerValues, policy: Policy, budget: float | None, frontier_points: int = 0, each: Callable = map) -> Plan:
@@ -364,7 +379,8 @@ def make_plan(values: CustomerValues, policy: Policy, budget: float | None, fron
 
 
 def budget_frontier(problem: PlanProblem, points: int, budget: float | None = None) -> pd.DataFrame:
-    """Expected value over a range of budgets, up to what mailing every customer worth mailing would cost."""
+    """Expected value over a range of budgets, up to what mailing every customer worth mailing would cost
+    (NaN at a budget where no plan meets the policy's rules)."""
     unlimited = solve_plan(problem.with_budget(None))
     top = max(unlimited.spent, budget or 0.0) * 1.1
     budgets = np.linspace(0.0, top, points + 1)[1:]

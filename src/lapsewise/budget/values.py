@@ -22,7 +22,7 @@ from lapsewise.data.histories import Histories
 from lapsewise.data.summary import CustomerSummary
 from lapsewise.decide.decisions import hold_now_value, version_mail_value
 from lapsewise.decide.order_values import SpendBand, band_index
-from lapsewise.decide.program import Program, solve
+from lapsewise.decide.program import Program, program_bytes, solve
 from lapsewise.files.policy_file import Policy
 from lapsewise.model.posterior import Posterior
 from lapsewise.model.process import Process
@@ -99,20 +99,26 @@ def valued_states(histories: Histories, bands: tuple[SpendBand, ...], order_valu
     )
 
 
+def _band_extent(states: ValuedStates, members: np.ndarray) -> dict[str, int]:
+    """The range of program states a band's members occupy."""
+    return {
+        "n_max": int(states.n[members].max()),
+        "b_max": int(states.b[members].max()),
+        "n_min": int(states.n[members].min()),
+        "x_max": int(states.x[members].max()),
+    }
+
+
 def band_program(process: Process, policy: Policy, order_value: float, states: ValuedStates, members: np.ndarray) -> Program:
     """The stop-rule program at a band's order value, solved for the states of its members (no more)."""
     economics = policy.economics
-    return solve(
-        process,
-        economics.margin(order_value),
-        reference_piece_cost(policy),
-        economics.discount,
-        economics.horizon_quarters,
-        n_max=int(states.n[members].max()),
-        b_max=int(states.b[members].max()),
-        n_min=int(states.n[members].min()),
-        x_max=int(states.x[members].max()),
-    )
+    margin = economics.margin(order_value)
+    return solve(process, margin, reference_piece_cost(policy), economics.discount, economics.horizon_quarters, **_band_extent(states, members))
+
+
+def band_program_bytes(process: Process, policy: Policy, states: ValuedStates, members: np.ndarray) -> int:
+    """The memory :func:`band_program` takes for these members."""
+    return program_bytes(policy.economics.horizon_quarters, rho=float(process.rho), **_band_extent(states, members))
 
 
 def band_values(program: Program, policy: Policy, states: ValuedStates, members: np.ndarray, alive: np.ndarray) -> np.ndarray:

@@ -72,6 +72,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from lapsewise.data.histories import Histories
+from lapsewise.errors import InputError
+from lapsewise.machine import available_memory, gigabytes
 from lapsewise.model.churn import ChurnFit
 from lapsewise.model.moments import log_alive_ahead, log_moment_grid
 from lapsewise.model.process import Process
@@ -85,6 +88,30 @@ def decision_process(fit: ChurnFit, unmailed_response: float | None = None) -> P
     """
     rho = unmailed_response if unmailed_response is not None else (fit.rho if fit.rho is not None else 0.0)
     return Process(fit.alpha, fit.beta, fit.gamma, fit.delta, float(rho))
+
+
+def check_unmailed_purchases(fit: ChurnFit, unmailed_response: float | None, histories: Histories, policy_source: str) -> None:
+    """Refuse a response of 0 to holding that the data contradict: customers who ordered in unmailed quarters.
+
+    With rho 0 such a history has probability 0, so every figure about it would be
+    NaN. The message names where the 0 comes from: the policy's ``unmailed_response``,
+    or a model fitted without a mailings file (which assumes held customers never order).
+    """
+    if decision_process(fit, unmailed_response).rho > 0:
+        return
+    customers = int(histories.count[histories.x_unmailed > 0].sum())
+    if customers == 0:
+        return
+    evidence = f"{customers:,} customers ordered in quarters in which the mailings file shows no piece"
+    if unmailed_response is not None:
+        raise InputError(
+            f"{policy_source}: unmailed_response = 0 says a customer who is not mailed never orders, but {evidence}; "
+            "raise unmailed_response, or remove it to use the model's estimate"
+        )
+    raise InputError(
+        f"the model was fitted without a mailings file, so a customer who is not mailed is taken never to order, but {evidence}; "
+        "fit the model again with --mailings, or set unmailed_response in the policy"
+    )
 
 
 @dataclass(frozen=True)
@@ -183,6 +210,40 @@ class _Reach:
     b_last: int
 
 
+def program_bytes(horizon: int, n_max: int, b_max: int, n_min: int = 0, x_max: int | None = None, rho: float = 0.5) -> int:
+    """The memory :func:`solve` takes for these arguments, in bytes: its grids, its tables per quarter ahead, and W and H.
+
+    It grows with the fourth power of the horizon (the grid's three sides and the
+    number of tables all grow with it), which is what makes a long horizon costly.
+    """
+    b_grid = b_max + 1 + (horizon if rho > 0 else 0)
+    n_grid = n_max + horizon + 1
+    x_top = n_max if x_max is None else x_max
+    depth, columns, rows = b_grid + 2, min(n_grid + 3, x_top + horizon + 4), n_grid + 2
+    grid = depth * columns * rows
+    cells = grid * (3 + (2 if rho > 0 else 0)) + 5 * depth * columns * (rows - n_min)
+    for i in range(1, horizon + 1):
+        h = min(i, horizon - 1)
+        b_last = min(b_max + horizon - h + 1, depth - 2) if rho > 0 else depth - 2
+        last = n_max + horizon - h
+        x_last = min(last + 1, x_top + horizon - h + 1)
+        cells += (2 + (rho > 0)) * (b_last + 1) * (x_last + 1) * (last + 1 - n_min)
+    cells += 2 * horizon * depth * columns * (n_max - n_min + 2)
+    return 8 * cells
+
+
+def check_program_memory(size: int, horizon: int, n_max: int) -> None:
+    """Refuse, before any work, a program that would not fit in the memory this machine has free."""
+    free = available_memory()
+    if size > free:
+        raise InputError(
+            f"the stop-rule program looking {horizon} quarters ahead for customers observed for up to {n_max} quarters needs "
+            f"about {gigabytes(size)} of memory and {gigabytes(free)} is free; lower horizon_quarters in the policy (the memory "
+            "grows with the fourth power of horizon plus history), use a shorter history (--as-of, or drop the oldest orders), "
+            "or run on a larger machine"
+        )
+
+
 def solve(
     process: Process,
     margin: float,
@@ -212,6 +273,7 @@ def solve(
     :mod:`lapsewise.decide.reference` computes the same tables state by state.
     """
     rho = float(process.rho)
+    check_program_memory(program_bytes(horizon, n_max, b_max, n_min, x_max, rho), horizon, n_max)
     # Held quarters add to b; with rho = 0 nothing is learnt from them but n still grows.
     b_grid = b_max + 1 + (horizon if rho > 0 else 0)
     n_grid = n_max + horizon + 1

@@ -27,12 +27,7 @@ import pandas as pd
 from lapsewise.data.histories import compress
 from lapsewise.data.panel import Panel, select, truncate
 from lapsewise.data.quarters import quarter_label
-from lapsewise.data.summary import (
-    DEFAULT_FREQUENCY_BANDS,
-    band_labels,
-    band_of,
-    summarize,
-)
+from lapsewise.data.summary import DEFAULT_FREQUENCY_BANDS, band_labels, band_of, summarize
 from lapsewise.errors import InputError
 from lapsewise.model.fitted import Model, fit_model
 from lapsewise.model.posterior import posterior

@@ -21,17 +21,11 @@ import pandas as pd
 
 from lapsewise.data.histories import compress_arrays, history_arrays
 from lapsewise.decide.decisions import decide_within
-from lapsewise.decide.program import Program, solve
-from lapsewise.evaluate.simulator import (
-    MailingRule,
-    SoFar,
-    TabledUniforms,
-    Traits,
-    draw_traits,
-    every_quarter,
-    run_process,
-)
+from lapsewise.decide.program import Program, program_bytes, solve
+from lapsewise.evaluate.simulator import MailingRule, SoFar, TabledUniforms, Traits, draw_traits, every_quarter, run_process
+from lapsewise.errors import InputError
 from lapsewise.files.policy_file import Economics
+from lapsewise.machine import available_memory, gigabytes
 from lapsewise.model.posterior import posterior
 from lapsewise.model.process import Process
 
@@ -108,6 +102,22 @@ def run_policy(name: str, process: Process, program: Program, economics: Economi
     return {"profit": profit, "pieces": result.mailed.sum(axis=1), "orders": result.purchased[:, 1:].sum(axis=1)}
 
 
+BYTES_PER_CUSTOMER_QUARTER = 40
+"""The simulation's memory per customer and quarter: two tables of uniform draws (8 bytes each), the purchase and
+mail flags, and what the model's policies build each quarter to read the histories (measured, rounded up)."""
+
+
+def check_simulation_memory(customers: int, quarters: int, program: int = 0) -> None:
+    """Refuse, before any work, a simulation (with its stop-rule program of ``program`` bytes) that would not fit in the free memory."""
+    size = BYTES_PER_CUSTOMER_QUARTER * customers * (quarters + 1) + program
+    free = available_memory()
+    if size > free:
+        raise InputError(
+            f"simulating {customers:,} customers over {quarters} quarters needs about {gigabytes(size)} of memory and "
+            f"{gigabytes(free)} is free; simulate fewer customers (--customers) or quarters (--quarters)"
+        )
+
+
 def simulate_policies(process: Process, economics: Economics, order_value: float, customers: int, quarters: int, seed: int) -> Simulation:
     """Run every policy on the same simulated customers and compare them with the optimal one.
 
@@ -121,13 +131,15 @@ def simulate_policies(process: Process, economics: Economics, order_value: float
     horizon = min(quarters, economics.horizon_quarters)
     rolling = quarters > economics.horizon_quarters
     if rolling:
-        program = solve(process, margin, economics.piece_cost, economics.discount, horizon, n_max=quarters, b_max=quarters, x_max=quarters)
+        extent = {"n_max": quarters, "b_max": quarters, "x_max": quarters}
     else:
         # Quarter t decides with quarters - t + 1 left, so with h left a state has n, x and
         # (when held quarters teach something) b of at most quarters - h: the grid of a
         # single root at n = 0 with the whole window ahead covers them all. With rho = 0
         # held quarters move n but not the belief, so b must be allowed in full.
-        program = solve(process, margin, economics.piece_cost, economics.discount, horizon, n_max=0, b_max=quarters if process.rho == 0 else 0, x_max=0)
+        extent = {"n_max": 0, "b_max": quarters if process.rho == 0 else 0, "x_max": 0}
+    check_simulation_memory(customers, quarters, program_bytes(horizon, rho=float(process.rho), **extent))
+    program = solve(process, margin, economics.piece_cost, economics.discount, horizon, **extent)
     program_value = None
     if not rolling:
         start = decide_within(program, np.array([0]), np.array([0]), np.array([0]), np.array([1.0]), horizon)

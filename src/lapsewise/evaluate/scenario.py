@@ -28,12 +28,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 import pandas as pd
 
-from lapsewise.evaluate.simulator import (
-    StreamedUniforms,
-    draw_traits,
-    lapse_rule,
-    run_process,
-)
+from lapsewise.evaluate.simulator import StreamedUniforms, draw_traits, lapse_rule, run_process
 from lapsewise.model.fitted import Model
 from lapsewise.model.process import Process
 

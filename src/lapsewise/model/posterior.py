@@ -73,7 +73,8 @@ def dert(process: Process, post: Posterior, discount_rate: float) -> np.ndarray:
 
     ``DERT = sum_{h>=1} P(purchase in n + h) / (1 + d)^h``, summed in closed form:
     ``B(gamma, delta + n + 1) / B(gamma, delta) / (1 + d) * 2F1(1, delta + n + 1; gamma + delta + n + 1; 1 / (1 + d))``
-    times the buy factor.
+    times the buy factor. Where SciPy's hypergeometric function gives no finite value
+    (very large gamma + delta), the series is summed term by term (:func:`_survival_series`).
 
     References
     ----------
@@ -83,7 +84,27 @@ def dert(process: Process, post: Posterior, discount_rate: float) -> np.ndarray:
     n = post.n.astype(float)
     head = log_survival(process.gamma, process.delta, n + 1) - math.log1p(discount_rate)
     series = special.hyp2f1(1.0, process.delta + n + 1, process.gamma + process.delta + n + 1, 1.0 / (1.0 + discount_rate))
+    failed = ~np.isfinite(series)
+    if failed.any():
+        quarters, where = np.unique(n[failed], return_inverse=True)
+        series[failed] = _survival_series(process, quarters, discount_rate)[where]
     return np.exp(post.log_buy_factor + head) * series
+
+
+def _survival_series(process: Process, n: np.ndarray, discount_rate: float, terms: int = 100_000) -> np.ndarray:
+    """``2F1(1, delta + n + 1; gamma + delta + n + 1; z)`` with ``z = 1 / (1 + d)`` as the plain sum of its terms,
+    ``sum_k E[(1-theta)^(n+1+k)] / E[(1-theta)^(n+1)] z^k``; every term is positive and they fall, so the sum
+    stops when a term no longer changes it (or after ``terms`` terms)."""
+    total = np.ones(len(n))
+    log_z = -math.log1p(discount_rate)
+    start = log_survival(process.gamma, process.delta, n + 1)
+    for first in range(1, terms, 1_000):
+        k = np.arange(first, first + 1_000)[None, :]
+        block = np.exp(log_survival(process.gamma, process.delta, n[:, None] + 1 + k) - start[:, None] + k * log_z).sum(axis=1)
+        total += block
+        if np.all(block <= 1e-17 * total):
+            break
+    return total
 
 
 def lapse_curve(process: Process, x: int, t_x: int, max_silent: int) -> tuple[np.ndarray, np.ndarray]:

@@ -10,13 +10,8 @@ import pandas as pd
 
 from lapsewise.data.histories import compress
 from lapsewise.data.panel import Panel
-from lapsewise.data.summary import (
-    DEFAULT_FREQUENCY_BANDS,
-    CustomerSummary,
-    band_labels,
-    band_of,
-    summarize,
-)
+from lapsewise.data.summary import DEFAULT_FREQUENCY_BANDS, CustomerSummary, band_labels, band_of, summarize
+from lapsewise.errors import InputError
 from lapsewise.model.fitted import Model
 from lapsewise.model.posterior import dert, expected_orders, lapse_curve, posterior
 from lapsewise.model.spend import expected_order_value
@@ -27,6 +22,10 @@ def quarterly_rate(annual_rate: float) -> float:
     return (1.0 + annual_rate) ** 0.25 - 1.0
 
 
+SCORE_NULLABLE = ("expected_order_value",)
+"""Score columns left empty where the figure does not exist (no order-value model, or an undefined expectation)."""
+
+
 def score_customers(model: Model, panel: Panel, horizon: int = 4, annual_discount_rate: float = 0.10) -> pd.DataFrame:
     """Per-customer quantities at the panel's as-of quarter, computed once per distinct history.
 
@@ -35,8 +34,14 @@ def score_customers(model: Model, panel: Panel, horizon: int = 4, annual_discoun
     quarter), dert (discounted expected residual transactions at the quarterly
     equivalent of ``annual_discount_rate``), expected_order_value.
     """
-    histories = compress(panel)
     process = model.churn.process
+    if annual_discount_rate == 0 and process.gamma <= 1:
+        # sum_h E[(1-theta)^(n+h)] diverges when gamma <= 1 (the churn rates' density does not vanish at 0).
+        raise InputError(
+            f"--annual-discount-rate 0: DERT is infinite for this model (gamma = {process.gamma:.3g} is at most 1, so the "
+            "undiscounted expected orders never converge); give a discount rate above 0"
+        )
+    histories = compress(panel)
     post = posterior(process, histories)
     summary = summarize(panel)
     inverse = histories.inverse
