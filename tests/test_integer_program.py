@@ -234,3 +234,44 @@ def test_everyone_suppressed_gives_an_empty_plan_not_an_error():
     plan = make_plan(values, one_version_policy(), budget=100.0)
     assert plan.solution.objective == 0.0 and (plan.assignment < 0).all()
     assert set(mail_list(values, plan.assignment).decision) == {"suppressed"}
+
+
+# ---------------------------------------------------------------- exact selection within what binds
+
+
+def test_when_only_the_budget_binds_the_mailed_are_exactly_the_most_valuable():
+    # One version, no shares, no setup: the best customers by value must be mailed, whatever segment they are in
+    # (the program's chunks are linear within, so the counts per segment alone could leave a better one out).
+    rng = np.random.default_rng(21)
+    values = synthetic_values(rng, customers=20_000)
+    budget = 4_282 * 0.5
+    plan = make_plan(values, one_version_policy(piece_cost=0.5), budget=budget)
+    mailed = np.flatnonzero(plan.assignment >= 0)
+    ranked = np.argsort(-values.values[:, 0], kind="stable")
+    expected = ranked[: len(mailed)]
+    assert len(mailed) == min(4_282, int((values.values[:, 0] > 0).sum()))
+    assert set(mailed) == set(expected)
+    assert values.values[mailed, 0].min() >= values.values[np.setdiff1d(np.arange(20_000), mailed), 0].max()
+    assert not plan.rule.any()
+
+
+def test_customers_out_of_value_order_name_the_rule_that_puts_them_there():
+    rng = np.random.default_rng(22)
+    values = synthetic_values(rng, customers=3_000)
+    segments = Segments(min_share={"0 repeat, 0 silent": 1.0}, max_share={"2 repeat, 2 silent": 0.1})
+    policy = Policy(one_version_policy().economics, one_version_policy().versions, segments, "test.toml")
+    plan = make_plan(values, policy, budget=600 * 0.5)
+    rows = mail_list(values, plan.assignment, plan.rule)
+    value = values.values[:, 0]
+    mailed = rows.decision == "mail"
+    waiting = rows.decision == "over-budget"
+    lowest_mailed = value[mailed & (rows.rule == "")].min()
+    # Every over-budget customer worth more than a freely chosen mailed one is held back by a named rule.
+    assert set(rows.rule[waiting & (value > lowest_mailed)]) <= {"max_share"}
+    assert (rows.rule[waiting & (value > lowest_mailed)] == "max_share").all()
+    assert (rows.segment[waiting & (rows.rule == "max_share")] == "2 repeat, 2 silent").all()
+    # Every mailed customer below the best over-budget one that no rule holds back is forced in by the minimum share.
+    best_waiting = value[waiting & (rows.rule == "")].max()
+    assert (rows.rule[mailed & (value < best_waiting)] == "min_share").all()
+    assert (rows.segment[rows.rule == "min_share"] == "0 repeat, 0 silent").all()
+    assert (rows.rule == "min_share").any() and (rows.rule == "max_share").any()

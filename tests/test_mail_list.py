@@ -23,7 +23,7 @@ def test_mail_list_columns_and_decisions():
     values = synthetic_values(rng, customers=300, suppressed_share=0.1)
     plan = make_plan(values, one_version_policy(piece_cost=0.5), budget=10.0)
     rows = mail_list(values, plan.assignment)
-    assert list(rows.columns) == ["customer_id", "segment", "version", "p_alive", "p_buy", "value_of_mailing", "decision"]
+    assert list(rows.columns) == ["customer_id", "segment", "version", "p_alive", "p_buy", "value_of_mailing", "decision", "rule"]
     assert set(rows.decision) <= {"mail", "stop", "over-budget", "suppressed"}
     assert (rows.loc[rows.decision == "stop", "value_of_mailing"] <= 0).all()
     assert (rows.loc[rows.decision == "over-budget", "value_of_mailing"] > 0).all()

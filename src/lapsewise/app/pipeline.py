@@ -162,7 +162,7 @@ def plan(values: CustomerValues, policy: Policy, budget: float | None, frontier_
 
 def mail_list_rows(values: CustomerValues, chosen: Plan) -> pd.DataFrame:
     """The mail list: one row per customer with the version and the decision."""
-    return mail_list(values, chosen.assignment)
+    return mail_list(values, chosen.assignment, chosen.rule)
 
 
 @dataclass(frozen=True)

@@ -277,6 +277,7 @@ class Plan:
     frontier: pd.DataFrame | None
     assignment: np.ndarray  # per customer: version index, or -1
     setup_total: float
+    rule: np.ndarray | None = None  # per customer: index into RULES of the rule that puts them out of value order
 
     @property
     def expected_profit(self) -> float:
@@ -324,25 +325,102 @@ def _members(values: CustomerValues, problem: PlanProblem) -> list[np.ndarray]:
     return grouped(codes, len(problem.segments))
 
 
-def assign(values: CustomerValues, problem: PlanProblem, solution: PlanSolution) -> np.ndarray:
-    """Which version each customer gets (-1: not mailed): in each segment, the best ``mailed`` customers by that version's value."""
-    assignment = np.full(len(values.customer_ids), -1, dtype=np.int64)
-    for s, rows in enumerate(_members(values, problem)):
-        for v in np.flatnonzero(solution.mailed[s]):
-            order = rows[np.argsort(-values.values[rows, v], kind="stable")]
-            assignment[order[: solution.mailed[s, v]]] = v
-    return assignment
+RULES = ("", "min_share", "max_share", "one version per segment")
+"""Why a customer is out of value order within their version: nothing, forced in by a minimum share, kept out by a
+maximum share, or kept out because their segment is mailed another version."""
+
+
+@dataclass(frozen=True)
+class Assignment:
+    """Which version each customer gets (``version``, -1: not mailed) and the rule, if any, that puts them out of value
+    order within their version (``rule``, an index into :data:`RULES`)."""
+
+    version: np.ndarray
+    rule: np.ndarray
+
+
+def assign(values: CustomerValues, problem: PlanProblem, solution: PlanSolution) -> Assignment:
+    """The customers the plan mails: for each version, exactly the best by value among those the rules allow.
+
+    The integer program fixes how many pieces of each version are sent and which segment takes which version;
+    its values are linear within chunks of customers, so which customers fill those counts is settled here,
+    exactly. For each version v, in each segment that takes v the ``min_share`` best are mailed first; then the
+    best customers of all the segments that take v, or take no version yet, fill v's count, a segment stopping at
+    its ``max_share``. The budget, the print runs and the setup costs are those of the program's solution. With one
+    version and no shares the mailed customers are exactly the top of the ranking by value (per unit of piece cost).
+    """
+    customers = len(values.customer_ids)
+    version = np.full(customers, -1, dtype=np.int64)
+    forced = np.zeros(customers, dtype=bool)
+    members = _members(values, problem)
+    segment_of = np.full(customers, -1, dtype=np.int64)
+    for s, rows in enumerate(members):
+        segment_of[rows] = s
+    holder = np.full(len(problem.segments), -1, dtype=np.int64)  # the version each segment takes
+    for s, v in zip(*np.nonzero(solution.mailed)):
+        holder[s] = v
+    for v in np.argsort(-solution.mailed.sum(axis=0), kind="stable"):
+        count = int(solution.mailed[:, v].sum())
+        if count == 0:
+            continue
+        value = values.values[:, v]
+        for s in np.flatnonzero(holder == v):  # minimum shares first, each segment's best
+            rows = members[s]
+            best = rows[np.argsort(-value[rows], kind="stable")][: int(problem.min_count[s])]
+            version[best] = v
+            forced[best] = True
+        open_segment = (holder == v) | (holder == -1)
+        pool = np.flatnonzero((segment_of >= 0) & (version < 0))
+        pool = pool[open_segment[segment_of[pool]]]
+        pool = pool[np.argsort(-value[pool], kind="stable")]
+        room = (problem.max_count - np.bincount(segment_of[version == v], minlength=len(problem.segments)))[segment_of[pool]]
+        rank = _rank_within(segment_of[pool])
+        chosen = pool[rank < room][: max(count - int((version == v).sum()), 0)]
+        version[chosen] = v
+        holder[np.unique(segment_of[chosen])] = v
+    return Assignment(version, _rules(values, problem, version, forced, segment_of, holder))
+
+
+def _rank_within(groups: np.ndarray) -> np.ndarray:
+    """Each position's rank among the earlier positions of the same group (0 for a group's first)."""
+    order = np.argsort(groups, kind="stable")
+    sorted_groups = groups[order]
+    starts = np.flatnonzero(np.r_[True, sorted_groups[1:] != sorted_groups[:-1]])
+    first = np.repeat(starts, np.diff(np.r_[starts, len(groups)]))
+    rank = np.empty(len(groups), dtype=np.int64)
+    rank[order] = np.arange(len(groups)) - first
+    return rank
+
+
+def _rules(values: CustomerValues, problem: PlanProblem, version: np.ndarray, forced: np.ndarray, segment_of: np.ndarray, holder: np.ndarray) -> np.ndarray:
+    """Name the rule behind every customer out of value order within a version (see :func:`assign`)."""
+    rule = np.zeros(len(version), dtype=np.int64)
+    best = values.values.argmax(axis=1)
+    waiting = (version < 0) & (segment_of >= 0) & (values.values[np.arange(len(best)), best] > 0)
+    mailed_count = np.bincount(segment_of[version >= 0], minlength=len(problem.segments))
+    for v in np.unique(version[version >= 0]):
+        value = values.values[:, v]
+        free = (version == v) & ~forced
+        lowest_free = value[free].min() if free.any() else np.inf
+        above = waiting & (best == v) & (value > lowest_free)
+        held_by_other = above & (holder[np.maximum(segment_of, 0)] != v) & (holder[np.maximum(segment_of, 0)] >= 0)
+        rule[held_by_other] = RULES.index("one version per segment")
+        at_cap = above & ~held_by_other & (mailed_count[np.maximum(segment_of, 0)] >= problem.max_count[np.maximum(segment_of, 0)])
+        rule[at_cap] = RULES.index("max_share")
+        best_waiting = value[waiting & (best == v)].max() if (waiting & (best == v)).any() else -np.inf
+        rule[forced & (version == v) & (value < best_waiting)] = RULES.index("min_share")
+    return rule
 
 
 SEGMENT_COLUMNS = ("segment", "version", "customers", "mailed", "cost", "expected_orders", "expected_profit")
 
 
-def segment_report(values: CustomerValues, problem: PlanProblem, solution: PlanSolution, assignment: np.ndarray) -> pd.DataFrame:
+def segment_report(values: CustomerValues, problem: PlanProblem, assignment: np.ndarray) -> pd.DataFrame:
+    """Per segment: the version it is mailed, customers, mailed, cost, expected orders and value, from the assignment."""
     rows = []
     for s, candidates in enumerate(_members(values, problem)):
         members = candidates[assignment[candidates] >= 0]
-        chosen = np.flatnonzero(solution.mailed[s])
-        v = int(chosen[0]) if len(chosen) else -1
+        v = int(assignment[members[0]]) if len(members) else -1
         rows.append(
             {
                 "segment": problem.segments[s],
@@ -369,13 +447,13 @@ def make_plan(values: CustomerValues, policy: Policy, budget: float | None, fron
     problems = [problem] + ([problem.with_budget(budget + step)] if budget is not None else [])
     solutions = iter(each(solve_plan, problems))
     solution = next(solutions)
-    assignment = assign(values, problem, solution)
-    report = segment_report(values, problem, solution, assignment)
+    assigned = assign(values, problem, solution)
+    report = segment_report(values, problem, assigned.version)
     shadow = None if budget is None else (next(solutions).objective - solution.objective) / step
     frontier = None
     if frontier_points:
         frontier = budget_frontier(problem, frontier_points, budget)
-    return Plan(budget, solution, report, shadow, frontier, assignment, float(problem.setup_cost[solution.used].sum()))
+    return Plan(budget, solution, report, shadow, frontier, assigned.version, float(problem.setup_cost[solution.used].sum()), assigned.rule)
 
 
 def budget_frontier(problem: PlanProblem, points: int, budget: float | None = None) -> pd.DataFrame:

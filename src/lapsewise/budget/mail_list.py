@@ -10,18 +10,24 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from lapsewise.budget.integer_program import RULES
 from lapsewise.budget.segments import categorical
 from lapsewise.budget.values import CustomerValues
 
 DECISIONS = ("mail", "stop", "over-budget", "suppressed")
 
 
-def mail_list(values: CustomerValues, assignment: np.ndarray) -> pd.DataFrame:
-    """One row per customer: customer_id, segment, version, p_alive, p_buy, value_of_mailing, decision.
+def mail_list(values: CustomerValues, assignment: np.ndarray, rule: np.ndarray | None = None) -> pd.DataFrame:
+    """One row per customer: customer_id, segment, version, p_alive, p_buy, value_of_mailing, decision, rule.
 
     The version shown is the one assigned, or for customers not mailed the version
     with the highest value. ``stop``: no version is worth mailing; ``over-budget``:
     worth mailing but the budget ran out; ``suppressed``: on the suppression list.
+    ``rule`` is empty, or names the policy rule that puts the customer out of value
+    order within their version (:data:`lapsewise.budget.integer_program.RULES`): a
+    mailed customer forced in by ``min_share``, or an over-budget one worth more than
+    a mailed customer of the same version but kept out by ``max_share`` or by ``one
+    version per segment``.
     """
     best = values.values.argmax(axis=1)
     version_index = np.where(assignment >= 0, assignment, best)
@@ -40,6 +46,7 @@ def mail_list(values: CustomerValues, assignment: np.ndarray) -> pd.DataFrame:
             "p_buy": values.p_buy * values.responses[version_index],
             "value_of_mailing": value,
             "decision": pd.Categorical.from_codes(decision, categories=list(DECISIONS)),
+            "rule": pd.Categorical.from_codes(np.zeros(len(decision), dtype=np.int64) if rule is None else rule, categories=list(RULES)),
         }
     )
 
