@@ -207,7 +207,7 @@ def test_a_minimum_run_that_cannot_fit_names_the_rule():
     with pytest.raises(PlanError) as caught:
         make_plan(single, only_slim, budget=1.0)
     run = max(members, 40)
-    assert f"version 'slim' at 0.30 a piece" in str(caught.value) and f"costs {50 + 0.3 * run:,.2f}" in str(caught.value)
+    assert "version 'slim' at 0.30 a piece" in str(caught.value) and f"costs {50 + 0.3 * run:,.2f}" in str(caught.value)
 
 
 def test_a_frontier_budget_that_cannot_meet_the_rules_has_no_value():

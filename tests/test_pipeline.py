@@ -45,3 +45,28 @@ def test_stop_table_and_plan_side_by_side_equal_them_in_turn():
     assert side_by_side.solution.objective == one_by_one.solution.objective
     assert side_by_side.shadow_price == one_by_one.shadow_price
     np.testing.assert_array_equal(side_by_side.assignment, one_by_one.assignment)
+
+
+def test_the_recurring_budget_price_is_a_fixed_point_and_falls_as_the_budget_rises():
+    # The price settles where re-solving with it reproduces it (within the stated tolerance), and a larger budget
+    # binds less: its price is no higher.
+    panel = small_panel()
+    values = pipeline.value_customers(MODEL, panel, POLICY)
+    prices = []
+    for budget in (15.0, 40.0, 80.0):
+        result = pipeline.recurring_budget_plan(MODEL, panel, POLICY, budget, values)
+        assert result.settled, result.prices
+        again = pipeline.plan(pipeline.value_customers(MODEL, panel, POLICY, budget_price=result.price), POLICY, budget)
+        assert abs(again.shadow_price - result.price) <= max(pipeline.PRICE_TOLERANCE * result.price, 0.001) + 0.02 * result.price
+        prices.append(result.price)
+    assert prices[0] >= prices[1] - 1e-9 >= prices[2] - 2e-9 and prices[0] > prices[2]
+
+
+def test_a_recurring_budget_needs_a_budget():
+    from lapsewise.errors import InputError
+
+    inputs = pipeline.PlanInputs(MODEL, POLICY, small_panel(), pipeline.value_customers(MODEL, small_panel(), POLICY), None)
+    import pytest
+
+    with pytest.raises(InputError, match="--recurring-budget: a budget that binds every quarter needs --budget"):
+        pipeline.budget_plan(inputs, None, recurring=True)

@@ -276,6 +276,9 @@ def simulate(
     render.print_caution(console)
 
 
+RecurringOption = typer.Option(
+    False, "--recurring-budget", help="The budget binds every quarter: value later pieces at piece cost plus its shadow price (re-solved until it settles)."
+)
 SuppressOption = typer.Option(None, "--suppress", help="Suppression list (customer_id column): never mailed.")
 AttributesOption = typer.Option(None, "--attributes", help="Customer attributes file to cross segments with (needs --segment-column).")
 SegmentColumnOption = typer.Option(None, "--segment-column", help="Column of the attributes file to cross segments with.")
@@ -295,6 +298,7 @@ def plan(
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
     frontier: bool = typer.Option(False, "--frontier", help="Also show expected value over a range of budgets."),
+    recurring: bool = RecurringOption,
     columns: dict | None = None,
     json_output: bool = JsonOption,
     overrides: dict | None = None,
@@ -305,16 +309,19 @@ def plan(
         with step("Reading the files and valuing a mailing to every customer"):
             inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
         with step("Solving the budget integer program"):
-            result = pipeline.plan(inputs.values, inputs.policy, budget, frontier_points=10 if frontier else 0)
+            result, recurring_result = pipeline.budget_plan(inputs, budget, recurring, frontier_points=10 if frontier else 0)
     panel = inputs.panel
     if json_output:
         suppression = None if inputs.suppression is None else inputs.suppression.to_dict()
-        typer.echo(dumps_stable({**result.to_dict(), "mailing_history": panel.mailing_history, "suppression": suppression}), nl=False)
+        extra = {"mailing_history": panel.mailing_history, "suppression": suppression}
+        extra["recurring_budget"] = None if recurring_result is None else recurring_result.to_dict()
+        typer.echo(dumps_stable({**result.to_dict(), **extra}), nl=False)
         return
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_suppression(console, inputs.suppression)
-    render.print_plan(console, result, panel, inputs.values)
+    render.print_plan(console, result, panel, inputs.values if recurring_result is None else recurring_result.values)
+    render.print_recurring_budget(console, recurring_result)
     render.print_caution(console)
 
 
@@ -332,6 +339,7 @@ def mail_list_command(
     suppress: Optional[Path] = SuppressOption,
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
+    recurring: bool = RecurringOption,
     columns: dict | None = None,
     force: bool = ForceOption,
     overrides: dict | None = None,
@@ -343,13 +351,14 @@ def mail_list_command(
         with step("Reading the files and valuing a mailing to every customer"):
             inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
         with step("Solving the budget integer program"):
-            result = pipeline.plan(inputs.values, inputs.policy, budget)
+            result, recurring_result = pipeline.budget_plan(inputs, budget, recurring)
         with step("Writing the mail list"):
-            rows = pipeline.mail_list_rows(inputs.values, result)
+            rows = pipeline.mail_list_rows(inputs.values if recurring_result is None else recurring_result.values, result)
             save_csv(out, rows, force)
     if not inputs.panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_suppression(console, inputs.suppression)
+    render.print_recurring_budget(console, recurring_result)
     render.print_mail_list(console, decision_counts(rows), result, out)
     render.print_caution(console)
 

@@ -117,12 +117,15 @@ def simulation(model: Model, policy: Policy, customers: int, quarters: int | Non
 # ---------------------------------------------------------------- values, plan and mail list
 
 
-def value_customers(model: Model, panel: Panel, policy: Policy, suppressed: np.ndarray | None = None, attribute: np.ndarray | None = None) -> CustomerValues:
+def value_customers(
+    model: Model, panel: Panel, policy: Policy, suppressed: np.ndarray | None = None, attribute: np.ndarray | None = None, budget_price: float = 0.0
+) -> CustomerValues:
     """Every customer's value of mailing this quarter, per version.
 
     On two workers: the summary beside the compression, then the posterior beside
     the spend bands' programs (a band's program needs only the band's states; its
     values wait for the posterior); the programs two at a time when memory allows.
+    ``budget_price`` is added to the cost of every later quarter's piece (a recurring budget's shadow price).
     """
     economics = policy.economics
     process = decision_process(model.churn, economics.unmailed_response)
@@ -140,7 +143,7 @@ def value_customers(model: Model, panel: Panel, policy: Policy, suppressed: np.n
         def value_band(index: int) -> None:
             if not members[index].any():
                 return
-            program = band_program(process, policy, bands[index].order_value, states, members[index])
+            program = band_program(process, policy, bands[index].order_value, states, members[index], budget_price)
             alive = posterior_job.result().alive_now[states.history[members[index]]]
             values[members[index]] = band_values(program, policy, states, members[index], alive)
 
@@ -160,6 +163,79 @@ def plan(values: CustomerValues, policy: Policy, budget: float | None, frontier_
     return make_plan(values, policy, budget, frontier_points, each=two_at_a_time)
 
 
+PRICE_TOLERANCE = 0.005
+"""The recurring budget's price has settled when a re-solve moves it by less than this share (or 0.001 currency units)."""
+MAX_PRICE_ROUNDS = 12
+
+
+@dataclass(frozen=True)
+class RecurringBudget:
+    """A budget that binds every quarter: the shadow price that later pieces are valued with, and the plan at it.
+
+    ``price`` is the fixed point of "value later pieces at piece cost plus the price, plan, read the plan's shadow
+    price"; ``settled`` says whether the rounds met :data:`PRICE_TOLERANCE`; ``prices`` lists the price of each
+    round. ``plain_values`` are the values with later pieces at piece cost, for the plan's profit under that reading.
+    """
+
+    price: float
+    settled: bool
+    prices: tuple[float, ...]
+    plan: Plan
+    values: CustomerValues
+    plain_values: CustomerValues
+
+    @property
+    def expected_profit_plain(self) -> float:
+        """The chosen plan's expected value with later pieces valued at their piece cost (the one-quarter reading)."""
+        mailed = self.plan.assignment >= 0
+        chosen = self.plan.assignment[mailed]
+        return float(self.plain_values.values[np.flatnonzero(mailed), chosen].sum() - self.plan.setup_total)
+
+    def to_dict(self) -> dict:
+        return {
+            "price": round(self.price, 6),
+            "settled": self.settled,
+            "rounds": len(self.prices),
+            "expected_profit_recurring": round(self.plan.expected_profit, 4),
+            "expected_profit_one_quarter": round(self.expected_profit_plain, 4),
+        }
+
+
+def budget_plan(inputs: "PlanInputs", budget: float | None, recurring: bool, frontier_points: int = 0) -> tuple[Plan, "RecurringBudget | None"]:
+    """The plan for this quarter's budget; with ``recurring`` (or the policy's ``recurring_budget``) one that binds every quarter."""
+    if not (recurring or inputs.policy.economics.recurring_budget):
+        return plan(inputs.values, inputs.policy, budget, frontier_points), None
+    if budget is None:
+        raise InputError("--recurring-budget: a budget that binds every quarter needs --budget, the quarter's amount")
+    recurring_result = recurring_budget_plan(inputs.model, inputs.panel, inputs.policy, budget, inputs.values, inputs.suppressed, inputs.attribute)
+    chosen = recurring_result.plan if not frontier_points else plan(recurring_result.values, inputs.policy, budget, frontier_points)
+    return chosen, recurring_result
+
+
+def recurring_budget_plan(
+    model: Model, panel: Panel, policy: Policy, budget: float, values: CustomerValues, suppressed: np.ndarray | None = None, attribute: np.ndarray | None = None
+) -> RecurringBudget:
+    """Plan with a budget that binds every quarter: later pieces cost piece cost plus the budget's shadow price.
+
+    Starting from the plan on ``values`` (later pieces at piece cost), each round values the customers with the
+    last round's shadow price added to later pieces and re-plans, until the price settles. Rounds average the last
+    two prices, which damps the see-saw a discrete plan's price can show.
+    """
+    plain = plan(values, policy, budget)
+    price = max(float(plain.shadow_price or 0.0), 0.0)
+    prices, current, current_values, settled = [price], plain, values, price == 0.0
+    for _ in range(MAX_PRICE_ROUNDS if not settled else 0):
+        current_values = value_customers(model, panel, policy, suppressed, attribute, budget_price=price)
+        current = plan(current_values, policy, budget)
+        found = max(float(current.shadow_price or 0.0), 0.0)
+        settled = abs(found - price) <= max(PRICE_TOLERANCE * price, 0.001)
+        price = found if settled else (price + found) / 2
+        prices.append(price)
+        if settled:
+            break
+    return RecurringBudget(price, settled, tuple(prices), current, current_values, values)
+
+
 def mail_list_rows(values: CustomerValues, chosen: Plan) -> pd.DataFrame:
     """The mail list: one row per customer with the version and the decision."""
     return mail_list(values, chosen.assignment, chosen.rule)
@@ -172,6 +248,11 @@ class PlanInputs:
     panel: Panel
     values: CustomerValues
     suppression: Suppression | None
+    attribute: np.ndarray | None = None
+
+    @property
+    def suppressed(self) -> np.ndarray | None:
+        return None if self.suppression is None else self.suppression.flags
 
 
 def plan_inputs(
@@ -193,4 +274,4 @@ def plan_inputs(
     suppression = read_suppression(panel, suppress, columns["id_column"], str(orders))
     attribute = attribute_values(panel, attributes, segment_column, columns["id_column"])
     flags = None if suppression is None else suppression.flags
-    return PlanInputs(model, policy, panel, value_customers(model, panel, policy, flags, attribute), suppression)
+    return PlanInputs(model, policy, panel, value_customers(model, panel, policy, flags, attribute), suppression, attribute)

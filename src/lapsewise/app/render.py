@@ -405,6 +405,18 @@ def print_plan(console: Console, plan, panel, values) -> None:
         console.print(frontier)
 
 
+def print_recurring_budget(console: Console, recurring) -> None:
+    """The recurring budget's price and the plan's value under both readings (nothing without --recurring-budget)."""
+    if recurring is None:
+        return
+    state = "settled" if recurring.settled else f"not settled after {len(recurring.prices)} rounds (the last price is used)"
+    console.print(
+        f"Recurring budget: later pieces valued at their cost plus the budget's shadow price, {recurring.price:.2f} a piece "
+        f"({state}). The plan is worth {money(recurring.plan.expected_profit)} with later pieces at that price, and "
+        f"{money(recurring.expected_profit_plain)} if later quarters had no budget limit (pieces at their cost)."
+    )
+
+
 def print_mail_list(console: Console, counts: dict[str, int], plan, out) -> None:
     """Customers per decision (:func:`lapsewise.budget.mail_list.decision_counts`) and where the list is."""
     table = compact_table()

@@ -109,11 +109,16 @@ def _band_extent(states: ValuedStates, members: np.ndarray) -> dict[str, int]:
     }
 
 
-def band_program(process: Process, policy: Policy, order_value: float, states: ValuedStates, members: np.ndarray) -> Program:
-    """The stop-rule program at a band's order value, solved for the states of its members (no more)."""
+def band_program(process: Process, policy: Policy, order_value: float, states: ValuedStates, members: np.ndarray, budget_price: float = 0.0) -> Program:
+    """The stop-rule program at a band's order value, solved for the states of its members (no more).
+
+    Later quarters' pieces cost the full piece's cost plus ``budget_price``, the shadow price of a budget that
+    binds every quarter (0: the budget is this quarter's alone).
+    """
     economics = policy.economics
     margin = economics.margin(order_value)
-    return solve(process, margin, reference_piece_cost(policy), economics.discount, economics.horizon_quarters, **_band_extent(states, members))
+    future_piece = reference_piece_cost(policy) + budget_price
+    return solve(process, margin, future_piece, economics.discount, economics.horizon_quarters, **_band_extent(states, members))
 
 
 def band_program_bytes(process: Process, policy: Policy, states: ValuedStates, members: np.ndarray) -> int:

@@ -25,8 +25,9 @@ ECONOMICS_KEYS = {
     "horizon_quarters": "how many quarters ahead each decision looks",
     "order_value": "optional: a fixed value per order instead of the spend model",
     "unmailed_response": "optional: overrides the model's rho",
+    "recurring_budget": "optional: true when the budget binds every quarter, so later pieces cost their price plus the budget's shadow price",
 }
-OPTIONAL_ECONOMICS = ("order_value", "unmailed_response")
+OPTIONAL_ECONOMICS = ("order_value", "unmailed_response", "recurring_budget")
 VERSION_KEYS = ("name", "piece_cost", "response", "setup_cost", "min_quantity")
 SEGMENT_KEYS = ("frequency_bands", "silent_bands", "spend_bands", "min_share", "max_share")
 MAX_HORIZON = 80
@@ -50,6 +51,7 @@ class Economics:
     horizon_quarters: int
     order_value: float | None = None
     unmailed_response: float | None = None
+    recurring_budget: bool = False
 
     @property
     def discount(self) -> float:
@@ -135,6 +137,10 @@ def _economics(source: str, raw: dict) -> Economics:
     }
     if raw.get("order_value") is not None:
         values["order_value"] = _number(source, "order_value", raw["order_value"], 0.0, MAX_VALUE)
+    if raw.get("recurring_budget") is not None:
+        if not isinstance(raw["recurring_budget"], bool):
+            raise InputError(f"{source}: recurring_budget = {_shown(raw['recurring_budget'])} is not true or false; write recurring_budget = true")
+        values["recurring_budget"] = raw["recurring_budget"]
     if raw.get("unmailed_response") is not None:
         values["unmailed_response"] = _number(source, "unmailed_response", raw["unmailed_response"], 0.0, 1.0)
     return Economics(**values)
