@@ -28,7 +28,9 @@ def canonical_ids(uniques) -> tuple[pd.Index, dict[str, np.ndarray]]:
     that an accented letter typed as one character or as a letter and an accent is the same
     id; and a whole number written as a decimal (``1.0``, ``42.00``, a float column of a
     Parquet file) written plainly (``1``, ``42``). Leading zeros are kept: ``007`` is not ``7``.
-    Returns the canonical texts and, per rule, a mask of the ids it changed.
+    Returns the canonical texts and masks: per rule (``trimmed``, ``composed``, ``decimal``)
+    the ids it changed, and ``blank`` and ``long`` (over ``MAX_ID_LENGTH`` characters) ids.
+    Everything runs in pyarrow's kernels over the distinct ids, in one pass each.
     """
     strings, decimal_written = _as_text(uniques)
     stripped = pc.utf8_trim_whitespace(strings)
@@ -39,9 +41,16 @@ def canonical_ids(uniques) -> tuple[pd.Index, dict[str, np.ndarray]]:
     if not ascii_only.all():
         normalised = pc.utf8_normalize(stripped, "NFC")
         composed = _mask(pc.not_equal(normalised, stripped))
-    plain = pc.replace_substring_regex(normalised, r"^(\d+)\.0+$", r"\1")
-    decimal_written = decimal_written | _mask(pc.not_equal(plain, normalised))
-    return pd.Index(plain.to_numpy(zero_copy_only=False), dtype=object), {"trimmed": trimmed, "composed": composed, "decimal": decimal_written}
+    whole_decimal = _mask(pc.match_substring_regex(normalised, r"^\d+\.0+$"))
+    changed = {"trimmed": trimmed, "composed": composed, "decimal": decimal_written | whole_decimal}
+    # Not rules but facts the caller checks, found here in the same pass: blank ids and over-long ones.
+    changed["blank"] = _mask(pc.is_in(pc.utf8_lower(normalised), value_set=pa.array(["", "nan", "none", "null"])))
+    changed["long"] = _mask(pc.greater(pc.utf8_length(normalised), MAX_ID_LENGTH))
+    if whole_decimal.any():
+        normalised = pc.replace_substring_regex(normalised, r"^(\d+)\.0+$", r"\1")
+    if not (trimmed.any() or composed.any() or changed["decimal"].any()) and pd.api.types.is_object_dtype(getattr(uniques, "dtype", None)):
+        return pd.Index(uniques, dtype=object), changed  # already canonical text: no conversion back from pyarrow
+    return pd.Index(normalised.to_numpy(zero_copy_only=False), dtype=object), changed
 
 
 def _mask(flags: pa.Array) -> np.ndarray:
@@ -85,8 +94,8 @@ def clean_ids(name: str, column: pd.Series, repairs: dict[str, int], factorized:
     """
     codes, uniques = factorized if factorized is not None else pd.factorize(column, use_na_sentinel=True)
     text, changed = canonical_ids(uniques)
-    blank_uniques = np.asarray((text == "") | (text.str.lower().isin(["nan", "none", "null"])))
-    long = np.asarray(text.str.len() > MAX_ID_LENGTH) & ~blank_uniques
+    blank_uniques = changed.pop("blank")
+    long = changed.pop("long") & ~blank_uniques
     if long.any():
         first = int(np.flatnonzero(np.isin(codes, np.flatnonzero(long)))[0])
         raise InputError(
