@@ -283,3 +283,20 @@ def test_a_real_browser_renders_the_report(report, tmp_path):
     assert dom.stdout.count("<svg") == 6
     for title in TITLES.values():
         assert title.replace("&", "&amp;") in dom.stdout
+
+
+def test_a_suppression_list_is_counted_and_named(demo_dir, tmp_path):
+    # 20 ids taken from the demo's orders file: all 20 are customers, so the plan holds back exactly 20.
+    ids = sorted({line.split(",")[0] for line in (demo_dir / "orders.csv").read_text().splitlines()[1:]})[:20]
+    listed = tmp_path / "suppress.csv"
+    listed.write_text("customer_id\n" + "".join(f"{i}\n" for i in ids))
+    out = tmp_path / "report.html"
+    result = run_cli(
+        "report", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv",
+        "--policy", demo_dir / "policy.toml", "--suppress", listed, "--horizon-quarters", "6", "--out", out,
+    )
+    assert result.code == 0, result.stderr
+    page = parse(out.read_text(encoding="utf-8"))
+    assert page.numbers["plan.suppressed"] == "20"
+    assert page.numbers["plan.budget"] == "no limit"  # no --budget: everyone worth mailing is mailed
+    assert f"Suppression list {listed}: 20 of its 20 ids are customers here" in " ".join(page.texts)

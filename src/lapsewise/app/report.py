@@ -242,7 +242,7 @@ def frontier_figure(plan: Plan) -> str:
     axes.set_ylabel("Expected value over holding (currency units)")
     axes.set_title("Expected value against budget")
     axes.grid(True, color="0.85", linewidth=0.5)
-    axes.legend(fontsize=7)
+    axes.legend(fontsize=7, loc="lower right")
     return svg(figure, "frontier")
 
 
@@ -252,7 +252,7 @@ def backtest_figure(result: Backtest) -> str:
     place = np.arange(len(quarters))
     by_quarter.bar(place - 0.2, quarters["actual"], width=0.4, color=_style(1)["color"], label="actual")
     by_quarter.bar(place + 0.2, quarters["predicted"], width=0.4, color="white", edgecolor="black", hatch="///", label="predicted")
-    by_quarter.set_xticks(place, quarters["quarter"])
+    by_quarter.set_xticks(place, quarters["quarter"], rotation=25, ha="right", fontsize=7)
     by_quarter.set_xlabel("Holdout quarter")
     by_quarter.set_ylabel("Repeat purchases (count)")
     by_quarter.set_title("By quarter")
@@ -297,12 +297,13 @@ def _number(key: str, text: str) -> str:
     return f'<span class="number" data-key="{html.escape(key)}">{html.escape(text)}</span>'
 
 
-def _table(header: list[str], rows: list[list[str]], caption: str = "") -> str:
+def _table(header: list[str], rows: list[list[str]], caption: str = "", kind: str = "") -> str:
     """An HTML table; cells are HTML already (escape text before)."""
     head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
     body = "".join("<tr>" + "".join(f"<td>{cell}</td>" for cell in row) + "</tr>" for row in rows)
     caption = f"<caption>{html.escape(caption)}</caption>" if caption else ""
-    return f"<table>{caption}<thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+    kind = f' class="{kind}"' if kind else ""
+    return f"<table{kind}>{caption}<thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
 def _section(name: str, figure: str, reading: str, beside: str = "", note: str = "") -> str:
@@ -474,7 +475,7 @@ def model_section(results: ReportResults) -> str:
         for name in ("p", "q", "gamma"):
             estimate, error = _estimate(getattr(model.spend, name), model.spend.std_errors.get(name))
             lines.append([f"spend {name}", estimate, error, "order value ~ gamma-gamma" if name == "p" else ""])
-    parameters = _table(["Parameter", "Estimate", "Std. error", "Meaning"], lines, f"Fitted on {model.customers:,} customers as of {model.as_of}")
+    parameters = _table(["Parameter", "Estimate", "Std. error", "Meaning"], lines, f"Fitted on {model.customers:,} customers as of {model.as_of}", "words")
     repairs = [[html.escape(what), f"{count:,}"] for what, count in panel.counts.items()] or [["Nothing was left out or repaired.", ""]]
     repairs_table = _table(["Left out or repaired while reading the files", "Count"], repairs)
     warnings = "".join(f"<li>warning: {html.escape(w)}</li>" for w in model.warnings)
@@ -524,7 +525,7 @@ figcaption, .reading { font-weight: bold; margin: 0.3em 0 0.8em 0; }
 table { border-collapse: collapse; margin: 0.6em 0; font-size: 0.85em; }
 caption { text-align: left; font-style: italic; padding-bottom: 0.2em; }
 th, td { border-bottom: 1px solid #bbb; padding: 0.15em 0.6em; text-align: right; }
-th:first-child, td:first-child { text-align: left; }
+th:first-child, td:first-child, table.words td:last-child, table.words th:last-child { text-align: left; }
 .cautions li { margin-bottom: 0.3em; }
 @page { margin: 14mm; }
 @media print {
