@@ -363,6 +363,36 @@ def mail_list_command(
     render.print_caution(console)
 
 
+@app.command()
+@column_names
+@economics_overrides
+def report(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    orders: Path = OrdersArgument,
+    policy_file: Path = PolicyOption,
+    out: Path = typer.Option(..., "--out", help="Report to write (one self-contained HTML file)."),
+    budget: Optional[float] = typer.Option(None, "--budget", min=0.0, max=MAX_BUDGET, help="Mail budget to mark on the frontier; without it everyone worth mailing is mailed."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = AsOfOption,
+    suppress: Optional[Path] = SuppressOption,
+    columns: dict | None = None,
+    force: bool = ForceOption,
+    overrides: dict | None = None,
+) -> None:
+    """Write an HTML report with a figure per result: base, lapse curve, stop table, budget frontier, backtest, policies."""
+    from lapsewise.app import report as report_page
+
+    check_writable(out, force)
+    console = _console()
+    with render.progress(console, 2) as step:
+        with step("Valuing every customer, solving the stop table and plan, backtesting and simulating"):
+            results = report_page.collect(model_file, orders, policy_file, budget, mailings, as_of, suppress, columns, overrides)
+        with step("Drawing the figures"):
+            write_text_atomic(out, report_page.report_html(results), force)
+    console.print(f"Report written to {out}.")
+    render.print_caution(console)
+
+
 def _stop_on_sigterm(signum, frame) -> None:
     """SIGTERM ends the run the way Ctrl-C does, so that temporary files are removed on the way out."""
     raise SystemExit(128 + signum)

@@ -15,7 +15,7 @@ from pathlib import Path
 import pandas as pd
 from rich.console import Console
 
-from lapsewise.app import pipeline, render
+from lapsewise.app import pipeline, render, report
 from lapsewise.budget.mail_list import decision_counts
 from lapsewise.data.summary import describe_base
 from lapsewise.errors import InputError
@@ -44,6 +44,7 @@ def write_demo_files(folder: Path, data: DemoData, force: bool) -> dict[str, Pat
         "policy": folder / "policy.toml",
         "model": folder / "model.json",
         "mail_list": folder / "mail-list.csv",
+        "report": folder / "report.html",
     }
     for path in paths.values():
         check_writable(path, force)  # every output of the demo, before anything is written
@@ -67,7 +68,8 @@ def run_demo(console: Console, folder: Path, customers: int, quarters: int, seed
     )
     panel = pipeline.read_panel(paths["orders"], paths["mailings"], str(data.as_of), 1)
     console.rule("The customer base")
-    render.print_panel_summary(console, panel, describe_base(panel))
+    base = describe_base(panel)
+    render.print_panel_summary(console, panel, base)
 
     console.rule("The fitted model")
     fitted = pipeline.fit(panel)
@@ -77,13 +79,15 @@ def run_demo(console: Console, folder: Path, customers: int, quarters: int, seed
     render.print_truth_comparison(console, compare_with_truth(model, data.truth))
     console.print(f"Model written to {paths['model']}.")
 
-    holdout = max(1, min(4, quarters // 4))  # a short demo history keeps enough calibration quarters
+    holdout = report.holdout_quarters(quarters)  # a short demo history keeps enough calibration quarters
     console.rule(f"Backtest: the last {holdout} quarters held out")
-    render.print_backtest(console, run_backtest(panel, holdout))
+    backtest = run_backtest(panel, holdout)
+    render.print_backtest(console, backtest)
 
     policy = pipeline.read_policy(paths["policy"])
     console.rule(f"When to stop mailing: the stop table (policy: {paths['policy']})")
-    render.print_stop_table(console, pipeline.stop_table(model, policy), model)
+    stop_table = pipeline.stop_table(model, policy)
+    render.print_stop_table(console, stop_table, model)
 
     console.rule("The stop rule against rules of thumb: simulation")
     simulation = pipeline.simulation(model, policy, SIMULATED_CUSTOMERS, None, seed)
@@ -91,9 +95,15 @@ def run_demo(console: Console, folder: Path, customers: int, quarters: int, seed
 
     console.rule(f"This quarter's plan at a sample budget of {DEMO_BUDGET:,.0f}")
     values = pipeline.value_customers(model, panel, policy)
-    plan = pipeline.plan(values, policy, DEMO_BUDGET)
+    plan = pipeline.plan(values, policy, DEMO_BUDGET, report.FRONTIER_POINTS)
     render.print_plan(console, plan, panel, values)
     rows = pipeline.mail_list_rows(values, plan)
     save_csv(paths["mail_list"], rows, force)
     render.print_mail_list(console, decision_counts(rows), plan, paths["mail_list"])
+
+    results = report.ReportResults(
+        str(paths["orders"]), str(paths["policy"]), panel, base, model, fitted.curves, policy, stop_table, backtest, simulation, values, plan, None
+    )
+    write_text_atomic(paths["report"], report.report_html(results), force)
+    console.print(f"The report, a figure per step, is in {paths['report']}.")
     render.print_caution(console)
