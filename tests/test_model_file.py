@@ -116,8 +116,8 @@ def test_any_edited_model_file_is_read_whole_or_refused_in_one_line(tmp_path, ed
     for key_path, value, remove in edits:
         try:
             data = changed_in(data, key_path, value, remove)
-        except (KeyError, TypeError):
-            continue  # the parent was itself replaced by an earlier edit
+        except (KeyError, TypeError, AttributeError):
+            continue  # the parent was itself replaced (by a value that is not a table) in an earlier edit
     path = write(tmp_path, json.dumps(data))
     try:
         model = load_model(path)
