@@ -352,7 +352,7 @@ _CURRENCY = r"(?:[A-Z]{3}|[A-Z]{0,2}[$€£¥₹₩₽₺₪]|kr|Fr\.?|zł|Kč|R
 _AMOUNT_PARTS = re.compile(
     rf"^(?P<open>\()?\s*(?P<lead_minus>[-−])?\s*(?P<lead>{_CURRENCY})?\s*(?P<minus>[-−])?\s*"
     r"(?P<number>[0-9][0-9.,' \u00a0\u202f]*|[.,][0-9]+)"
-    rf"\s*(?P<trail_minus>[-−])?\s*(?P<trail>{_CURRENCY})?\s*(?P<close>\))?$"
+    rf"\s*(?P<trail_minus>[-−])?\s*(?P<trail>{_CURRENCY})?\s*(?P<end_minus>[-−])?\s*(?P<close>\))?$"
 )
 _GROUPED = {  # the number with its grouping, for each decimal mark
     ".": re.compile(r"^(?:[0-9]{1,3}(?:(?P<g>[,' \u00a0\u202f])[0-9]{3})?(?:(?P=g)[0-9]{3})*|[0-9]*)(?:\.[0-9]*)?$"),
@@ -371,7 +371,7 @@ def _formatted_amounts(
     used = (distinct != "").to_numpy()
     matched = parts["number"].notna().to_numpy()
     opened, closed = parts["open"].notna().to_numpy(), parts["close"].notna().to_numpy()
-    signs = (parts[["lead_minus", "minus", "trail_minus"]].notna().sum(axis=1)).to_numpy()
+    signs = (parts[["lead_minus", "minus", "trail_minus", "end_minus"]].notna().sum(axis=1)).to_numpy()
     currencies = parts[["lead", "trail"]].notna().sum(axis=1).to_numpy()
     well_formed = matched & (opened == closed) & (signs + opened <= 1) & (currencies <= 1)
     number = parts["number"].fillna("").str.rstrip(" \u00a0\u202f")
@@ -426,7 +426,7 @@ def _formatted_amounts(
         "amounts with a currency sign or code read": currencies > 0,
         "amounts with thousands separators read": number.str.contains(rf"[{re.escape(other)}' \u00a0\u202f]", regex=True).to_numpy(),
         "amounts in parentheses read as negative (accounting style)": opened,
-        "amounts with the minus sign after the number or the currency read": parts[["minus", "trail_minus"]].notna().any(axis=1).to_numpy(),
+        "amounts with the minus sign after the number or the currency read": parts[["minus", "trail_minus", "end_minus"]].notna().any(axis=1).to_numpy(),
         "amounts with a decimal comma read": used & np.full(len(uniques), decimal_comma) & number.str.contains(",", regex=False).to_numpy(),
     }
     for what, mask in counted.items():
