@@ -143,6 +143,7 @@ def parse_dates(
         filler = text[keep].iloc[0] if keep.any() else ""
         text = text.where(keep, filler)
         parsed = _parse_with_format(text, date_format)
+        parsed = parsed.where(parsed.notna() | keep, pd.Timestamp("1970-01-01"))  # rows not kept are not checked
         hint = f"does not match --date-format {date_format}; check the option"
         counted = np.asarray(parsed.notna()) & keep
         if counted.any():
@@ -153,7 +154,6 @@ def parse_dates(
         hint = "is not a date; write dates as YYYY-MM-DD or pass --date-format"
         if parsed.isna().any():
             parsed = _parse_other_dates(name, column_name, text, parsed, keep, is_csv, repairs)
-    parsed = parsed.where(parsed.notna() | keep, pd.Timestamp("1970-01-01"))  # rows not kept are not checked
     bad = np.asarray(parsed.isna())
     if bad.any():
         first = np.flatnonzero(bad)[0]
