@@ -176,10 +176,37 @@ BAD_INPUTS = [
     BadInput("misnamed-date-column", GOOD_ORDERS.replace("order_date", "date", 1), ("'order_date'", "--date-column")),
     BadInput("misnamed-amount-column", GOOD_ORDERS.replace("amount", "value", 1), ("'amount'", "--amount-column")),
     # The bad date is on the second data line, which a spreadsheet shows as row 3 (the header is row 1).
+    # 15/13/2023 fits neither day-first (month 13) nor month-first (month 15); 15/01/2023 alone is now
+    # read as a day-first date, so it no longer serves here.
     BadInput(
         "unparseable-date",
-        orders_text("A1,2023-01-15,10", "B2,15/01/2023,5"),
-        ("row 3", "column order_date", "'15/01/2023'"),
+        orders_text("A1,2023-01-15,10", "B2,15/13/2023,5"),
+        ("row 3", "column order_date", "'15/13/2023'", "--date-format"),
+    ),
+    # 03/04/2023 and 05/06/2023 are valid both day-first and month-first, and no date settles it.
+    BadInput(
+        "ambiguous-dates",
+        orders_text("A1,03/04/2023,10", "B2,05/06/2023,5"),
+        ("column order_date", "'03/04/2023'", "day-first", "month-first", "--date-format"),
+    ),
+    # 1,250 and 2,500 are 1250 with a thousands separator or 1.25 with a decimal comma; nothing says which.
+    BadInput(
+        "ambiguous-decimal-mark",
+        orders_text('A1,2023-01-15,"1,250"', 'B2,2023-02-01,"2,500"'),
+        ("row 2", "column amount", "'1,250'", "--decimal-comma", "--decimal-point"),
+    ),
+    # 12.50 has a decimal point and 7,25 a decimal comma: two conventions in one column.
+    BadInput(
+        "mixed-decimal-marks",
+        orders_text("A1,2023-01-15,12.50", 'B2,2023-02-01,"7,25"'),
+        ("column amount", "'12.50'", "'7,25'", "--decimal-comma"),
+    ),
+    # The option says the dates are day.month.year; 2023-01-15 is not.
+    BadInput(
+        "date-format-not-matched",
+        GOOD_ORDERS,
+        ("row 2", "column order_date", "'2023-01-15'", "--date-format %d.%m.%Y"),
+        options=("--date-format", "%d.%m.%Y"),
     ),
     # The third data line is row 4.
     BadInput(
@@ -187,9 +214,11 @@ BAD_INPUTS = [
         orders_text("A1,2023-01-15,10", "B2,2023-02-01,5", "C3,2023-03-01,abc"),
         ("row 4", "column amount", "'abc'"),
     ),
-    BadInput("semicolon-delimited", GOOD_ORDERS.replace(",", ";"), ("semicolon",)),
+    # A semicolon-delimited file is read now; one whose header is cut by a delimiter the option forces is not.
+    BadInput("wrong-delimiter-option", GOOD_ORDERS.replace(",", ";"), ("semicolon", "--delimiter"), options=("--delimiter", "tab")),
     BadInput("binary-garbage", b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR\x00\x01\xff\xfe", ("binary",)),
-    BadInput("not-utf8", GOOD_ORDERS.replace("B2", "Bj\u00f6rn").encode("latin-1"), ("not UTF-8",)),
+    # The o-umlaut is byte F6 in latin-1 and cp1252; the message names the likely encoding and the option.
+    BadInput("not-utf8", GOOD_ORDERS.replace("B2", "Bj\u00f6rn").encode("latin-1"), ("not UTF-8", "--encoding cp1252")),
     BadInput("invalid-as-of", GOOD_ORDERS, ("--as-of", "'2023-02-30'"), options=("--as-of", "2023-02-30"), named=None),
     # The first order is on 2023-01-15, so an as-of of 2022-12-31 comes before it.
     BadInput("as-of-before-first-order", GOOD_ORDERS, ("--as-of 2022-12-31", "2023-01-15"), options=("--as-of", "2022-12-31")),

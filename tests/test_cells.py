@@ -142,3 +142,109 @@ def test_float_and_integer_id_columns_read_as_plain_whole_numbers(tmp_path):
 def test_an_id_that_cannot_be_an_id_is_refused_with_its_row(write_file):
     with pytest.raises(InputError, match="row 3, column customer_id: an id of 300 characters"):
         load_orders(write_file("orders.csv", orders_text("A1,2023-01-15,10", "x" * 300 + ",2023-01-15,10")))
+
+
+# ---------------------------------------------------------------- amounts and dates in the forms systems export
+
+from decimal import Decimal  # noqa: E402
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from lapsewise.files.cells import parse_amounts, parse_dates  # noqa: E402
+
+
+def _grouped(digits: str, separator: str) -> str:
+    """'1234567' as '1,234,567' (with ``separator`` between groups of three from the right)."""
+    head = len(digits) % 3 or 3
+    return separator.join([digits[:head]] + [digits[i : i + 3] for i in range(head, len(digits), 3)])
+
+
+@st.composite
+def written_amounts(draw, decimal_comma: bool):
+    """An amount with two decimals, and how an export might write it: grouping, currency, sign style."""
+    value = draw(st.decimals(min_value=Decimal("-999999999.99"), max_value=Decimal("999999999.99"), places=2, allow_nan=False, allow_infinity=False))
+    whole, cents = f"{abs(value):.2f}".split(".")
+    groups = [".", " ", "\u00a0", "'", ""] if decimal_comma else [",", " ", "\u00a0", "'", ""]
+    number = _grouped(whole, draw(st.sampled_from(groups))) + ("," if decimal_comma else ".") + cents
+    currency = draw(st.sampled_from(["", "$", "\u20ac", "\u00a3", "EUR ", "USD", " CHF", " \u20ac"]))
+    written = currency + number if currency.strip() in ("$", "\u00a3", "EUR") and not currency.startswith(" ") else number + currency
+    if value < 0:
+        style = draw(st.sampled_from(["minus", "parentheses", "trailing minus", "minus before currency"]))
+        written = {"minus": "-" + written, "parentheses": f"({written})", "trailing minus": written + "-", "minus before currency": "-" + written}[style]
+    return written, float(value)
+
+
+@settings(max_examples=300, deadline=None)
+@given(data=st.data(), decimal_comma=st.booleans())
+def test_amounts_in_export_forms_parse_to_the_value_they_were_made_from(data, decimal_comma):
+    """Each written amount, read with its decimal mark named, is the value it was written from (float of the decimal)."""
+    written, value = data.draw(written_amounts(decimal_comma))
+    values, blank = parse_amounts("f.csv", "amount", pd.Series([written]), True, decimal_comma)
+    assert not blank[0]
+    assert values[0] == value, (written, values[0], value)
+
+
+@settings(max_examples=100, deadline=None)
+@given(data=st.data(), decimal_comma=st.booleans())
+def test_the_decimal_mark_is_found_from_amounts_with_cents(data, decimal_comma):
+    """Amounts written with cents show their decimal mark, so a column of them is read right without the option."""
+    pairs = data.draw(st.lists(written_amounts(decimal_comma), min_size=1, max_size=6))
+    values, _ = parse_amounts("f.csv", "amount", pd.Series([w for w, _ in pairs]), True, None)
+    assert values.tolist() == [v for _, v in pairs]
+
+
+# (strftime format, whether the file's dates need an unambiguous day): the formats a column is recognised in
+DATE_FORMS = [
+    ("%Y-%m-%d", False),
+    ("%m/%d/%Y", True),
+    ("%d/%m/%Y", True),
+    ("%d.%m.%Y", True),
+    ("%m-%d-%Y", True),
+    ("%d.%m.%y", True),
+    ("%Y%m%d", False),
+    ("%d %b %Y", False),
+    ("%b %d, %Y", False),
+    ("%d-%b-%y", False),
+    ("%m/%d/%Y %H:%M", True),
+]
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    dates=st.lists(st.datetimes(min_value=dt.datetime(1970, 1, 1), max_value=dt.datetime(2060, 12, 31)), min_size=1, max_size=8),
+    form=st.sampled_from(DATE_FORMS),
+    named=st.booleans(),
+)
+def test_dates_in_export_forms_parse_to_the_date_they_were_made_from(dates, form, named):
+    """Dates written in a format are read back as written (to the minute the format keeps), with the format named
+    by --date-format or, when the column shows which number is the day, found without it."""
+    date_format, needs_a_late_day = form
+    if needs_a_late_day and not named:
+        dates = dates + [dt.datetime(2001, 10, 25, 13, 45)]  # day 25 cannot be a month: the column is unambiguous
+    written = [d.strftime(date_format) for d in dates]
+    keep = np.ones(len(written), dtype=bool)
+    parsed = parse_dates("f.csv", "order_date", pd.Series(written), True, keep, date_format if named else None)
+    expected = [dt.datetime.strptime(w, date_format) for w in written]  # the date and time the written form keeps
+    assert [pd.Timestamp(p).to_pydatetime() for p in parsed] == expected
+
+
+def test_dates_that_fit_day_first_and_month_first_are_refused_naming_the_option():
+    # 01/02/2023 and 03/04/2023: every day is 12 or less, so either order gives real dates.
+    with pytest.raises(InputError, match=r"column order_date: dates such as '01/02/2023' fit both day-first and month-first; pass --date-format"):
+        parse_dates("f.csv", "order_date", pd.Series(["01/02/2023", "03/04/2023"]), True, np.ones(2, dtype=bool))
+
+
+def test_a_typo_among_day_first_dates_is_named_by_its_row():
+    # 31/02/2023 is no day in either order; the other dates are day-first. It is on the second data line: row 3.
+    with pytest.raises(InputError, match=r"row 3, column order_date: '31/02/2023' is not a date"):
+        parse_dates("f.csv", "order_date", pd.Series(["25/01/2023", "31/02/2023"]), True, np.ones(2, dtype=bool))
+
+
+def test_plain_amounts_and_iso_dates_count_no_conversion():
+    """The clean path converts nothing, so it counts nothing."""
+    repairs: dict[str, int] = {}
+    values, _ = parse_amounts("f.csv", "amount", pd.Series(["12.50", "-3", "1234.5"]), True, None, repairs)
+    parse_dates("f.csv", "order_date", pd.Series(["2023-01-15", "2023-02-01"]), True, np.ones(2, dtype=bool), None, repairs)
+    assert values.tolist() == [12.5, -3.0, 1234.5]
+    assert repairs == {}

@@ -357,3 +357,45 @@ def test_absurd_but_allowed_models_and_policies_give_finite_outputs_or_one_line(
                 continue
             text = written.read_text() if written is not None else result.stdout
             assert not any(token in text.lower() for token in ("nan", "inf")), (command, index)
+
+
+# ---------------------------------------------------------------- files as order and donor systems export them
+
+# Invented donor exports: the same three gifts (and two mailings) as a US system and a German one would write them.
+DONOR_US = "Donor ID,Gift Date,Gift Amount\nD1,10/18/2022,$104.00\nD2,11/23/2022,\"$1,250.00\"\nD1,02/14/2023,($4.00)\nD2,03/20/2023,$25.50\n"
+DONOR_DE = "Donor ID;Gift Date;Gift Amount\nD1;18.10.2022;104,00 \u20ac\nD2;23.11.2022;1.250,00 \u20ac\nD1;14.02.2023;-4,00 \u20ac\nD2;20.03.2023;25,50 \u20ac\n"
+DONOR_CLEAN = "Donor ID,Gift Date,Gift Amount\nD1,2022-10-18,104.00\nD2,2022-11-23,1250.00\nD1,2023-02-14,-4.00\nD2,2023-03-20,25.50\n"
+DONOR_OPTIONS = ["--id-column", "Donor ID", "--date-column", "Gift Date", "--amount-column", "Gift Amount", "--as-of", "2023-03-31"]
+
+
+def test_fit_reads_donor_exports_with_the_options_and_writes_the_clean_files_model(tmp_path):
+    """The same gifts as US and German exports give the model file the clean CSV gives, byte for byte."""
+    written = {}
+    for label, text, extra in (("clean", DONOR_CLEAN, []), ("us", DONOR_US, []), ("de", DONOR_DE, ["--decimal-comma", "--date-format", "%d.%m.%Y"])):
+        orders = tmp_path / f"{label}.csv"
+        orders.write_text(text, encoding="cp1252" if label == "de" else "utf-8")
+        out = tmp_path / f"{label}.json"
+        encoding = ["--encoding", "cp1252"] if label == "de" else []
+        result = run_cli("fit", orders, "--out", out, *DONOR_OPTIONS, *extra, *encoding)
+        assert result.code == 0, result
+        written[label] = out.read_text()
+    assert written["us"] == written["clean"]
+    assert written["de"] == written["clean"]
+
+
+@pytest.mark.parametrize(
+    "text, fragments",
+    [
+        # Every day is 12 or less, so 01/02/2023 is 1 February or 2 January: the option must say which.
+        ("customer_id,order_date,amount\nA1,01/02/2023,10\nB2,03/04/2023,5\n", ("column order_date", "day-first and month-first", "--date-format")),
+        # 1,250 is 1250 or 1.25; no amount in the column shows the decimal mark.
+        ('customer_id,order_date,amount\nA1,2023-01-15,"1,250"\nB2,2023-02-01,"2,500"\n', ("column amount", "'1,250'", "--decimal-comma", "--decimal-point")),
+    ],
+)
+def test_ambiguous_files_are_refused_and_nothing_is_written(tmp_path, text, fragments):
+    orders = tmp_path / "orders.csv"
+    orders.write_text(text)
+    out = tmp_path / "model.json"
+    assert_one_error_line(run_cli("fit", orders, "--out", out, "--as-of", "2023-06-30"), str(orders), *fragments)
+    assert not out.exists()
+    assert list(tmp_path.iterdir()) == [orders]  # no partial or temporary file either

@@ -17,6 +17,7 @@ from conftest import ANY_FILE, ANY_FILE_SETTINGS, GOOD_ORDERS, MAILINGS_HEADER, 
 from lapsewise.data.panel import build_panel, panel_from_files
 from lapsewise.errors import InputError
 from lapsewise.files.inputs import load_id_list, load_mailings, load_orders, load_orders_and_mailings
+from lapsewise.files.tables import Reading
 
 
 def ids_of(loaded) -> list[str]:
@@ -249,3 +250,150 @@ def test_every_command_reads_the_quarterly_table(tmp_path):
 def test_an_as_of_centuries_after_the_orders_is_refused_before_memory_is_spent(tmp_path):
     with pytest.raises(InputError, match="up to 120 quarters"):
         panel_from_files(write(tmp_path, "orders.csv", ORDERS), as_of="2200-12-31")
+
+
+# ---------------------------------------------------------------- the same base in the forms systems export
+
+
+def _invented_base(customers: int = 240, seed: int = 18) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Invented orders and mailings over 2021-2023: ids with accented names, amounts with cents, some returns."""
+    rng = np.random.default_rng(seed)
+    names = np.array(["Zo\u00eb", "M\u00fcller", "Ren\u00e9e", "Jos\u00e9", "Ang\u00e9lique", "Bj\u00f6rn"])
+    ids = [f"{names[i % len(names)]}-{i}" for i in range(customers)]
+    days = pd.date_range("2021-01-01", "2023-12-31", freq="D")
+    order_count = rng.integers(1, 6, customers)
+    order_ids = np.repeat(ids, order_count)
+    order_days = days[rng.integers(0, len(days), len(order_ids))]
+    cents = rng.integers(500, 250_000, len(order_ids))  # 5.00 to 2,499.99, so some need a thousands separator
+    cents[rng.random(len(cents)) < 0.05] *= -1  # returns, written as negatives
+    orders = pd.DataFrame({"customer_id": order_ids, "order_date": order_days, "cents": cents})
+    mailed = rng.random((customers, 12)) < 0.6  # mailed on the 20th or so of a quarter's first month: day-first is unambiguous
+    who, quarter = np.nonzero(mailed)
+    mailings = pd.DataFrame({"customer_id": np.array(ids)[who], "mail_date": pd.Timestamp("2021-01-01") + pd.to_timedelta(quarter * 91 + 20, unit="D")})
+    return orders, mailings
+
+
+def _plain(cents: np.ndarray) -> list[str]:
+    return [f"{c / 100:.2f}" for c in cents]
+
+
+def _dollars(cents: np.ndarray) -> list[str]:
+    """$1,234.50, and a return as ($12.50): accounting style."""
+    shown = [f"${abs(c) / 100:,.2f}" for c in cents]
+    return [f"({s})" if c < 0 else s for s, c in zip(shown, cents)]
+
+
+def _euros(cents: np.ndarray) -> list[str]:
+    """1.234,50 € and -12,50 €: a decimal comma, dots between thousands."""
+    swapped = [f"{abs(c) / 100:,.2f}".replace(",", "_").replace(".", ",").replace("_", ".") for c in cents]
+    return [("-" if c < 0 else "") + s + " \u20ac" for s, c in zip(swapped, cents)]
+
+
+def _write_text(path, frame: pd.DataFrame, sep: str = ",", encoding: str = "utf-8", compression=None) -> str:
+    frame.to_csv(path, index=False, sep=sep, encoding=encoding, compression=compression)
+    return str(path)
+
+
+def _export(folder, form: str, orders: pd.DataFrame, mailings: pd.DataFrame) -> tuple[str, str, dict]:
+    """Write the base as ``form`` into ``folder``; return the orders and mailings paths and the reading options."""
+    iso = lambda dates: dates.dt.strftime("%Y-%m-%d")  # noqa: E731
+    clean_orders = pd.DataFrame({"customer_id": orders["customer_id"], "order_date": iso(orders["order_date"]), "amount": _plain(orders["cents"].to_numpy())})
+    clean_mailings = pd.DataFrame({"customer_id": mailings["customer_id"], "mail_date": iso(mailings["mail_date"])})
+    o, m = folder / f"orders-{form}", folder / f"mailings-{form}"
+    if form == "clean":
+        return _write_text(f"{o}.csv", clean_orders), _write_text(f"{m}.csv", clean_mailings), {}
+    if form == "currency":
+        shown = clean_orders.assign(amount=_dollars(orders["cents"].to_numpy()))
+        return _write_text(f"{o}.csv", shown), _write_text(f"{m}.csv", clean_mailings), {}
+    if form == "us-dates":
+        us = lambda dates: dates.dt.strftime("%m/%d/%Y")  # noqa: E731
+        return (
+            _write_text(f"{o}.csv", clean_orders.assign(order_date=us(orders["order_date"]))),
+            _write_text(f"{m}.csv", clean_mailings.assign(mail_date=us(mailings["mail_date"]))),
+            {},
+        )
+    if form == "day-first-semicolon-comma":
+        eu = lambda dates: dates.dt.strftime("%d.%m.%Y")  # noqa: E731
+        shown = clean_orders.assign(order_date=eu(orders["order_date"]), amount=_euros(orders["cents"].to_numpy()))
+        return (
+            _write_text(f"{o}.csv", shown, sep=";"),
+            _write_text(f"{m}.csv", clean_mailings.assign(mail_date=eu(mailings["mail_date"])), sep=";"),
+            {"decimal_comma": True},
+        )
+    if form == "cp1252":
+        return _write_text(f"{o}.csv", clean_orders, encoding="cp1252"), _write_text(f"{m}.csv", clean_mailings, encoding="cp1252"), {"encoding": "cp1252"}
+    if form == "gzip":
+        return _write_text(f"{o}.csv.gz", clean_orders, compression="gzip"), _write_text(f"{m}.csv.gz", clean_mailings, compression="gzip"), {}
+    if form == "zip":
+        zipped = lambda name: {"method": "zip", "archive_name": name}  # noqa: E731
+        return (
+            _write_text(f"{o}.zip", clean_orders, compression=zipped("orders.csv")),
+            _write_text(f"{m}.zip", clean_mailings, compression=zipped("mailings.csv")),
+            {},
+        )
+    if form == "xlsx":
+        # Dates as Excel dates, amounts as numbers, on a named sheet after a notes sheet (so --sheet is needed).
+        return _write_xlsx(f"{o}.xlsx", orders.assign(amount=orders["cents"] / 100).drop(columns="cents")), _write_xlsx(f"{m}.xlsx", mailings), {"sheet": "Data"}
+    raise AssertionError(form)
+
+
+def _write_xlsx(path: str, frame: pd.DataFrame) -> str:
+    import openpyxl
+
+    workbook = openpyxl.Workbook()
+    workbook.active.title = "Notes"
+    workbook.active.append(["Invented test data"])
+    sheet = workbook.create_sheet("Data")
+    sheet.append(list(frame.columns))
+    for row in frame.itertuples(index=False):
+        sheet.append([value.to_pydatetime() if isinstance(value, pd.Timestamp) else value for value in row])
+    workbook.save(path)
+    return path
+
+
+EXPORT_FORMS = ["currency", "us-dates", "day-first-semicolon-comma", "cp1252", "gzip", "zip", "xlsx"]
+
+
+@pytest.fixture(scope="module")
+def clean_base(tmp_path_factory):
+    """The invented base written as plain UTF-8 CSV with ISO dates, and the model fitted on it."""
+    from lapsewise.model.fitted import fit_model
+
+    folder = tmp_path_factory.mktemp("forms")
+    orders, mailings = _invented_base()
+    orders_path, mailings_path, _ = _export(folder, "clean", orders, mailings)
+    panel = panel_from_files(orders_path, mailings_path, "2023-12-31")
+    return folder, orders, mailings, panel, fit_model(panel).to_dict()
+
+
+@pytest.mark.parametrize("form", EXPORT_FORMS)
+def test_every_export_form_gives_the_clean_files_model(clean_base, form):
+    """The same orders and mailings, written as an order or donor system would export them, give the model the
+    clean CSV gives, to the last digit: the same cells become the same values, so the panel and the fit are the same."""
+    from lapsewise.model.fitted import fit_model
+
+    folder, orders, mailings, clean_panel, clean_model = clean_base
+    orders_path, mailings_path, reading = _export(folder, form, orders, mailings)
+    panel = panel_from_files(orders_path, mailings_path, "2023-12-31", **reading)
+    np.testing.assert_array_equal(panel.customer_ids, clean_panel.customer_ids)
+    np.testing.assert_array_equal(panel.spend, clean_panel.spend)
+    np.testing.assert_array_equal(panel.mailed, clean_panel.mailed)
+    assert fit_model(panel).to_dict() == clean_model
+
+
+def test_export_forms_are_counted_in_the_repairs(clean_base):
+    """Each conversion is counted: the base's 240 customers have their orders and mailings in the counts."""
+    folder, orders, mailings, _, _ = clean_base
+    orders_path, _, reading = _export(folder, "currency", orders, mailings)
+    loaded = load_orders(orders_path)
+    # Every amount has a dollar sign; the returns are the negative cents of the base; the thousands are the amounts of 1,000.00 or more.
+    assert repair_count(loaded.repairs, "currency sign") == len(orders)
+    assert repair_count(loaded.repairs, "parentheses") == int((orders["cents"] < 0).sum())
+    assert repair_count(loaded.repairs, "thousands separators") == int((orders["cents"].abs() >= 100_000).sum())
+    orders_path, mailings_path, reading = _export(folder, "day-first-semicolon-comma", orders, mailings)
+    loaded = load_mailings(mailings_path, reading=Reading(**reading))
+    # One file read with semicolons; every mail date day-first.
+    assert repair_count(loaded.repairs, "semicolon-delimited") == 1
+    assert repair_count(loaded.repairs, "day-first") == len(mailings)
+    orders_path, _, reading = _export(folder, "gzip", orders, mailings)
+    assert repair_count(load_orders(orders_path).repairs, "gzip") == 1

@@ -151,3 +151,131 @@ def test_an_unreadable_or_impossible_path_is_refused(tmp_path):
     for path in (through_a_file / "inner.csv", tmp_path / ("n" * 300 + ".csv")):
         with pytest.raises(InputError):
             load_orders(path)
+
+
+# ---------------------------------------------------------------- delimiters, encodings, compressed files, workbooks
+
+import gzip  # noqa: E402
+import zipfile  # noqa: E402
+
+from lapsewise.files.tables import Reading, header_columns, read_table  # noqa: E402
+
+
+@pytest.mark.parametrize("sep, label", [(";", "semicolon"), ("\t", "tab"), ("|", "pipe")])
+def test_other_delimiters_are_found_from_the_header_and_counted(write_file, sep, label):
+    path = write_file("orders.csv", GOOD_ORDERS.replace(",", sep))
+    loaded = load_orders(path)
+    # GOOD_ORDERS's three rows: A1 10.00, B2 25.50, A1 12.00.
+    assert ids_of(loaded) == ["A1", "B2", "A1"]
+    assert loaded.frame["amount"].tolist() == [10.0, 25.5, 12.0]
+    assert repair_count(loaded.repairs, f"{label}-delimited") == 1
+
+
+def test_the_delimiter_option_is_followed(write_file):
+    # Semicolons between fields and commas inside the amounts (decimal commas): the option settles the delimiter.
+    path = write_file("orders.csv", orders_text("A1;2023-01-15;10,50", "B2;2023-02-01;3,25").replace(",", ";", 2))
+    loaded = load_orders(path, reading=Reading(delimiter=";", decimal_comma=True))
+    # 10,50 and 3,25 with a decimal comma are 10.5 and 3.25.
+    assert loaded.frame["amount"].tolist() == [10.5, 3.25]
+
+
+def test_a_legacy_encoding_is_refused_naming_it_and_read_with_the_option(write_file):
+    # "Zoë" and "Müller" in cp1252: bytes EB and FC, not UTF-8.
+    path = write_file("orders.csv", orders_text("Zo\u00eb,2023-01-15,10", "M\u00fcller,2023-02-01,5").encode("cp1252"))
+    with pytest.raises(InputError, match=r"is not UTF-8 text .*looks like cp1252.*pass --encoding cp1252"):
+        load_orders(path)
+    loaded = load_orders(path, reading=Reading(encoding="cp1252"))
+    assert ids_of(loaded) == ["Zo\u00eb", "M\u00fcller"]
+    assert repair_count(loaded.repairs, "decoded from cp1252") == 1
+
+
+def test_utf16_text_is_refused_without_the_option_and_read_with_it(write_file):
+    path = write_file("orders.csv", GOOD_ORDERS.encode("utf-16"))  # starts with the UTF-16 byte-order mark
+    with pytest.raises(InputError, match="is UTF-16 text; pass --encoding utf-16"):
+        load_orders(path)
+    # GOOD_ORDERS's three amounts.
+    assert load_orders(path, reading=Reading(encoding="utf-16")).frame["amount"].tolist() == [10.0, 25.5, 12.0]
+
+
+def test_an_unknown_encoding_name_is_refused(write_file):
+    path = write_file("orders.csv", GOOD_ORDERS)
+    with pytest.raises(InputError, match="--encoding 'klingon': not an encoding"):
+        load_orders(path, reading=Reading(encoding="klingon"))
+
+
+def test_gzip_and_zip_files_read_like_the_plain_file(tmp_path):
+    gz = tmp_path / "orders.csv.gz"
+    gz.write_bytes(gzip.compress(GOOD_ORDERS.encode()))
+    zipped = tmp_path / "orders.zip"
+    with zipfile.ZipFile(zipped, "w") as archive:
+        archive.writestr("export/orders.csv", GOOD_ORDERS)
+    for path, what in ((gz, "gzip-compressed"), (zipped, "zip-compressed")):
+        loaded = load_orders(path)
+        assert loaded.frame["amount"].tolist() == [10.0, 25.5, 12.0]  # GOOD_ORDERS's amounts
+        assert repair_count(loaded.repairs, what) == 1
+        assert header_columns(path) == ORDERS_HEADER.split(",")
+
+
+@pytest.mark.parametrize(
+    "make, message",
+    [
+        # Two files in one archive: which is the orders?
+        (lambda path: _zip(path, {"a.csv": GOOD_ORDERS, "b.csv": GOOD_ORDERS}), "must hold exactly one file (it holds a.csv, b.csv)"),
+        # A gzip header followed by garbage.
+        (lambda path: path.write_bytes(b"\x1f\x8b\x08\x00garbage"), "a damaged gzip file"),
+        # A compressed file holding nothing.
+        (lambda path: path.write_bytes(gzip.compress(b"")), "the compressed file holds nothing"),
+    ],
+)
+def test_bad_compressed_files_are_refused(tmp_path, make, message):
+    path = tmp_path / "orders.bin"
+    make(path)
+    with pytest.raises(InputError) as caught:
+        read_table(path)
+    assert message in str(caught.value)
+
+
+def _zip(path, members: dict[str, str]) -> None:
+    with zipfile.ZipFile(path, "w") as archive:
+        for name, text in members.items():
+            archive.writestr(name, text)
+
+
+def _workbook(path, sheets: dict[str, list[list]]) -> None:
+    import openpyxl
+
+    workbook = openpyxl.Workbook()
+    workbook.remove(workbook.active)
+    for title, rows in sheets.items():
+        sheet = workbook.create_sheet(title)
+        for row in rows:
+            sheet.append(row)
+    workbook.save(path)
+
+
+def test_a_workbook_is_read_from_its_first_sheet_or_the_named_one(tmp_path):
+    import datetime as dt
+
+    path = tmp_path / "orders.xlsx"
+    rows = [["customer_id", "order_date", "amount"], ["A1", dt.datetime(2023, 1, 15), 10], [17, dt.datetime(2023, 2, 1), 25.5], [None, None, None]]
+    _workbook(path, {"Orders": rows, "Other": [["customer_id", "order_date", "amount"], ["Z9", dt.datetime(2024, 3, 1), 1]]})
+    first = load_orders(path)
+    # The first sheet's two rows (the empty last row dropped); the number 17 as the id "17".
+    assert ids_of(first) == ["A1", "17"]
+    assert [str(d.date()) for d in first.frame["order_date"]] == ["2023-01-15", "2023-02-01"]
+    assert first.frame["amount"].tolist() == [10.0, 25.5]
+    assert repair_count(first.repairs, "sheet 'Orders'") == 1
+    # The other sheet's one row.
+    assert ids_of(load_orders(path, reading=Reading(sheet="Other"))) == ["Z9"]
+    assert header_columns(path, Reading(sheet="Other")) == ["customer_id", "order_date", "amount"]
+    with pytest.raises(InputError, match=r"no sheet 'Sales' \(found 'Orders', 'Other'\); check --sheet"):
+        load_orders(path, reading=Reading(sheet="Sales"))
+
+
+def test_a_workbook_with_text_amounts_and_dates_reads_them_like_a_text_file(tmp_path):
+    path = tmp_path / "orders.xlsx"
+    # Amounts typed as text with currency signs and dates typed as US text, as some exports do.
+    _workbook(path, {"Sheet": [["customer_id", "order_date", "amount"], ["A1", "10/18/2022", "$1,104.00"], ["B2", "11/03/2022", "($12.50)"]]})
+    loaded = load_orders(path)
+    assert loaded.frame["amount"].tolist() == [1104.0, -12.5]
+    assert [str(d.date()) for d in loaded.frame["order_date"]] == ["2022-10-18", "2022-11-03"]

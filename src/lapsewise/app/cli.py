@@ -88,6 +88,16 @@ column_names = option_group(
         ("id_column", str, typer.Option("customer_id", "--id-column", help="Name of the customer id column in every input file.")),
         ("date_column", str, typer.Option("order_date", "--date-column", help="Name of the order date column in the orders file.")),
         ("amount_column", str, typer.Option("amount", "--amount-column", help="Name of the order amount column in the orders file.")),
+        # How to read the orders and mailings files (see files.tables.Reading); only the encoding applies to the other files.
+        ("delimiter", Optional[str], typer.Option(None, "--delimiter", help="Field delimiter of text files: , ; tab or |; default: found from the header row.")),
+        ("encoding", Optional[str], typer.Option(None, "--encoding", help="Text encoding of the input files, e.g. cp1252, latin-1, utf-16; default: UTF-8.")),
+        ("sheet", Optional[str], typer.Option(None, "--sheet", help="Worksheet of an Excel (.xlsx) orders or mailings file; default: the first sheet.")),
+        (
+            "decimal_comma",
+            Optional[bool],
+            typer.Option(None, "--decimal-comma/--decimal-point", help="Amounts use a decimal comma (1.234,50) or a decimal point (1,234.50); default: found from the amounts."),
+        ),
+        ("date_format", Optional[str], typer.Option(None, "--date-format", help="Format of the dates in strftime codes, e.g. %m/%d/%Y or %d.%m.%Y; default: ISO dates or one unambiguous format, found.")),
     ],
 )
 

@@ -31,6 +31,7 @@ from lapsewise.errors import InputError
 from lapsewise.machine import available_memory
 from lapsewise.evaluate.policies import Simulation, simulate_policies
 from lapsewise.files.inputs import ID_COLUMN, load_attributes, load_id_list
+from lapsewise.files.tables import Reading
 from lapsewise.files.policy_file import Policy, load_policy
 from lapsewise.model.fitted import Model, fit_model, load_model
 from lapsewise.model.posterior import posterior
@@ -60,20 +61,29 @@ def read_policy(path: str | Path, overrides: dict | None = None) -> Policy:
     return load_policy(path, overrides)
 
 
-def read_suppression(panel: Panel, path: str | Path | None, id_column: str = ID_COLUMN, orders_name: str = "the orders") -> Suppression | None:
+def side_file_reading(columns: dict | None) -> Reading:
+    """How to read the suppression and attributes files: in the encoding the options name; the rest is found."""
+    return Reading(encoding=(columns or {}).get("encoding"))
+
+
+def read_suppression(
+    panel: Panel, path: str | Path | None, id_column: str = ID_COLUMN, orders_name: str = "the orders", reading: Reading | None = None
+) -> Suppression | None:
     """The suppression list matched against the panel's customers (None without a list)."""
     if not path:
         return None
-    return match_suppression(panel, load_id_list(path, id_column), orders_name)
+    return match_suppression(panel, load_id_list(path, id_column, reading), orders_name)
 
 
-def attribute_values(panel: Panel, path: str | Path | None, column: str | None, id_column: str = ID_COLUMN) -> np.ndarray | None:
+def attribute_values(
+    panel: Panel, path: str | Path | None, column: str | None, id_column: str = ID_COLUMN, reading: Reading | None = None
+) -> np.ndarray | None:
     """Each customer's value of an attributes file's column ("unknown" when missing); None without a file."""
     if not (path or column):
         return None
     if not (path and column):
         raise InputError("--attributes and --segment-column go together; give both or neither")
-    table = load_attributes(path, column, id_column).frame.set_index(ID_COLUMN)[column]
+    table = load_attributes(path, column, id_column, reading).frame.set_index(ID_COLUMN)[column]
     return table.reindex(panel.customer_ids).fillna("unknown").to_numpy(dtype=object)
 
 
@@ -271,7 +281,8 @@ def plan_inputs(
     model = load_model(model_file)
     policy = read_policy(policy_file, overrides)
     panel = read_panel(orders, mailings, as_of, model.fiscal_year_start, columns)
-    suppression = read_suppression(panel, suppress, columns["id_column"], str(orders))
-    attribute = attribute_values(panel, attributes, segment_column, columns["id_column"])
+    side = side_file_reading(columns)
+    suppression = read_suppression(panel, suppress, columns["id_column"], str(orders), side)
+    attribute = attribute_values(panel, attributes, segment_column, columns["id_column"], side)
     flags = None if suppression is None else suppression.flags
     return PlanInputs(model, policy, panel, value_customers(model, panel, policy, flags, attribute), suppression, attribute)

@@ -288,8 +288,12 @@ def panel_from_files(
     id_column: str = ID_COLUMN,
     date_column: str = ORDER_DATE_COLUMN,
     amount_column: str = AMOUNT_COLUMN,
+    **reading_options,
 ) -> Panel:
     """Load the orders (and mailings) files and build the panel: the first two stages in one call.
+
+    ``reading_options`` are the fields of :class:`~lapsewise.files.tables.Reading` (``delimiter``,
+    ``encoding``, ``sheet``, ``decimal_comma``, ``date_format``), applied to both files.
 
     ``orders_path`` may instead be a customer-quarter table (customer_id, quarter,
     purchased, spend[, mailed]), recognised by its columns; it then stands for both
@@ -300,12 +304,15 @@ def panel_from_files(
         load_orders_and_mailings,
         load_quarterly,
     )
+    from lapsewise.files.tables import Reading
+
+    reading = Reading(**reading_options)
 
     as_of_date = parse_as_of(as_of)
-    if is_quarterly_table(orders_path):
+    if is_quarterly_table(orders_path, reading):
         if mailings_path:
             raise InputError(f"{orders_path}: is a customer-quarter table, which already says which quarters were mailed; drop --mailings")
-        orders, mailings = load_quarterly(orders_path, id_column)
+        orders, mailings = load_quarterly(orders_path, id_column, reading)
         if as_of_date is None:
             dates = orders.frame[ORDER_DATE_COLUMN].to_numpy()
             check_latest_date(orders.name, dates, orders.row_label)
@@ -318,6 +325,7 @@ def panel_from_files(
         return build_panel(orders, mailings, as_of_date, fiscal_year_start)
     # The purchase side of the panel is built from the orders while the (larger) mailings file is still loading.
     purchases, mailings = load_orders_and_mailings(
-        orders_path, mailings_path, id_column, date_column, amount_column, then=lambda orders: purchase_panel(orders, as_of_date, fiscal_year_start)
+        orders_path, mailings_path, id_column, date_column, amount_column, then=lambda orders: purchase_panel(orders, as_of_date, fiscal_year_start),
+        reading=reading,
     )
     return attach_mailings(purchases, mailings)

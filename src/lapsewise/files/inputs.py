@@ -20,7 +20,7 @@ import pandas as pd
 
 from lapsewise.errors import InputError
 from lapsewise.files.cells import clean_ids, drop_blank_ids, parse_amounts, parse_dates, parse_flags
-from lapsewise.files.tables import duplicate_rows, header_columns, read_table, row_label
+from lapsewise.files.tables import Reading, duplicate_rows, header_columns, read_table, row_label
 
 ID_COLUMN = "customer_id"
 ORDER_DATE_COLUMN = "order_date"
@@ -98,15 +98,19 @@ def load_orders(
     id_column: str = ID_COLUMN,
     date_column: str = ORDER_DATE_COLUMN,
     amount_column: str = AMOUNT_COLUMN,
+    reading: Reading | None = None,
 ) -> Loaded:
     """Read the orders file: one row per order, negative amounts are returns.
 
     Returns a :class:`Loaded` whose frame has ``customer_id`` (Categorical),
     ``order_date`` (datetime64) and ``amount`` (float64). Exact duplicate rows,
     rows with a blank id and rows with a blank amount are left out and counted.
+    ``reading`` says how to read a file that is not plain UTF-8 CSV with ISO dates
+    (see :class:`~lapsewise.files.tables.Reading`).
     """
+    reading = reading or Reading()
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, reading)
     _require_columns(name, frame, {id_column: "--id-column", date_column: "--date-column", amount_column: "--amount-column"})
     _count_extra_columns(frame, [id_column, date_column, amount_column], repairs)
     factorized = pd.factorize(frame[id_column], use_na_sentinel=True)
@@ -116,12 +120,12 @@ def load_orders(
         repairs["exact duplicate rows dropped"] = int(duplicated.sum())
     ids = clean_ids(name, frame[id_column], repairs, factorized, id_column, is_csv)
     keep = drop_blank_ids(name, ids, ~duplicated, repairs)
-    amounts, blank_amount = parse_amounts(name, amount_column, frame[amount_column], is_csv)
+    amounts, blank_amount = parse_amounts(name, amount_column, frame[amount_column], is_csv, reading.decimal_comma, repairs)
     dropped_blank = blank_amount & keep
     if dropped_blank.any():
         repairs["orders with a blank amount left out"] = int(dropped_blank.sum())
     keep &= ~blank_amount
-    dates = parse_dates(name, date_column, frame[date_column], is_csv, keep)
+    dates = parse_dates(name, date_column, frame[date_column], is_csv, keep, reading.date_format, repairs)
     with_time = (dates != dates.astype("datetime64[D]")) & keep
     if with_time.any():
         repairs["order dates with a time of day (quarters use the date)"] = int(with_time.sum())
@@ -133,20 +137,21 @@ def load_orders(
     return Loaded(name, _frame({ID_COLUMN: ids, ORDER_DATE_COLUMN: dates, AMOUNT_COLUMN: amounts}, keep), repairs, _kept(keep), is_csv)
 
 
-def load_mailings(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
+def load_mailings(path: str | Path, id_column: str = ID_COLUMN, reading: Reading | None = None) -> Loaded:
     """Read the mailings file: one row per piece mailed (``customer_id``, ``mail_date``, optional ``version``).
 
     The ``version`` column is recognised (not counted as an extra column) but not
     kept: the model needs only whether a customer was mailed in a quarter.
     """
+    reading = reading or Reading()
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, reading)
     _require_columns(name, frame, {id_column: "--id-column", MAIL_DATE_COLUMN: ""})
     used = [id_column, MAIL_DATE_COLUMN] + ([VERSION_COLUMN] if VERSION_COLUMN in frame.columns else [])
     _count_extra_columns(frame, used, repairs)
     ids = clean_ids(name, frame[id_column], repairs, None, id_column, is_csv)
     keep = drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
-    dates = parse_dates(name, MAIL_DATE_COLUMN, frame[MAIL_DATE_COLUMN], is_csv, keep)
+    dates = parse_dates(name, MAIL_DATE_COLUMN, frame[MAIL_DATE_COLUMN], is_csv, keep, reading.date_format, repairs)
     return Loaded(name, _frame({ID_COLUMN: ids, MAIL_DATE_COLUMN: dates}, keep), repairs, _kept(keep), is_csv)
 
 
@@ -157,6 +162,7 @@ def load_orders_and_mailings(
     date_column: str = ORDER_DATE_COLUMN,
     amount_column: str = AMOUNT_COLUMN,
     then: Callable[[Loaded], object] | None = None,
+    reading: Reading | None = None,
 ) -> tuple:
     """:func:`load_orders` and :func:`load_mailings` (when a path is given), read side by side.
 
@@ -168,20 +174,20 @@ def load_orders_and_mailings(
     file (or in ``then``) is reported first, as when the files are read in turn.
     """
     def orders_part():
-        orders = load_orders(orders_path, id_column, date_column, amount_column)
+        orders = load_orders(orders_path, id_column, date_column, amount_column, reading)
         return orders if then is None else then(orders)
 
     if not mailings_path:
         return orders_part(), None
     with ThreadPoolExecutor(max_workers=1) as pool:
-        mailings_job = pool.submit(load_mailings, mailings_path, id_column)
+        mailings_job = pool.submit(load_mailings, mailings_path, id_column, reading)
         return orders_part(), mailings_job.result()
 
 
-def load_id_list(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
+def load_id_list(path: str | Path, id_column: str = ID_COLUMN, reading: Reading | None = None) -> Loaded:
     """Read a list of customer ids, such as a suppression list (opt-outs, deceased, undeliverable)."""
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, reading)
     _require_columns(name, frame, {id_column: "--id-column"})
     _count_extra_columns(frame, [id_column], repairs)
     ids = clean_ids(name, frame[id_column], repairs, None, id_column, is_csv)
@@ -190,10 +196,10 @@ def load_id_list(path: str | Path, id_column: str = ID_COLUMN) -> Loaded:
     return Loaded(name, pd.DataFrame({ID_COLUMN: unique}), repairs)
 
 
-def load_attributes(path: str | Path, column: str, id_column: str = ID_COLUMN) -> Loaded:
+def load_attributes(path: str | Path, column: str, id_column: str = ID_COLUMN, reading: Reading | None = None) -> Loaded:
     """Read a customer attributes file and keep one text column of it, one row per customer."""
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, reading)
     _require_columns(name, frame, {id_column: "--id-column", column: "--segment-column"})
     ids = clean_ids(name, frame[id_column], repairs, None, id_column, is_csv)
     keep = drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
@@ -212,13 +218,13 @@ SPEND_COLUMN = "spend"
 MAILED_COLUMN = "mailed"
 
 
-def is_quarterly_table(path: str | Path) -> bool:
+def is_quarterly_table(path: str | Path, reading: Reading | None = None) -> bool:
     """True for a customer-quarter table (customer_id, quarter, purchased, spend[, mailed]) rather than raw orders."""
-    columns = set(header_columns(path))
+    columns = set(header_columns(path, reading))
     return {QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN} <= columns
 
 
-def load_quarterly(path: str | Path, id_column: str = ID_COLUMN) -> tuple[Loaded, Loaded | None]:
+def load_quarterly(path: str | Path, id_column: str = ID_COLUMN, reading: Reading | None = None) -> tuple[Loaded, Loaded | None]:
     """Read a customer-quarter table and return it as the orders and mailings it stands for.
 
     One row per customer and quarter with a purchase or a mailing: ``customer_id``,
@@ -227,16 +233,17 @@ def load_quarterly(path: str | Path, id_column: str = ID_COLUMN) -> tuple[Loaded
     purchased quarter becomes one order of its spend; each mailed quarter one piece.
     Without a ``mailed`` column every quarter counts as mailed.
     """
+    reading = reading or Reading()
     name = str(path)
-    frame, is_csv, repairs = read_table(path)
+    frame, is_csv, repairs = read_table(path, reading)
     _require_columns(name, frame, {id_column: "--id-column", QUARTER_COLUMN: "", PURCHASED_COLUMN: "", SPEND_COLUMN: ""})
     has_mailed = MAILED_COLUMN in frame.columns
     _count_extra_columns(frame, [id_column, QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN] + ([MAILED_COLUMN] if has_mailed else []), repairs)
     ids = clean_ids(name, frame[id_column], repairs, None, id_column, is_csv)
     keep = drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
-    dates = parse_dates(name, QUARTER_COLUMN, frame[QUARTER_COLUMN], is_csv, keep)
+    dates = parse_dates(name, QUARTER_COLUMN, frame[QUARTER_COLUMN], is_csv, keep, reading.date_format, repairs)
     purchased = parse_flags(name, PURCHASED_COLUMN, frame[PURCHASED_COLUMN], is_csv) & keep
-    spend, blank = parse_amounts(name, SPEND_COLUMN, frame[SPEND_COLUMN], is_csv)
+    spend, blank = parse_amounts(name, SPEND_COLUMN, frame[SPEND_COLUMN], is_csv, reading.decimal_comma, repairs)
     spend = np.where(blank, 0.0, spend)
     not_positive = purchased & (spend <= 0)
     if not_positive.any():

@@ -1,16 +1,25 @@
-"""Reading a table from disk: CSV or Parquet, recognised by its first bytes, checked once here at the edge.
+"""Reading a table from disk, checked once here at the edge.
 
+A file is recognised by its first bytes: Parquet, an Excel workbook (``.xlsx``),
+a gzip- or zip-compressed text file, or delimited text (commas, semicolons, tabs
+or pipes, the delimiter found from the header row unless :class:`Reading` names it).
 :func:`read_table` returns the rows as found, with column names trimmed, and a
-count of what it repaired on the way (a byte-order mark, Windows line endings,
-trailing commas). A file it cannot read raises :class:`~lapsewise.errors.InputError`
-with one line naming the file and what to do.
+count of what it repaired or converted on the way (a byte-order mark, Windows line
+endings, trailing delimiters, a compressed file, a legacy encoding). A file it cannot
+read raises :class:`~lapsewise.errors.InputError` with one line naming the file and
+what to do.
 """
 
 from __future__ import annotations
 
+import codecs
 import csv
+import gzip
+import io
 import os
 import warnings
+import zipfile
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +32,47 @@ _SNIFF_BYTES = 64 * 1024
 """The bytes read to recognise a file; its header row must end within them."""
 MAX_COLUMNS = 1_000
 """More columns than this is an export gone wrong; refused before pandas spends memory on them."""
+
+@dataclass(frozen=True)
+class Reading:
+    """How to read the input files, when they are not plain UTF-8 CSV with ISO dates and decimal points.
+
+    Attributes
+    ----------
+    delimiter : str or None
+        The field delimiter of text files (``,``, ``;``, ``\\t`` or ``tab``, ``|``); None: found from the header row.
+    encoding : str or None
+        The text encoding (``cp1252``, ``latin-1``, ``utf-16``, ...); None: UTF-8.
+    sheet : str or None
+        The worksheet of an Excel workbook; None: the first sheet.
+    decimal_comma : bool or None
+        True: amounts have a decimal comma; False: a decimal point; None: found from the amounts.
+    date_format : str or None
+        The strftime format of the dates (``%d.%m.%Y``); None: ISO dates or one unambiguous format, found.
+    """
+
+    delimiter: str | None = None
+    encoding: str | None = None
+    sheet: str | None = None
+    decimal_comma: bool | None = None
+    date_format: str | None = None
+
+
+_DELIMITERS = {",": "comma", ";": "semicolon", "\t": "tab", "|": "pipe"}
+_DELIMITER_NAMES = {"tab": "\t", "\\t": "\t", "comma": ",", "semicolon": ";", "pipe": "|"}
+
+
+def _delimiter(path: Path, reading: Reading, header: str) -> str:
+    """The delimiter named by the options, or the candidate found most often in the header row (a comma when none)."""
+    if reading.delimiter is not None:
+        chosen = _DELIMITER_NAMES.get(reading.delimiter.lower(), reading.delimiter)
+        if chosen not in _DELIMITERS:
+            raise InputError(f"--delimiter '{reading.delimiter}': not a delimiter lapsewise reads; use one of , ; tab |")
+        return chosen
+    counts = {sep: header.count(sep) for sep in _DELIMITERS}
+    best = max(counts, key=lambda sep: (counts[sep], sep == ","))
+    return best if counts[best] else ","
+
 
 def row_label(index: int, is_csv: bool) -> int:
     """The row number a person sees: spreadsheet rows for CSV (header is row 1), 1-based for Parquet."""
@@ -51,16 +101,19 @@ def require_file(path: str | Path, missing_hint: str, kind: str = "a CSV or Parq
     return path
 
 
-def read_table(path: str | Path) -> tuple[pd.DataFrame, bool, dict[str, int]]:
-    """Read a CSV or Parquet file into a DataFrame with its columns as found.
+def read_table(path: str | Path, reading: Reading | None = None) -> tuple[pd.DataFrame, bool, dict[str, int]]:
+    """Read a table file into a DataFrame with its columns as found.
 
-    CSV columns come back as text; Parquet columns keep their types (text as
+    Text and workbook columns come back as text (workbook cells that are all numbers
+    or all dates keep their type); Parquet columns keep their types (text as
     Arrow-backed strings, which pandas factorizes without making Python objects).
 
     Returns
     -------
     frame, is_csv, repairs
+        ``is_csv`` is True when rows are numbered as a spreadsheet shows them (the header is row 1).
     """
+    reading = reading or Reading()
     path = require_file(path, "check the path")
     name = str(path)
     if path.stat().st_size == 0:
@@ -69,7 +122,118 @@ def read_table(path: str | Path) -> tuple[pd.DataFrame, bool, dict[str, int]]:
         head = handle.read(_SNIFF_BYTES)
     if head[:4] == b"PAR1":
         return _read_parquet(path), False, {}
-    return _read_csv(path, head)
+    repairs: dict[str, int] = {}
+    data = None
+    if head[:2] == _GZIP_MAGIC:
+        data = _gunzip(path)
+        repairs["gzip-compressed file read"] = 1
+    elif head[:4] == _ZIP_MAGIC:
+        with _open_zip(path) as archive:
+            if _is_workbook(archive):
+                frame, sheet = _read_xlsx(path, reading)
+                return frame, True, {f"Excel workbook read (sheet '{sheet}')": 1}
+            member = _zip_member(path, archive)
+            data = archive.read(member)
+        repairs[f"zip-compressed file read ({member[:40]})"] = 1
+    if data is not None:
+        if not data:
+            raise InputError(f"{name}: the compressed file holds nothing; export it again with a header row and data")
+        head = data[:_SNIFF_BYTES]
+    return _read_csv(path, head, data, reading, repairs)
+
+
+_GZIP_MAGIC = b"\x1f\x8b"
+_ZIP_MAGIC = b"PK\x03\x04"
+
+
+def _gunzip(path: Path) -> bytes:
+    try:
+        with gzip.open(path, "rb") as handle:
+            return handle.read()
+    except (OSError, EOFError, gzip.BadGzipFile) as exc:
+        raise InputError(f"{path}: a damaged gzip file ({exc}); compress it again or give the plain file") from None
+
+
+def _open_zip(path: Path) -> zipfile.ZipFile:
+    try:
+        return zipfile.ZipFile(path)
+    except (zipfile.BadZipFile, OSError) as exc:
+        raise InputError(f"{path}: a damaged zip file ({exc}); compress it again or give the plain file") from None
+
+
+def _is_workbook(archive: zipfile.ZipFile) -> bool:
+    return "xl/workbook.xml" in archive.namelist()
+
+
+def _zip_member(path: Path, archive: zipfile.ZipFile) -> str:
+    """The one file inside a zip archive (folders and macOS resource entries aside)."""
+    members = [m.filename for m in archive.infolist() if not m.is_dir() and not m.filename.startswith("__MACOSX/")]
+    if len(members) != 1:
+        shown = ", ".join(members[:4]) or "nothing"
+        raise InputError(f"{path}: a zip archive must hold exactly one file (it holds {shown}); zip each file on its own")
+    return members[0]
+
+
+def _read_xlsx(path: Path, reading: Reading) -> tuple[pd.DataFrame, str]:
+    """The first sheet (or ``reading.sheet``) of an Excel workbook, the first row as the header."""
+    import openpyxl
+
+    try:
+        workbook = openpyxl.load_workbook(path, read_only=True, data_only=True)
+    except Exception as exc:  # openpyxl raises several types for damaged workbooks
+        raise InputError(f"{path}: not a readable Excel workbook ({str(exc).splitlines()[0][:80]}); save it again as .xlsx") from None
+    try:
+        names = workbook.sheetnames
+        if reading.sheet is not None and reading.sheet not in names:
+            shown = ", ".join(f"'{n}'" for n in names[:8])
+            raise InputError(f"{path}: no sheet '{reading.sheet}' (found {shown}); check --sheet")
+        sheet = reading.sheet if reading.sheet is not None else names[0]
+        rows = list(workbook[sheet].iter_rows(values_only=True))
+    finally:
+        workbook.close()
+    while rows and all(v is None for v in rows[-1]):
+        rows.pop()
+    if not rows:
+        raise InputError(f"{path}: the sheet '{sheet}' is empty; put a header row and data on it or pass --sheet")
+    header = list(rows[0])
+    if len(header) > MAX_COLUMNS:
+        raise InputError(f"{path}: has {len(header):,} columns (at most {MAX_COLUMNS:,}); export only the columns needed")
+    body = rows[1:]
+    if not body:
+        raise InputError(f"{path}: the sheet '{sheet}' has a header but no data rows; export it again with data")
+    width = len(header)
+    columns = list(zip(*(tuple(row) + (None,) * (width - len(row)) for row in body)))
+    frame = {}
+    for position, (title, values) in enumerate(zip(header, columns)):
+        if title is None and all(v is None for v in values):
+            continue  # an empty column beside the table
+        frame[str(title) if title is not None else f"column {position + 1}"] = _sheet_column(values, reading.decimal_comma)
+    frame = pd.DataFrame(frame)
+    _strip_column_names(path, frame)
+    return frame, sheet
+
+
+def _sheet_column(values: tuple, decimal_comma: bool | None):
+    """One worksheet column: numbers as numbers, dates as datetimes, anything mixed as text."""
+    cells = np.array(values, dtype=object)
+    kind = pd.api.types.infer_dtype(cells, skipna=True)
+    blank = pd.isna(cells)
+    if kind == "integer":
+        return pd.array(cells, dtype="Int64")
+    if kind in ("floating", "mixed-integer-float"):
+        return pd.to_numeric(pd.Series(cells), errors="coerce").to_numpy(dtype=np.float64)
+    if kind in ("datetime", "datetime64", "date"):
+        return pd.to_datetime(pd.Series(cells))
+    mark = "," if decimal_comma else "."
+
+    def text(value) -> str:
+        if isinstance(value, float):
+            return repr(value).replace(".", mark)
+        if hasattr(value, "isoformat"):
+            return value.isoformat()
+        return str(value)
+
+    return np.array(["" if b else text(v) for v, b in zip(cells, blank)], dtype=object)
 
 
 def _read_parquet(path: Path) -> pd.DataFrame:
@@ -99,19 +263,31 @@ def _strip_column_names(path: Path, frame: pd.DataFrame) -> None:
         raise InputError(f"{path}: the column '{repeated[0][:40]}' appears more than once; rename or remove the copies")
 
 
-def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, int]]:
-    repairs: dict[str, int] = {}
-    if b"\x00" in head:
+def _read_csv(path: Path, head: bytes, data: bytes | None, reading: Reading, repairs: dict[str, int]) -> tuple[pd.DataFrame, bool, dict[str, int]]:
+    """Delimited text, from the file itself or from its decompressed ``data``."""
+    if head.startswith((b"\xff\xfe", b"\xfe\xff")) and reading.encoding is None:
+        raise InputError(f"{path}: is UTF-16 text; pass --encoding utf-16, or save it as UTF-8")
+    encoding = reading.encoding or "utf-8-sig"
+    try:
+        codec = codecs.lookup(encoding).name
+    except LookupError:
+        raise InputError(f"--encoding '{encoding}': not an encoding Python knows; try cp1252, latin-1 or utf-16") from None
+    if b"\x00" in head and not codec.startswith(("utf-16", "utf-32")):
         raise InputError(f"{path}: looks like a binary file, not CSV or Parquet; export the data as CSV or Parquet")
     try:
-        head.decode("utf-8")
+        text = head.decode(encoding)
     except UnicodeDecodeError as exc:
         # A cut in the middle of a multi-byte character at the end of the sniffed block is fine.
         if exc.start < len(head) - 4:
-            raise InputError(
-                f"{path}: is not UTF-8 text (bad byte at position {exc.start}); save it as UTF-8 CSV or as Parquet"
-            ) from None
-    _check_header(path, head)
+            raise _undecodable(path, exc, head, reading) from None
+        text = head[: exc.start].decode(encoding)
+    if codec not in ("utf-8", "utf-8-sig"):
+        repairs[f"text decoded from {encoding}"] = 1
+    header = text.lstrip("\ufeff").split("\n", 1)[0]
+    sep = _delimiter(path, reading, header)
+    _check_header(path, head, header, sep)
+    if sep != ",":
+        repairs[f"{_DELIMITERS[sep]}-delimited text read"] = 1
     if head.startswith(b"\xef\xbb\xbf"):
         repairs["byte-order mark at the start of the file removed"] = 1
     if b"\r\n" in head:
@@ -121,12 +297,13 @@ def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, in
             # pandas warns, and drops the surplus, when a row has more fields than the header.
             warnings.simplefilter("always", pd.errors.ParserWarning)
             frame = pd.read_csv(
-                path,
+                path if data is None else io.BytesIO(data),
+                sep=sep,
                 dtype=str,
                 keep_default_na=False,
-                encoding="utf-8-sig",
+                encoding=encoding,
                 skip_blank_lines=True,
-                index_col=False,  # never take the first column as row labels when rows end in a comma
+                index_col=False,  # never take the first column as row labels when rows end in a delimiter
             )
     except pd.errors.EmptyDataError:
         raise InputError(f"{path}: the file is empty; export it again with a header row and data") from None
@@ -134,52 +311,70 @@ def _read_csv(path: Path, head: bytes) -> tuple[pd.DataFrame, bool, dict[str, in
         detail = str(exc).strip().splitlines()[-1]
         raise InputError(f"{path}: cannot be read as CSV ({detail}); check the quoting and the number of fields") from None
     except UnicodeDecodeError as exc:
-        raise InputError(
-            f"{path}: is not UTF-8 text (bad byte at position {exc.start}); save it as UTF-8 CSV or as Parquet"
-        ) from None
+        raise _undecodable(path, exc, exc.object, reading) from None
     if any(issubclass(w.category, pd.errors.ParserWarning) for w in caught):
-        surplus = _rows_with_surplus_fields(path, len(frame.columns))
+        surplus = _rows_with_surplus_fields(path, data, len(frame.columns), sep, encoding)
         if surplus:
-            repairs["rows ending in empty extra fields (trailing commas) read"] = surplus
+            repairs[f"rows ending in empty extra fields (trailing {_DELIMITERS[sep]}s) read"] = surplus
     _strip_column_names(path, frame)
     if len(frame.columns) == 1:
-        header = frame.columns[0]
-        for sep, label in ((";", "semicolon"), ("\t", "tab"), ("|", "pipe")):
-            if sep in header:
+        only = frame.columns[0]
+        for other, label in _DELIMITERS.items():
+            if other != sep and other in only:
                 raise InputError(
-                    f"{path}: looks {label}-delimited (header '{header[:60]}'); save it with commas between columns"
+                    f"{path}: looks {label}-delimited (header '{only[:60]}') but was read with --delimiter '{reading.delimiter}'; "
+                    "pass the file's delimiter or leave the option out"
                 )
     if len(frame) == 0:
         raise InputError(f"{path}: has a header but no data rows; export it again with data")
     return frame, True, repairs
 
 
-def _check_header(path: Path, head: bytes) -> None:
+def _undecodable(path: Path, exc: UnicodeDecodeError, raw: bytes, reading: Reading) -> InputError:
+    """The message for text that does not decode: the option to check, or the encoding the bytes suggest."""
+    if reading.encoding is not None:
+        return InputError(f"{path}: is not {reading.encoding} text (bad byte at position {exc.start}); check --encoding")
+    guess = _likely_encoding(raw)
+    return InputError(
+        f"{path}: is not UTF-8 text (bad byte at position {exc.start}); it looks like {guess}: "
+        f"pass --encoding {guess.split()[0]}, or save it as UTF-8"
+    )
+
+
+def _likely_encoding(raw: bytes) -> str:
+    """The legacy encoding the bytes most likely are: Windows Western European unless they cannot be."""
+    try:
+        raw.decode("cp1252")
+    except UnicodeDecodeError:
+        return "latin-1 (ISO 8859-1)"
+    return "cp1252 (Windows Western European)"
+
+
+def _check_header(path: Path, head: bytes, header: str, sep: str) -> None:
     """Refuse a header line too long or with too many fields before pandas reads the file."""
-    end = head.find(b"\n")
-    if end < 0 and len(head) >= _SNIFF_BYTES:
+    if head.find(b"\n") < 0 and len(head) >= _SNIFF_BYTES:
         raise InputError(
             f"{path}: no line break in the first {_SNIFF_BYTES // 1024} KB, so no header row to read; "
             "export the data as CSV with a header row and one row per line"
         )
-    line = head if end < 0 else head[:end]
-    fields = line.count(b",") + 1
+    fields = header.count(sep) + 1
     if fields > MAX_COLUMNS:
         raise InputError(f"{path}: the header row has {fields:,} fields (at most {MAX_COLUMNS:,}); check the delimiters")
 
 
-def _rows_with_surplus_fields(path: Path, width: int) -> int:
+def _rows_with_surplus_fields(path: Path, data: bytes | None, width: int, sep: str, encoding: str) -> int:
     """Count rows with more fields than the header's ``width``; a surplus field that is not blank is an error."""
     surplus = 0
-    with open(path, newline="", encoding="utf-8-sig", errors="replace") as handle:
+    raw = open(path, "rb") if data is None else io.BytesIO(data)
+    with io.TextIOWrapper(raw, encoding=encoding, errors="replace", newline="") as handle:
         try:
-            for row_number, row in enumerate(csv.reader(handle), start=1):
+            for row_number, row in enumerate(csv.reader(handle, delimiter=sep), start=1):
                 if len(row) > width:
                     surplus += 1
                     if any(cell.strip() for cell in row[width:]):
                         raise InputError(
                             f"{path}, row {row_number}: {len(row)} fields but the header has {width}; "
-                            "check the delimiters and the quoting (quote amounts and text that contain commas)"
+                            "check the delimiters and the quoting (quote amounts and text that contain the delimiter)"
                         )
         except csv.Error as exc:
             raise InputError(f"{path}: cannot be read as CSV ({exc}); check the quoting and the number of fields") from None
@@ -216,21 +411,38 @@ def duplicate_rows(frame: pd.DataFrame) -> np.ndarray:
     return out
 
 
-def header_columns(path: str | Path) -> list[str]:
-    """The column names of a CSV or Parquet file, read without loading its rows ([] when unreadable or not a
+def header_columns(path: str | Path, reading: Reading | None = None) -> list[str]:
+    """The column names of a table file, read without loading its rows ([] when unreadable or not a
     regular file: a pipe or a device is never opened here, :func:`read_table` refuses it)."""
+    reading = reading or Reading()
     path = Path(path)
     try:
         if not path.is_file():
             return []
         with open(path, "rb") as handle:
-            head = handle.read(4)
-        if head == b"PAR1":
+            head = handle.read(_SNIFF_BYTES)
+        if head[:4] == b"PAR1":
             import pyarrow.parquet as pq
 
             return [str(c).strip() for c in pq.read_schema(path).names]
-        with open(path, encoding="utf-8-sig", errors="replace") as handle:
-            return [c.strip().strip('"') for c in handle.readline(_SNIFF_BYTES).rstrip("\r\n").split(",")]
-    except (OSError, ValueError):
-        return []
+        if head[:2] == _GZIP_MAGIC:
+            with gzip.open(path, "rb") as handle:
+                head = handle.read(_SNIFF_BYTES)
+        elif head[:4] == _ZIP_MAGIC:
+            with zipfile.ZipFile(path) as archive:
+                if _is_workbook(archive):
+                    import openpyxl
 
+                    workbook = openpyxl.load_workbook(path, read_only=True, data_only=True)
+                    try:
+                        sheet = workbook[reading.sheet if reading.sheet is not None else workbook.sheetnames[0]]
+                        first = next(sheet.iter_rows(values_only=True, max_row=1), ())
+                    finally:
+                        workbook.close()
+                    return [str(c).strip() for c in first if c is not None]
+                with archive.open(_zip_member(path, archive)) as handle:
+                    head = handle.read(_SNIFF_BYTES)
+        line = head.decode(reading.encoding or "utf-8-sig", errors="replace").lstrip("\ufeff").split("\n", 1)[0].rstrip("\r")
+        return [c.strip().strip('"') for c in line.split(_delimiter(path, reading, line))]
+    except (OSError, ValueError, KeyError, LookupError, InputError, zipfile.BadZipFile, EOFError):
+        return []
