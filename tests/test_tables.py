@@ -279,3 +279,22 @@ def test_a_workbook_with_text_amounts_and_dates_reads_them_like_a_text_file(tmp_
     loaded = load_orders(path)
     assert loaded.frame["amount"].tolist() == [1104.0, -12.5]
     assert [str(d.date()) for d in loaded.frame["order_date"]] == ["2022-10-18", "2022-11-03"]
+
+
+def test_a_compressed_file_that_unpacks_beyond_the_limit_is_refused(tmp_path, monkeypatch):
+    # A small archive can unpack to far more than memory holds (a zip bomb): the unpacked size is checked first.
+    import gzip
+    import zipfile
+
+    from lapsewise.files import tables
+
+    monkeypatch.setattr(tables, "available_memory", lambda: 4 * 1_000_000)  # a limit of 1 MB unpacked
+    text = ("customer_id,order_date,amount\n" + "A1,2023-01-15,10\n" * 200_000).encode()  # 3.4 MB, compresses to little
+    packed = tmp_path / "orders.csv.gz"
+    packed.write_bytes(gzip.compress(text))
+    zipped = tmp_path / "orders.zip"
+    with zipfile.ZipFile(zipped, "w", compression=zipfile.ZIP_DEFLATED) as archive:
+        archive.writestr("orders.csv", text)
+    for path in (packed, zipped):
+        with pytest.raises(InputError, match="unpacks to more than"):
+            load_orders(path)

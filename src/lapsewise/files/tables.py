@@ -27,6 +27,7 @@ import pandas as pd
 import pyarrow as pa
 
 from lapsewise.errors import InputError
+from lapsewise.machine import available_memory, gigabytes
 
 _SNIFF_BYTES = 64 * 1024
 """The bytes read to recognise a file; its header row must end within them."""
@@ -133,6 +134,8 @@ def read_table(path: str | Path, reading: Reading | None = None) -> tuple[pd.Dat
                 frame, sheet = _read_xlsx(path, reading)
                 return frame, True, {f"Excel workbook read (sheet '{sheet}')": 1}
             member = _zip_member(path, archive)
+            if archive.getinfo(member).file_size > _unpacked_limit():
+                raise _too_large(path, _unpacked_limit())
             data = archive.read(member)
         repairs[f"zip-compressed file read ({member[:40]})"] = 1
     if data is not None:
@@ -146,12 +149,31 @@ _GZIP_MAGIC = b"\x1f\x8b"
 _ZIP_MAGIC = b"PK\x03\x04"
 
 
+def _unpacked_limit() -> int:
+    """The most a compressed input may unpack to: a quarter of the free memory (the rows take several times the text)."""
+    return available_memory() // 4
+
+
+def _too_large(path: Path, size: int) -> InputError:
+    return InputError(
+        f"{path}: unpacks to more than {gigabytes(size)}, more than a quarter of the memory free; "
+        "unpack it on disk and give the plain file (or its Parquet export)"
+    )
+
+
 def _gunzip(path: Path) -> bytes:
+    """The unpacked bytes, read in blocks so that a file unpacking to more than the limit is refused, not swallowed."""
+    limit, blocks, total = _unpacked_limit(), [], 0
     try:
         with gzip.open(path, "rb") as handle:
-            return handle.read()
+            while block := handle.read(64 * 2**20):
+                total += len(block)
+                if total > limit:
+                    raise _too_large(path, limit)
+                blocks.append(block)
     except (OSError, EOFError, gzip.BadGzipFile) as exc:
         raise InputError(f"{path}: a damaged gzip file ({exc}); compress it again or give the plain file") from None
+    return b"".join(blocks)
 
 
 def _open_zip(path: Path) -> zipfile.ZipFile:
