@@ -107,13 +107,22 @@ def test_order_dates_with_a_time_fall_in_their_calendar_quarter(make_panel):
 # ---------------------------------------------------------------- dates that cannot end the history
 
 
-def test_an_order_dated_in_the_future_is_refused_with_its_row(make_panel):
+def test_an_order_dated_decades_ahead_is_refused_with_its_row(make_panel):
     # Without --as-of the latest order would set the as-of quarter: one typo would make every customer look silent.
-    with pytest.raises(InputError, match=r"row 4: the date 2099-05-01 is after today"):
+    # With three orders the bulk is the second latest (2023-02-01): 2099-05-01 lies 305 quarters after it.
+    with pytest.raises(InputError, match=r"row 4: the date 2099-05-01 is 305 quarters after nearly every other \(99.9% by 2023-02-01\)"):
         make_panel(["A1,2023-01-15,10", "B2,2023-02-01,5", "A1,2099-05-01,7"])
-    # With --as-of it is simply after the as-of quarter: left out and counted.
+    # With --as-of it is simply after the as-of quarter: left out and counted, and counted as dated after today.
     panel = make_panel(["A1,2023-01-15,10", "B2,2023-02-01,5", "A1,2099-05-01,7"], as_of="2023-06-30")
     assert repair_count(panel.counts, "orders after the as-of quarter") == 1
+    assert repair_count(panel.counts, "dated after today") == 1
+
+
+def test_a_whole_history_ahead_of_the_clock_is_read(make_panel):
+    # A simulated history (or a machine whose clock is behind) may run past today: not a stray, so it is read.
+    rows = [f"C{i},2031-{i % 12 + 1:02d}-10,10" for i in range(200)] + ["C1,2032-02-10,10"]
+    panel = make_panel(rows)
+    assert repair_count(panel.counts, "dated after today") == 201
 
 
 def test_a_stray_order_years_after_the_rest_is_refused_with_its_row(make_panel):

@@ -139,6 +139,9 @@ def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_sta
     late = quarters > end_quarter
     if late.any():
         counts["orders after the as-of quarter left out"] = int(late.sum())
+    future = dates > np.datetime64(dt.date.today())
+    if future.any():
+        counts["orders dated after today (check the export's dates)"] = int(future.sum())
     early_customers = np.zeros(len(ids.categories), dtype=bool)
     early_customers[codes[~late]] = True
     all_customers = np.zeros(len(ids.categories), dtype=bool)
