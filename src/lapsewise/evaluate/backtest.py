@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from lapsewise.data.histories import compress
+from lapsewise.data.histories import compress_arrays, history_arrays
 from lapsewise.data.panel import Panel, select, truncate
 from lapsewise.data.quarters import quarter_label
 from lapsewise.data.summary import DEFAULT_FREQUENCY_BANDS, band_labels, band_of, summarize
@@ -103,12 +103,12 @@ def holdout_predictions(process: Process, panel: Panel, calibration_end: int, ho
 
     Quarter ``calibration_end + h`` is predicted from the history up to the quarter
     before it and from whether it was mailed. Every customer must be known by
-    ``calibration_end``.
+    ``calibration_end``. The history up to a quarter is the panel's rows read up to
+    it: the statistics count only quarters 1..n, so no truncated copy is made.
     """
     predicted = np.zeros((panel.customers, holdout_quarters))
     for h in range(holdout_quarters):
-        seen = truncate(panel, calibration_end + h)
-        histories = compress(seen)
+        histories = compress_arrays(history_arrays(panel.purchased, panel.mailed, calibration_end + h - panel.first_quarter))
         p_buy = posterior(process, histories).p_buy[histories.inverse]
         column = calibration_end + h + 1 - panel.first_quarter
         mailed = panel.mailed[np.arange(panel.customers), column].astype(bool)
