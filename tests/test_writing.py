@@ -38,7 +38,8 @@ def test_text_survives_the_round_trip_through_the_csv_module(tmp_path_factory, t
 def test_numbers_are_what_printf_g_with_six_digits_rounds_them_to(tmp_path):
     # Reference: Python's "%.6g" formatting (C printf) for the rounding; the text itself may differ in
     # form (1234570 rather than 1.23457e+06) but must parse to the same number.
-    values = np.array([0.1234567891, 1234567.0, 1e-9, -2.5e-7, 123456.5, 0.0, -0.000123456789, 9.9999996, 1e300, np.nan])
+    # 6.000740000000001e-24 and 3.14159265e-40 need more than an exact power of ten to round (beyond 1e22).
+    values = np.array([0.1234567891, 1234567.0, 1e-9, -2.5e-7, 123456.5, 0.0, -0.000123456789, 9.9999996, 1e300, np.nan, 6.000740000000001e-24, 3.14159265e-40])
     path = tmp_path / "numbers.csv"
     write_csv(path, pd.DataFrame({"value": values, "count": np.arange(len(values))}))
     rows = _read_back(path)[1:]

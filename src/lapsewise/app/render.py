@@ -270,7 +270,7 @@ def print_stop_table(console: Console, table, model) -> None:
                 line.append(text if cell["mail"] else f"[dim]({text})[/dim]")
             grid.add_row(*line)
         console.print(grid)
-        compare = Table(title=f"'{band.label}' spend: stop mailing a silent customer after ... silent quarters", title_justify="left")
+        compare = Table(title=f"'{band.label}' spend: stop after ... silent quarters", title_justify="left")
         for column in ("x, t_x", "Optimal", "Breakeven rule", "Optimal minus breakeven"):
             compare.add_column(column, justify="left" if column.startswith("x") else "right")
         for x, t_x in shown:

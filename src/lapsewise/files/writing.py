@@ -287,5 +287,8 @@ def round_significant(values: np.ndarray, digits: int) -> np.ndarray:
     # Scale by an exact power of ten, round, scale back: the result is the double nearest the rounded decimal.
     shown[up] = np.round(shown[up] * power[up]) / power[up]
     shown[~up] = np.round(shown[~up] / power[~up]) * power[~up]
+    inexact = np.abs(decimals) > 22  # beyond 1e22 a power of ten is not a double: round through the decimal text
+    if inexact.any():
+        shown[inexact] = np.char.mod(f"%.{digits}g", out[finite][inexact]).astype(np.float64)
     out[finite] = shown
     return out
