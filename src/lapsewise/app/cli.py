@@ -139,6 +139,9 @@ ForceOption = typer.Option(False, "--force", help="Overwrite the output file if 
 JsonOption = typer.Option(False, "--json", help="Print machine-readable JSON instead of tables.")
 
 
+NoSeasonsOption = typer.Option(False, "--no-seasons", help="Fit the model without multipliers by quarter of the year.")
+
+
 @app.command()
 @column_names
 def fit(
@@ -147,6 +150,7 @@ def fit(
     mailings: Optional[Path] = MailingsOption,
     as_of: Optional[str] = AsOfOption,
     fiscal_year_start: int = FiscalOption,
+    no_seasons: bool = NoSeasonsOption,
     columns: dict | None = None,
     force: bool = ForceOption,
 ) -> None:
@@ -157,7 +161,7 @@ def fit(
         with step("Reading the files and building the quarterly panel"):
             panel = pipeline.read_panel(orders, mailings, as_of, fiscal_year_start, columns)
         with step(f"Fitting the models on {panel.customers:,} customers"):
-            fitted = pipeline.fit(panel)
+            fitted = pipeline.fit(panel, seasons=not no_seasons)
     model = fitted.model
     write_text_atomic(out, dumps_stable(model.to_dict()), force)
     if not panel.mailing_history:
@@ -204,6 +208,7 @@ def backtest(
     mailings: Optional[Path] = MailingsOption,
     as_of: Optional[str] = AsOfOption,
     fiscal_year_start: int = FiscalOption,
+    no_seasons: bool = NoSeasonsOption,
     columns: dict | None = None,
     json_output: bool = JsonOption,
 ) -> None:
@@ -215,7 +220,7 @@ def backtest(
         with step("Reading the files and building the quarterly panel"):
             panel = pipeline.read_panel(orders, mailings, as_of, fiscal_year_start, columns)
         with step("Fitting on the calibration quarters and predicting the holdout"):
-            result = run_backtest(panel, holdout_quarters)
+            result = run_backtest(panel, holdout_quarters, seasons=not no_seasons)
     if json_output:
         data = result.to_dict()
         data["mailing_history"] = panel.mailing_history

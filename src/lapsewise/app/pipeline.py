@@ -99,10 +99,10 @@ class Fitted:
     curves: pd.DataFrame
 
 
-def fit(panel: Panel) -> Fitted:
-    """Fit both models on the panel and compute the lapse curves of typical customers."""
+def fit(panel: Panel, seasons: bool = True) -> Fitted:
+    """Fit both models on the panel (the churn model with or without ``seasons``) and compute the lapse curves of typical customers."""
     summary = summarize(panel)
-    model = fit_model(panel, summary)
+    model = fit_model(panel, summary, seasons)
     return Fitted(model, summary, lapse_curves(model, summary))
 
 

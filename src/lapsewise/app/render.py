@@ -110,11 +110,17 @@ def print_model(console: Console, model, curves) -> None:
         value = getattr(churn, name)
         estimate, error = _estimate(value, churn.std_errors.get(name))
         table.add_row(name, estimate, error, meaning if name != "rho" or value is not None else "no mailings file: every quarter counted as mailed")
+    if churn.seasons is not None:
+        for q, multiplier in enumerate(churn.seasons):
+            error = churn.std_errors.get(f"season_{q + 1}")
+            meaning = "multiplier of p in quarter {} of the year".format(q + 1) + (" (the largest, fixed at 1)" if error is None and multiplier == 1.0 else "")
+            table.add_row(f"season_{q + 1}", f"{multiplier:.4g}", "-" if error is None else f"{error:.3g}", meaning)
     console.print(table)
     console.print(
         f"Log-likelihood {churn.log_likelihood:,.2f} over {model.customers:,} customers in {churn.histories:,} distinct histories; "
         f"{'converged' if churn.converged else 'NOT converged'}."
     )
+    print_season_test(console, churn.season_test)
     if model.spend is not None:
         spend = model.spend
         table = Table(title="Order value (gamma-gamma)", title_justify="left")
@@ -131,6 +137,17 @@ def print_model(console: Console, model, curves) -> None:
     for warning in model.warnings:
         console.print(f"[yellow]warning:[/yellow] {warning}")
     print_lapse_curves(console, curves)
+
+
+def print_season_test(console: Console, test: dict | None) -> None:
+    """The likelihood-ratio test of the seasons against a model without them, in one line."""
+    if test is None:
+        return
+    verdict = "the seasons matter" if test["p_value"] < 0.05 else "no evidence of seasons (the multipliers may be noise)"
+    console.print(
+        f"Seasons against none: likelihood-ratio statistic {test['statistic']:,.1f} on {test['degrees_of_freedom']} degrees of freedom, "
+        f"p-value {test['p_value']:.3g}: {verdict} (5% level)."
+    )
 
 
 def print_lapse_curves(console: Console, curves) -> None:
@@ -179,10 +196,10 @@ def print_backtest(console: Console, result) -> None:
         table.add_row(str(row.frequency), f"{row.customers:,}", f"{row.actual_mean:.3f}", f"{row.predicted_mean:.3f}")
     console.print(table)
     table = Table(title="Quarter by quarter: repeat purchases of the whole calibration base (count)", title_justify="left")
-    for column in ("Quarter", "Mailed (%)", "Actual", "Predicted"):
+    for column in ("Quarter", "Quarter of year", "Mailed (%)", "Actual", "Predicted"):
         table.add_column(column, justify="right" if column != "Quarter" else "left")
     for row in result.by_quarter.itertuples():
-        table.add_row(row.quarter, f"{100 * row.mailed_share:.0f}", f"{row.actual:,}", f"{row.predicted:,.1f}")
+        table.add_row(row.quarter, str(row.quarter_of_year), f"{100 * row.mailed_share:.0f}", f"{row.actual:,}", f"{row.predicted:,.1f}")
     console.print(table)
     console.print(f"The model predicted {result.predicted:,.0f} repeat purchases against {result.actual:,.0f} actual ({gap:+.1%}).")
 

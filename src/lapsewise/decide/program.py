@@ -81,13 +81,24 @@ from lapsewise.model.process import Process
 
 
 def decision_process(fit: ChurnFit, unmailed_response: float | None = None) -> Process:
-    """The fitted process as the program plans against it: rho is a number.
+    """The fitted process as the program plans against it: rho is a number, and every quarter is alike.
 
     ``unmailed_response`` (the policy's) overrides rho; without it and without a
     mailing history a held customer is assumed not to buy (rho 0).
+
+    The program does not yet follow the calendar. With seasons it plans with the
+    purchase probability of an average quarter: ``s_bar p`` with ``s_bar`` the mean
+    multiplier, approximated by ``Beta(alpha, beta')`` with the same mean,
+    ``beta' = (alpha + beta) / s_bar - alpha`` (the same spread of p across
+    customers, shifted to the average quarter). An approximation: a quarter of
+    the year's own multiplier is not used.
     """
     rho = unmailed_response if unmailed_response is not None else (fit.rho if fit.rho is not None else 0.0)
-    return Process(fit.alpha, fit.beta, fit.gamma, fit.delta, float(rho))
+    beta = fit.beta
+    if fit.process.seasonal:
+        mean_season = sum(fit.seasons) / 4.0
+        beta = (fit.alpha + fit.beta) / mean_season - fit.alpha
+    return Process(fit.alpha, beta, fit.gamma, fit.delta, float(rho))
 
 
 def check_unmailed_purchases(fit: ChurnFit, unmailed_response: float | None, histories: Histories, policy_source: str) -> None:

@@ -89,6 +89,7 @@ class Backtest:
             "by_quarter": [
                 {
                     "quarter": r.quarter,
+                    "quarter_of_year": int(r.quarter_of_year),
                     "mailed_share": round(float(r.mailed_share), 6),
                     "actual": int(r.actual),
                     "predicted": round(float(r.predicted), 4),
@@ -108,7 +109,8 @@ def holdout_predictions(process: Process, panel: Panel, calibration_end: int, ho
     """
     predicted = np.zeros((panel.customers, holdout_quarters))
     for h in range(holdout_quarters):
-        histories = compress_arrays(history_arrays(panel.purchased, panel.mailed, calibration_end + h - panel.first_quarter))
+        phase = panel.first_quarter % 4 if process.seasonal else None
+        histories = compress_arrays(history_arrays(panel.purchased, panel.mailed, calibration_end + h - panel.first_quarter, phase))
         p_buy = posterior(process, histories).p_buy[histories.inverse]
         column = calibration_end + h + 1 - panel.first_quarter
         mailed = panel.mailed[np.arange(panel.customers), column].astype(bool)
@@ -116,8 +118,8 @@ def holdout_predictions(process: Process, panel: Panel, calibration_end: int, ho
     return predicted
 
 
-def run_backtest(panel: Panel, holdout_quarters: int) -> Backtest:
-    """Fit on all but the last ``holdout_quarters`` quarters and predict them."""
+def run_backtest(panel: Panel, holdout_quarters: int, seasons: bool = True) -> Backtest:
+    """Fit on all but the last ``holdout_quarters`` quarters (with or without ``seasons``) and predict them."""
     if holdout_quarters < 1:
         raise InputError(f"--holdout-quarters {holdout_quarters}: give at least 1")
     calibration_end = panel.end_quarter - holdout_quarters
@@ -128,7 +130,7 @@ def run_backtest(panel: Panel, holdout_quarters: int) -> Backtest:
             f"(the data cover {panel.end_quarter - earliest + 1} quarters); choose a smaller number"
         )
     calibration = truncate(panel, calibration_end)
-    model = fit_model(calibration)
+    model = fit_model(calibration, seasons=seasons)
     known = select(panel, panel.first_quarter <= calibration_end)
     columns = (calibration_end - known.first_quarter)[:, None] + 1 + np.arange(holdout_quarters)[None, :]
     purchased = np.take_along_axis(known.purchased, columns, axis=1).astype(bool)
@@ -143,6 +145,7 @@ def run_backtest(panel: Panel, holdout_quarters: int) -> Backtest:
     by_quarter = pd.DataFrame(
         {
             "quarter": [quarter_label(calibration_end + h + 1, panel.fiscal_year_start) for h in range(holdout_quarters)],
+            "quarter_of_year": [(calibration_end + h + 1) % 4 + 1 for h in range(holdout_quarters)],
             "mailed_share": mailed.mean(axis=0),
             "actual": purchased.sum(axis=0),
             "predicted": predicted.sum(axis=0),

@@ -7,7 +7,8 @@ to ``last``. In each quarter in play:
 
 1. an alive customer leaves for good with probability theta;
 2. the mailing rule decides who is mailed, from what the firm has seen so far;
-3. an alive customer buys with probability p when mailed and rho * p when not.
+3. an alive customer buys with probability s_q p when mailed and rho s_q p when
+   not, s_q the process's multiplier for the quarter of the year (1 without seasons).
 
 The random numbers behind the leaving and the buying come from a
 :class:`StreamedUniforms` (drawn quarter by quarter from one generator, which a
@@ -135,12 +136,14 @@ def run_process(
     first: np.ndarray | None = None,
     last: np.ndarray | None = None,
     rng: np.random.Generator | None = None,
+    calendar_start: int = 0,
 ) -> Simulated:
     """Step the customers through quarters ``1 .. quarters - 1``.
 
     ``first`` is each customer's entry quarter (default 0) and ``last`` the last
     quarter they are observed in (default ``quarters - 1``); ``rng`` is the
-    generator a randomised mailing rule draws from.
+    generator a randomised mailing rule draws from; ``calendar_start`` the absolute
+    quarter of column 0, whose ``% 4`` is its quarter of the year (for the seasons).
     """
     customers = traits.customers
     first = np.zeros(customers, dtype=np.int64) if first is None else np.asarray(first)
@@ -155,7 +158,7 @@ def run_process(
         in_play = (first < quarter) & (quarter <= last)
         alive &= ~(in_play & (uniforms.leave(quarter) < traits.theta))
         mail = rule(SoFar(quarter, in_play, last_purchase, purchased, mailed, rng)) & in_play
-        chance = traits.p * np.where(mail, 1.0, rho)
+        chance = traits.p * (process.season(calendar_start + quarter) * np.where(mail, 1.0, rho))
         bought = in_play & alive & (uniforms.buy(quarter) < chance)
         purchased[:, quarter] |= bought  # keeps the first purchases of customers entering this quarter
         mailed[:, quarter] = mail

@@ -65,6 +65,19 @@ class _Check:
                 self.number(errors, name, 0.0, math.inf, f"{where}std_errors.")
 
 
+    def seasons(self, churn: dict) -> None:
+        """``churn.seasons``: absent or null (no seasons), or four multipliers in (0, 1], the largest 1."""
+        seasons = churn.get("seasons")
+        if seasons is None:
+            return
+        if not isinstance(seasons, list) or len(seasons) != 4:
+            self.fail("churn.seasons", f"= {_shown(seasons)} is not a list of four multipliers")
+        for index in range(4):
+            self.number({"value": seasons[index]}, "value", 1e-6, 1.0, f"churn.seasons[{index}] ")
+        if max(seasons) != 1.0:
+            self.fail("churn.seasons", f"= {_shown(seasons)} has no multiplier equal to 1 (the largest is 1)")
+
+
 def _shown(value) -> str:
     text = json.dumps(value) if not isinstance(value, float) or math.isfinite(value) else str(value)
     return text if len(text) <= 40 else text[:37] + "..."
@@ -96,6 +109,7 @@ def read_model_file(path: str | Path) -> tuple[dict, str]:
         check.number(churn, name, *CHURN_RANGE, "churn.")
     check.number(churn, "rho", 0.0, 1.0, "churn.", optional=True)
     check.errors(churn, "churn.")
+    check.seasons(churn)
     spend = data.get("spend")
     if spend is not None:
         spend = check.table(data, "spend")

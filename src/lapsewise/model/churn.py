@@ -20,6 +20,7 @@ with Discrete-Time Transaction Data. Marketing Science, 29(6), 1086-1108.
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import math
 from dataclasses import dataclass, field
@@ -31,7 +32,7 @@ from scipy import sparse
 from lapsewise.data.codes import integer_codes
 from lapsewise.data.histories import Histories
 from lapsewise.model import optimum
-from lapsewise.model.moments import MomentTerms, log_p_moments, theta_factors
+from lapsewise.model.moments import MomentTerms, history_sums, log_p_moments, theta_factors
 from lapsewise.model.process import Process
 
 PARAMETERS = ("alpha", "beta", "gamma", "delta", "rho")
@@ -66,6 +67,12 @@ class ChurnFit:
         Customers fitted and the distinct histories they compress to.
     converged : bool
     warnings : tuple of str
+    seasons : tuple of 4 floats or None
+        Multipliers of the purchase probability by quarter of the (fiscal) year, the
+        largest 1 (:mod:`lapsewise.model.seasons`); None when not fitted.
+    season_test : dict or None
+        The likelihood-ratio test of the seasons against none: ``statistic``,
+        ``degrees_of_freedom``, ``p_value``, ``log_likelihood_without``.
     """
 
     alpha: float
@@ -79,11 +86,13 @@ class ChurnFit:
     histories: int = 0
     converged: bool = True
     warnings: tuple[str, ...] = ()
+    seasons: tuple[float, float, float, float] | None = None
+    season_test: dict | None = None
 
     @property
     def process(self) -> Process:
         """The fitted process (the estimates without their errors)."""
-        return Process(self.alpha, self.beta, self.gamma, self.delta, self.rho)
+        return Process(self.alpha, self.beta, self.gamma, self.delta, self.rho, self.seasons)
 
     @property
     def mailing_history(self) -> bool:
@@ -107,6 +116,8 @@ class ChurnFit:
             "histories": self.histories,
             "converged": self.converged,
             "warnings": list(self.warnings),
+            "seasons": [1.0] * 4 if self.seasons is None else list(self.seasons),
+            "season_test": None if self.season_test is None else dict(self.season_test),
         }
 
     @classmethod
@@ -123,7 +134,16 @@ class ChurnFit:
             histories=int(data.get("histories", 0)),
             converged=bool(data.get("converged", True)),
             warnings=tuple(data.get("warnings", ())),
+            seasons=_seasons_or_none(data.get("seasons")),
+            season_test=None if data.get("season_test") is None else dict(data["season_test"]),
         )
+
+
+def _seasons_or_none(seasons) -> tuple[float, float, float, float] | None:
+    """The model file's seasons as a tuple; None when absent or all 1 (a model without seasons)."""
+    if seasons is None or all(float(v) == 1.0 for v in seasons):
+        return None
+    return tuple(float(v) for v in seasons)
 
 
 # ---------------------------------------------------------------- the expansion over death quarters
@@ -259,24 +279,6 @@ def log_unmailed_factor(hist: Histories, rho: float | None) -> np.ndarray:
         return np.where(hist.x_unmailed > 0, hist.x_unmailed * np.log(rho), 0.0)
 
 
-def _history_sums(expansion: Expansion, values: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """log of each history's sum of exp(state values), and the scaled pieces needed for the gradient.
-
-    All of a history's states share its x, so the values are shifted by the largest
-    value of their x before exponentiating: no term that matters can underflow.
-    Returns (log sums, exp of shifted state values, scaled sums).
-    """
-    hist = expansion.histories
-    state_x = expansion.triples[expansion.state_triple, 0]
-    shift = np.full(int(state_x.max()) + 1, -np.inf)
-    np.maximum.at(shift, state_x, values)
-    shift = np.where(np.isfinite(shift), shift, 0.0)
-    scaled = np.exp(values - shift[state_x])
-    sums = expansion.terms @ scaled
-    with np.errstate(divide="ignore"):
-        return np.log(sums) + shift[hist.x], scaled, sums
-
-
 def evaluate(expansion: Expansion, process: Process, gradient: bool = False, hessian: bool = False):
     """Per-history log-likelihood and the log moments; with ``gradient``, the total's gradient by the parameters;
     with ``hessian``, also its Hessian.
@@ -292,11 +294,11 @@ def evaluate(expansion: Expansion, process: Process, gradient: bool = False, hes
     if not (gradient or hessian):
         moments = log_p_moments(expansion.moments_layout(rho), alpha, beta, rho)
         theta = theta_factors(gamma, delta, expansion.max_quarter)
-        log_sums, _, _ = _history_sums(expansion, theta[expansion.state_theta] + moments[expansion.state_triple])
+        log_sums, _, _ = history_sums(expansion.terms, expansion.triples[expansion.state_triple, 0], hist.x, theta[expansion.state_theta] + moments[expansion.state_triple])
         return log_sums + log_unmailed_factor(hist, rho), moments
     moments, d_moments, *dd_moments = log_p_moments(expansion.moments_layout(rho), alpha, beta, rho, gradient=True, hessian=hessian)
     theta, d_theta, *dd_theta = theta_factors(gamma, delta, expansion.max_quarter, gradient=True, hessian=hessian)
-    log_sums, scaled, sums = _history_sums(expansion, theta[expansion.state_theta] + moments[expansion.state_triple])
+    log_sums, scaled, sums = history_sums(expansion.terms, expansion.triples[expansion.state_triple, 0], hist.x, theta[expansion.state_theta] + moments[expansion.state_triple])
     # d log L_h / d value_s = terms[h, s] * exp(value_s) / L_h; weighted by the customers per history.
     with np.errstate(divide="ignore", invalid="ignore"):
         per_sum = np.where(sums > 0, 1.0 / sums, 0.0)
@@ -386,15 +388,15 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     objective = _objective(expansion, mailing_history)
     stand_in = None
     if histories.size > optimum.STAND_IN_CUSTOMERS:
-        stand_in = _objective(expand(_sample(histories, optimum.STAND_IN_CUSTOMERS)), mailing_history)
+        stand_in = _objective(expand(sample_histories(histories, optimum.STAND_IN_CUSTOMERS)), mailing_history)
     starts = [np.append(np.log(start[:4]), start[4:] if mailing_history else []) for start in _STARTS]
     best = optimum.minimize(objective, starts, bounds, customers, _SCOUT_STEPS, stand_in, _curvature(expansion, mailing_history))
     fitted = _unpack(best.x, mailing_history)
     names = PARAMETERS if mailing_history else PARAMETERS[:4]
-    on_bound = _on_bounds(best.x, bounds, names)
+    on_bound = on_bounds(best.x, bounds, names)
     warnings = [f"{name} sits on the bound of its range; its value and standard error are not reliable" for name in on_bound]
     unidentified = []
-    if mailing_history and not _has_unmailed_quarter(histories):
+    if mailing_history and not has_unmailed_quarter(histories):
         unidentified.append("rho")
         warnings.append("no customer has an unmailed quarter, so rho is not identified by the data")
     free = [name not in on_bound + unidentified for name in names]
@@ -453,7 +455,7 @@ def _curvature(expansion: Expansion, mailing_history: bool) -> Callable[[np.ndar
     return curvature
 
 
-def _sample(histories: Histories, size: int) -> Histories:
+def sample_histories(histories: Histories, size: int) -> Histories:
     """The histories of ``size`` customers drawn at random (seeded, so the fit is deterministic).
 
     Each history's count becomes its draws times ``customers / size``, so the
@@ -462,22 +464,23 @@ def _sample(histories: Histories, size: int) -> Histories:
     customers = float(histories.count.sum())
     draws = np.random.default_rng(0).choice(histories.size, size=size, p=histories.count / customers)
     rows, drawn = np.unique(draws, return_counts=True)
+    kept = {f.name: getattr(histories, f.name) for f in dataclasses.fields(histories) if f.name not in ("count", "inverse")}
     return Histories(
-        **{name: getattr(histories, name)[rows] for name in ("x", "x_unmailed", "t_x", "n", "mailed_silent", "unmailed_silent", "after_last")},
+        **{name: None if value is None else value[rows] for name, value in kept.items()},
         count=drawn * (customers / size),
         inverse=np.arange(len(rows)),
     )
 
 
-def _has_unmailed_quarter(histories: Histories) -> bool:
+def has_unmailed_quarter(histories: Histories) -> bool:
     after_unmailed = histories.after_last.sum(axis=1) < histories.silent_quarters
     return bool(((histories.unmailed_silent > 0) | (histories.x_unmailed > 0) | after_unmailed).any())
 
 
-def _on_bounds(theta: np.ndarray, bounds: list[tuple[float, float]], names: tuple[str, ...]) -> list[str]:
+def on_bounds(theta: np.ndarray, bounds: list[tuple[float, float]], names: tuple[str, ...]) -> list[str]:
     hits = []
     for value, (low, high), name in zip(theta, bounds, names):
-        if name == "rho":
+        if name == "rho" or name.startswith("season"):
             if value <= low + 1e-4 or value >= high - 1e-4:
                 hits.append(name)
         elif value <= low + 1e-3 or value >= high - 1e-3:

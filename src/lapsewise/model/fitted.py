@@ -15,6 +15,7 @@ from lapsewise.data.summary import CustomerSummary, summarize
 from lapsewise.errors import InputError
 from lapsewise.files.model_file import MODEL_FORMAT, MODEL_VERSION, read_model_file
 from lapsewise.model.churn import ChurnFit, fit_churn
+from lapsewise.model.seasons import fit_seasons
 from lapsewise.model.spend import SpendFit, fit_spend
 
 
@@ -53,7 +54,8 @@ class Model:
         return {
             "format": MODEL_FORMAT,
             "version": MODEL_VERSION,
-            "churn": {k: churn[k] for k in ("alpha", "beta", "gamma", "delta", "rho", "std_errors")},
+            "churn": {k: churn[k] for k in ("alpha", "beta", "gamma", "delta", "rho", "seasons", "std_errors")},
+            "season_test": churn["season_test"],
             "spend": None if self.spend is None else self.spend.to_dict(),
             "log_likelihood": churn["log_likelihood"],
             "converged": churn["converged"],
@@ -74,6 +76,7 @@ class Model:
             customers=data.get("customers", 0),
             histories=data.get("histories", 0),
             converged=data.get("converged", True),
+            season_test=data.get("season_test"),
         )
         return cls(
             churn=ChurnFit.from_dict(churn),
@@ -86,13 +89,17 @@ class Model:
         )
 
 
-def fit_model(panel: Panel, summary: CustomerSummary | None = None) -> Model:
+def fit_model(panel: Panel, summary: CustomerSummary | None = None, seasons: bool = True) -> Model:
     """Fit the hidden-churn model on the panel's compressed histories and the gamma-gamma model on its repeat customers.
 
+    With ``seasons`` the churn model has multipliers by quarter of the year
+    (:func:`lapsewise.model.seasons.fit_seasons`), tested against the plain fit.
     ``summary`` is the panel's :func:`~lapsewise.data.summary.summarize`, when the caller has it already.
     """
     # One after the other: both searches set the process's BLAS threads to one while they run (optimum.maximize).
     churn = fit_churn(compress(panel), panel.mailing_history)
+    if seasons:
+        churn = fit_seasons(compress(panel, seasons=True), panel.mailing_history, churn)
     spend, spend_warnings = _fit_spend_or_warn(panel, summary)
     warnings = list(churn.warnings) + spend_warnings
     return Model(

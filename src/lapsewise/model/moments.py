@@ -184,6 +184,27 @@ def log_moment_grid(process: Process, n_max: int, b_max: int, x_max: int | None 
     return np.ascontiguousarray(grid.transpose(2, 1, 0))
 
 
+# ---------------------------------------------------------------- a history's sum of terms
+
+
+def history_sums(terms, term_x: np.ndarray, history_x: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """log of each history's sum of exp(term values), and the scaled pieces needed for a gradient.
+
+    ``terms`` is the sparse histories-by-terms matrix of a likelihood's expansion,
+    ``term_x`` the repeat purchases of each term's state. All of a history's terms
+    share its x, so the values are shifted by the largest value of their x before
+    exponentiating: no term that matters can underflow.
+    Returns (log sums, exp of shifted term values, scaled sums).
+    """
+    shift = np.full(int(term_x.max()) + 1, -np.inf)
+    np.maximum.at(shift, term_x, values)
+    shift = np.where(np.isfinite(shift), shift, 0.0)
+    scaled = np.exp(values - shift[term_x])
+    sums = terms @ scaled
+    with np.errstate(divide="ignore"):
+        return np.log(sums) + shift[history_x], scaled, sums
+
+
 # ---------------------------------------------------------------- survival
 
 

@@ -3,10 +3,12 @@
 Customer i has a purchase probability ``p ~ Beta(alpha, beta)`` and a churn
 probability ``theta ~ Beta(gamma, delta)``. Quarter 0 is the first purchase. At
 the start of every later quarter an alive customer leaves, for good, with
-probability ``theta``. An alive customer buys with probability ``p`` in a
-mailed quarter and ``rho * p`` in an unmailed one. With every quarter mailed
-this is the BG/BB model of Fader, Hardie & Berger (2010), and ``rho`` is then
-``None``: the data say nothing about it.
+probability ``theta``. An alive customer buys with probability ``s_q * p`` in a
+mailed quarter and ``rho * s_q * p`` in an unmailed one, where ``s_q`` is the
+multiplier of the quarter of the (fiscal) year, the largest 1 (``seasons``; None
+when every quarter is alike). With every quarter mailed and no seasons this is
+the BG/BB model of Fader, Hardie & Berger (2010), and ``rho`` is then ``None``:
+the data say nothing about it.
 
 The fit estimates a process (:class:`lapsewise.model.churn.ChurnFit`), the
 posterior and the simulator read one, and the stop-rule program plans against
@@ -22,6 +24,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
+
 
 @dataclass(frozen=True)
 class Process:
@@ -36,6 +40,10 @@ class Process:
     rho : float or None
         Share of the purchase probability left in an unmailed quarter; None when
         every quarter counts as mailed (no mailing history).
+    seasons : tuple of 4 floats or None
+        Multipliers of the purchase probability in quarters 1-4 of the (fiscal)
+        year (index ``q % 4`` of the absolute quarter q), the largest 1; None when
+        every quarter is alike.
     """
 
     alpha: float
@@ -43,6 +51,22 @@ class Process:
     gamma: float
     delta: float
     rho: float | None = None
+    seasons: tuple[float, float, float, float] | None = None
+
+    @property
+    def seasonal(self) -> bool:
+        """True when some quarter of the year has a multiplier other than 1."""
+        return self.seasons is not None and any(s != 1.0 for s in self.seasons)
+
+    def season(self, quarter_of_year) -> "float | np.ndarray":
+        """The multiplier of a quarter of the year (0-3; arrays work too); 1 without seasons."""
+        if self.seasons is None:
+            return np.ones_like(quarter_of_year, dtype=float) if isinstance(quarter_of_year, np.ndarray) else 1.0
+        return np.asarray(self.seasons, dtype=float)[np.asarray(quarter_of_year) % 4] if isinstance(quarter_of_year, np.ndarray) else float(self.seasons[int(quarter_of_year) % 4])
+
+    def without_seasons(self) -> "Process":
+        """The same process with every quarter alike (multiplier 1)."""
+        return Process(self.alpha, self.beta, self.gamma, self.delta, self.rho)
 
     @property
     def mailing_history(self) -> bool:

@@ -41,7 +41,7 @@ def score_customers(model: Model, panel: Panel, horizon: int = 4, annual_discoun
             f"--annual-discount-rate 0: DERT is infinite for this model (gamma = {process.gamma:.3g} is at most 1, so the "
             "undiscounted expected orders never converge); give a discount rate above 0"
         )
-    histories = compress(panel)
+    histories = compress(panel, seasons=process.seasonal)
     post = posterior(process, histories)
     summary = summarize(panel)
     inverse = histories.inverse
@@ -68,6 +68,8 @@ def score_customers(model: Model, panel: Panel, horizon: int = 4, annual_discoun
 def lapse_curves(model: Model, summary: CustomerSummary, max_silent: int = 12, bands: tuple[int, ...] = DEFAULT_FREQUENCY_BANDS) -> pd.DataFrame:
     """P(alive) and P(buy next quarter) after k further mailed silent quarters, for a typical customer of each frequency band.
 
+    With seasons the curve runs through the calendar from the as-of quarter (:func:`~lapsewise.model.posterior.lapse_curve`).
+
     The typical customer of a band has the band's median repeat purchases x and
     median last-purchase quarter t_x (``summary`` is the panel's :func:`~lapsewise.data.summary.summarize`).
     Long format: band, x, t_x, k, p_alive, p_buy.
@@ -81,7 +83,7 @@ def lapse_curves(model: Model, summary: CustomerSummary, max_silent: int = 12, b
             continue
         x = int(np.median(summary.x[members]))
         t_x = max(int(np.median(summary.t_x[members])), x)
-        p_alive, p_buy = lapse_curve(model.churn.process, x, t_x, max_silent)
+        p_alive, p_buy = lapse_curve(model.churn.process, x, t_x, max_silent, model.end_quarter)
         for k in range(max_silent + 1):
             rows.append({"band": label, "x": x, "t_x": t_x, "k": k, "p_alive": float(p_alive[k]), "p_buy": float(p_buy[k])})
     return pd.DataFrame(rows)
