@@ -91,3 +91,42 @@ def small_panel(customers=400, seed=3) -> Panel:
     purchased, mailed, n = simulate(customers, PROCESS.alpha, PROCESS.beta, PROCESS.gamma, PROCESS.delta, PROCESS.rho, quarters=(4, 9), lapse_after=2, winback_share=0.3, seed=seed)
     spend = purchased * np.random.default_rng(seed).gamma(6.0, 7.5, purchased.shape).astype(np.float32)
     return Panel(np.array([f"C{i:04d}" for i in range(customers)]), 100 - n, 100, purchased, spend, mailed, True)
+
+
+SEASONAL_TRUTH = {"alpha": 0.8, "beta": 3.0, "gamma": 0.6, "delta": 4.0, "rho": 0.6, "seasons": (1.0, 0.5, 0.375, 0.625)}
+"""A seasonal world: demand 1.6 / 0.8 / 0.6 / 1.0 by quarter of the year, scaled so that the largest is 1."""
+
+
+def peak_targeted(seen):
+    """Mail everyone in play in the peak quarter (quarter 0 of the year); in the others half of the customers who
+    bought within the last 3 quarters: mailing aimed at the peak and at the recent, as catalogue firms do."""
+    recent = seen.quarter - 1 - seen.last_purchase < 3
+    if seen.quarter % 4 == 0:
+        return seen.in_play.copy()
+    return seen.in_play & recent & (seen.rng.random(len(recent)) < 0.5)
+
+
+def seasonal_panel(customers: int, seed: int, truth: dict = SEASONAL_TRUTH, rule=peak_targeted, quarters: int = 24) -> Panel:
+    """A Panel simulated on the calendar: customers enter in the first half of ``quarters`` quarters, column 0 is
+    quarter of the year 0, and each quarter's purchase probability carries its season's multiplier."""
+    from lapsewise.evaluate.simulator import StreamedUniforms, draw_traits, run_process
+
+    rng = np.random.default_rng(seed)
+    process = Process(truth["alpha"], truth["beta"], truth["gamma"], truth["delta"], truth["rho"], truth.get("seasons"))
+    traits = draw_traits(process, customers, rng)
+    first = rng.integers(0, quarters // 2, customers)
+    start = 400  # an absolute quarter with 400 % 4 == 0: column j is quarter of the year j % 4
+    simulated = run_process(process, traits, quarters, rule, StreamedUniforms(rng, customers), first=first, rng=rng, calendar_start=start)
+    columns = first[:, None] + np.arange(quarters)[None, :]
+    inside = columns < quarters
+    aligned = lambda array: np.where(inside, np.take_along_axis(array, np.minimum(columns, quarters - 1), axis=1), 0).astype(np.uint8)  # noqa: E731
+    purchased = aligned(simulated.purchased)
+    return Panel(
+        customer_ids=np.array([f"T{i:06d}" for i in range(customers)]),
+        first_quarter=start + first,
+        end_quarter=start + quarters - 1,
+        purchased=purchased,
+        spend=purchased * rng.gamma(6.0, 45.0 / 6.0, size=purchased.shape).astype(np.float32),
+        mailed=aligned(simulated.mailed),
+        mailing_history=True,
+    )

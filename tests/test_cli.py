@@ -25,6 +25,15 @@ def test_fit_writes_model_and_refuses_to_overwrite(demo_dir, tmp_path):
     # Without a mailings file rho is not estimated and the output says every quarter counts as mailed.
     assert json.loads(out.read_text())["churn"]["rho"] is None
     assert "counted as mailed" in forced.stdout
+    # Seasons are fitted by default and tested against none; --no-seasons writes multipliers of 1 and no test.
+    assert "Seasons against none: likelihood-ratio statistic" in result.stdout
+    assert len(model["churn"]["seasons"]) == 4 and max(model["churn"]["seasons"]) == 1.0
+    assert model["season_test"]["degrees_of_freedom"] == 3
+    plain = run("fit", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--out", out, "--force", "--no-seasons")
+    assert plain.returncode == 0, plain.stderr
+    data = json.loads(out.read_text())
+    assert data["churn"]["seasons"] == [1.0, 1.0, 1.0, 1.0] and data["season_test"] is None
+    assert "Seasons against none" not in plain.stdout
 
 
 def test_backtest_json_is_stable_and_has_its_keys(demo_dir):

@@ -9,7 +9,7 @@ from numpy.testing import assert_array_equal
 
 from conftest import THREE_CUSTOMERS, row_of
 from lapsewise.data import reference
-from lapsewise.data.histories import compress, compress_arrays, history_arrays
+from lapsewise.data.histories import compress, compress_arrays, history_arrays, season_quarters
 from lapsewise.data.summary import summarize
 
 
@@ -122,3 +122,35 @@ def test_compression_equals_the_plain_group_by(seed):
     plain = reference.grouped_histories(purchased, mailed, n)
     pd.testing.assert_frame_equal(fast, plain, check_dtype=False)
     assert histories.count.sum() == rows and (histories.count[histories.inverse[-100:]] >= 2).all()
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_seasonal_compression_equals_the_plain_group_by(seed):
+    # With seasons: the fast statistics by quarter of the year against reference.grouped_histories counting them
+    # quarter by quarter from the definitions (quarter j of a customer is in quarter of the year (phase + j) % 4).
+    rng = np.random.default_rng(200 + seed)
+    rows, width = 300, [6, 23, 70][seed]
+    purchased = (rng.random((rows, width)) < 0.3).astype(np.uint8)
+    mailed = (rng.random((rows, width)) < 0.6).astype(np.uint8)
+    n = rng.integers(0, width, size=rows)
+    phase = rng.integers(0, 4, size=rows)
+    for array in (purchased, mailed, n, phase):
+        array[-100:] = array[:100]
+    histories = compress_arrays(history_arrays(purchased, mailed, n, phase))
+    silent = histories.silent_quarters
+    columns = {name: getattr(histories, name) for name in reference.SCALARS}
+    columns["phase"] = histories.phase
+    columns.update({f"season_x_{q}": histories.season_x[:, q] for q in range(4)})
+    columns.update({f"season_mailed_silent_{q}": histories.season_mailed_silent[:, q] for q in range(4)})
+    fast = pd.DataFrame(columns)
+    fast["after_last"] = ["".join(str(int(flag)) for flag in flags[:length]) for flags, length in zip(histories.after_last, silent)]
+    fast["count"] = histories.count
+    fast = fast.sort_values(list(fast.columns[:-1])).reset_index(drop=True)
+    plain = reference.grouped_histories(purchased, mailed, n, phase)
+    pd.testing.assert_frame_equal(fast, plain, check_dtype=False)
+
+
+def test_season_quarters_counts_the_calendar():
+    # By hand: quarter 0 in quarter of the year 2 (phase 2); quarters 1..6 fall in 3, 0, 1, 2, 3, 0.
+    assert season_quarters(np.array([2]), np.array([6])).tolist() == [[2, 1, 1, 2]]
+    assert season_quarters(np.array([0]), np.array([0])).tolist() == [[0, 0, 0, 0]]

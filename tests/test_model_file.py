@@ -77,6 +77,10 @@ def test_a_model_file_written_by_fit_is_read_back(tmp_path):
         (changed("as_of", "last Tuesday"), 'as_of = "last Tuesday" is not a date'),
         (changed("customers", -5), "customers = -5 is not a whole number"),
         (changed("warnings", "none"), "warnings is not a list of texts"),
+        (changed("churn.seasons", [1.0, 0.5]), "churn.seasons = .* is not a list of four multipliers"),
+        (changed("churn.seasons", [0.5, 0.5, 0.6, 0.7]), "churn.seasons = .* has no multiplier equal to 1"),
+        (changed("churn.seasons", [1.0, 1.5, 0.6, 0.7]), "churn.seasons\\[1\\] value = 1.5 is outside"),
+        (changed("churn.seasons", [1.0, "x", 0.6, 0.7]), "churn.seasons\\[1\\] value = .* is not a number"),
     ],
     ids=lambda value: None if isinstance(value, (dict, str)) and len(str(value)) > 60 else str(value)[:30],
 )

@@ -62,10 +62,11 @@ from lapsewise.data import panel as panel_module
 from lapsewise.data import summary as summary_module
 from lapsewise.evaluate.scenario import simulate_base
 from lapsewise.files.inputs import load_mailings, load_orders, load_orders_and_mailings
-from lapsewise.model import churn, spend
+from lapsewise.model import churn, seasons, spend
 
-STAGES = ("load_orders", "load_mailings", "load_both", "build_panel", "compress", "summarize", "expand", "churn_fit", "spend_fit")
-"""The stages of ``fit`` in the order they run; ``expand`` is the first step of ``churn_fit``, also timed on its own."""
+STAGES = ("load_orders", "load_mailings", "load_both", "build_panel", "compress", "summarize", "expand", "churn_fit", "compress_seasons", "seasons_fit", "spend_fit")
+"""The stages of ``fit`` in the order they run; ``expand`` is the first step of ``churn_fit``, also timed on its own;
+``compress_seasons`` and ``seasons_fit`` are the seasonal model's (fitted by default, after the plain one it is tested against)."""
 
 _STATUS = Path("/proc/self/status")
 _CLEAR_REFS = Path("/proc/self/clear_refs")
@@ -290,6 +291,13 @@ def run_stages(meter: Meter, paths: dict[str, Path], as_of: str, upto: str | Non
     out["gradient_calls"] = f"{len(full)} on all histories, {scouting} on the stand-in sample"
     if done("churn_fit"):
         return out
+    out["seasonal_histories"] = meter.run("compress_seasons", histories_module.compress, out["panel"], True)
+    if done("compress_seasons"):
+        return out
+    out["seasonal_churn"] = meter.run("seasons_fit", seasons.fit_seasons, out["seasonal_histories"], out["panel"].mailing_history, out["churn"])
+    meter.stages[-1].note = f"{out['seasonal_histories'].size:,} distinct seasonal histories"
+    if done("seasons_fit"):
+        return out
     summary = out["summary"]
     out["spend"] = meter.run("spend_fit", spend.fit_spend, summary.x, summary.mean_repeat_value)
     return out
@@ -377,6 +385,8 @@ _PROFILE_NEEDS = {
     "summarize": "build_panel",
     "expand": "compress",
     "churn_fit": "compress",
+    "compress_seasons": "build_panel",
+    "seasons_fit": "churn_fit",
     "spend_fit": "summarize",
 }
 
@@ -394,6 +404,8 @@ def profile_stage(paths: dict[str, Path], as_of: str, stage: str, lines: int) ->
         "summarize": lambda: summary_module.summarize(out["panel"]),
         "expand": lambda: churn.expand(out["histories"]),
         "churn_fit": lambda: churn.fit_churn(out["histories"], out["panel"].mailing_history),
+        "compress_seasons": lambda: histories_module.compress(out["panel"], True),
+        "seasons_fit": lambda: seasons.fit_seasons(histories_module.compress(out["panel"], True), out["panel"].mailing_history, out["churn"]),
         "spend_fit": lambda: spend.fit_spend(out["summary"].x, out["summary"].mean_repeat_value),
     }
     profiler = cProfile.Profile()

@@ -146,6 +146,12 @@ def _orders_from_purchases(rng: np.random.Generator, buys: np.ndarray, values: n
 def compare_with_truth(model: Model, truth: Truth) -> pd.DataFrame:
     """The fitted parameters beside the true settings: parameter, true, fitted, std_error, within_two_errors."""
     pairs = [(name, getattr(truth, name), getattr(model.churn, name), model.churn.std_errors.get(name)) for name in ("alpha", "beta", "gamma", "delta", "rho")]
+    if model.churn.seasons is not None:  # the scenario has no seasons: every true multiplier is 1 (the fixed one is left out)
+        pairs += [
+            (f"season_{q + 1}", 1.0, value, model.churn.std_errors.get(f"season_{q + 1}"))
+            for q, value in enumerate(model.churn.seasons)
+            if model.churn.std_errors.get(f"season_{q + 1}") is not None
+        ]
     if model.spend is not None:
         pairs += [(f"spend {name}", getattr(truth, f"spend_{name}"), getattr(model.spend, name), model.spend.std_errors.get(name)) for name in ("p", "q", "gamma")]
     rows = [

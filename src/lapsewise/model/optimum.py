@@ -80,6 +80,7 @@ def minimize(
     scout_steps: int,
     stand_in: Objective | None = None,
     exact_hessian: Callable[[np.ndarray], np.ndarray] | None = None,
+    projected: bool = False,
 ) -> Optimum:
     """Minimise ``objective`` (a negative log-likelihood per customer) over the box ``bounds``.
 
@@ -88,7 +89,11 @@ def minimize(
     is a cheaper approximation of ``objective`` used for the scouting and the
     first convergence. ``exact_hessian``, when given, is the objective's Hessian
     as a function of the search coordinates; otherwise the Hessian is taken by
-    forward differences of the gradient (:func:`hessian`).
+    forward differences of the gradient (:func:`hessian`). With ``projected`` the
+    Newton steps keep to the box: a step is clipped to it, and a coordinate at a
+    bound whose gradient points out of the box is held there (its row and column
+    of the Hessian left out of the step), so an optimum on a bound is reached by
+    Newton steps too instead of by the L-BFGS-B fallback.
 
     The search runs with one BLAS thread. Its dense algebra is on 3x3 to 5x5
     matrices, and each L-BFGS-B step would otherwise wake a pool of BLAS threads,
@@ -111,7 +116,7 @@ def minimize(
         approximate = None
         if stand_in is not None:
             approximate = hessian(stand_in, near.x, near.jac, bounds)
-        finished = _newton(objective, hessian_at, near.x, bounds, customers, approximate)
+        finished = _newton(objective, hessian_at, near.x, bounds, customers, approximate, projected)
         if finished is not None:
             return finished
         # Newton could not finish (a bound in the way, or a Hessian that is not positive definite):
@@ -157,6 +162,7 @@ def _newton(
     bounds: Sequence[tuple[float, float]],
     customers: float,
     curvature: np.ndarray | None = None,
+    projected: bool = False,
 ) -> Optimum | None:
     """Newton steps with a backtracking line search; None when a step fails (the caller falls back).
 
@@ -177,20 +183,24 @@ def _newton(
     for _ in range(_NEWTON_STEPS):
         if curvature is None:
             curvature, exact = hessian_at(x, gradient), True
-        factor = _positive_definite(curvature)
+        moving = np.ones(len(x), dtype=bool)
+        if projected:  # held: at a bound, with the gradient pushing out of the box
+            moving = ~(((x <= low) & (gradient > 0)) | ((x >= high) & (gradient < 0)))
+        factor = _positive_definite(curvature[np.ix_(moving, moving)] if curvature is not None else None)
         if factor is None:
             if exact:
                 return None
             curvature = None
             continue
-        step = -linalg.cho_solve(factor, gradient)
+        step = np.zeros(len(x))
+        step[moving] = -linalg.cho_solve(factor, gradient[moving])
         decrement = float(-gradient @ step)  # g' H^-1 g: twice the gain the quadratic model promises
         if decrement / 2 * customers <= TOLERANCE:
             if exact:
                 return Optimum(x=x, fun=float(fun), hessian=curvature, converged=True, message="Newton decrement below tolerance")
             curvature = None  # confirm with the exact Hessian here
             continue
-        trial = _line_search(objective, x, fun, step, decrement, low, high)
+        trial = _line_search(objective, x, fun, step, decrement, low, high, projected)
         if trial is None:
             if exact:
                 return None
@@ -211,12 +221,17 @@ def _positive_definite(curvature: np.ndarray | None):
         return None
 
 
-def _line_search(objective: Objective, x: np.ndarray, fun: float, step: np.ndarray, decrement: float, low: np.ndarray, high: np.ndarray):
-    """Halve the step until it decreases the objective enough (Armijo); None when it leaves the box or never does."""
+def _line_search(
+    objective: Objective, x: np.ndarray, fun: float, step: np.ndarray, decrement: float, low: np.ndarray, high: np.ndarray, projected: bool = False
+):
+    """Halve the step until it decreases the objective enough (Armijo); None when it leaves the box (unless
+    ``projected``: then the trial point is clipped to the box) or never decreases it."""
     length = 1.0
     while length >= 1 / 64:
         trial = x + length * step
-        if np.any(trial < low) or np.any(trial > high):
+        if projected:
+            trial = np.clip(trial, low, high)
+        elif np.any(trial < low) or np.any(trial > high):
             return None
         trial_fun, trial_gradient = objective(trial)
         if np.isfinite(trial_fun) and trial_fun <= fun - 1e-4 * length * decrement:

@@ -16,10 +16,12 @@ is the expectation of a polynomial in p of degree ``tau <= n`` under
 ``2J - 1`` exactly, so with ``J = n_max // 2 + 2`` nodes the weighted sum over
 the nodes *is* the expectation, up to rounding; every term is positive, so
 nothing cancels. The derivatives by rho and the seasons are polynomials of the
-same degree and so exact as well; those by alpha and beta (which move the nodes)
-are central differences of the exact value in log alpha and log beta (step
-1e-5, relative error about 1e-8 against the exact plain gradient). With every ``s_q = 1`` the likelihood equals the plain one
-(the tests check it to 1e-10).
+same degree and so exact as well. Those by alpha and beta move the nodes: since
+the sum over the nodes equals the expectation for every alpha and beta, its
+derivative is the expectation's, and it needs only how the nodes and weights
+move (central differences of the nodes alone, cheap; :func:`log_state_moments`;
+the gradient equals the plain model's exact one to 1e-9). With every ``s_q = 1``
+the likelihood equals the plain one (the tests check it to 1e-10).
 
 A *state* of the p factor is (x, the eight class counts); a term of the sum is a
 (theta factor, state) pair; as in the plain likelihood the histories are a
@@ -108,8 +110,11 @@ def expand_seasonal(histories: Histories) -> SeasonalExpansion:
 
     Cell ``j`` of a history is the quarter ``tau = t_x + j`` (``0 <= j <= n - t_x``).
     Its class counts are those up to t_x plus one for each quarter t_x + 1 .. tau in
-    the class of its quarter of the year and mail flag: a running sum over the cells
-    that restarts with every history.
+    the class of its quarter of the year and mail flag. A state (x and the eight
+    counts) is packed into one integer, a field per count, so a quarter adds a power
+    of two to the key and a history's keys are one cumulative sum along its row of
+    the after-last quarters; a term's key is the state's with a last bit for "alive
+    through n". One hash of the cells' term keys finds the distinct terms.
     """
     if not histories.seasonal:
         raise ValueError("a seasonal expansion needs histories compressed with seasons")
@@ -117,58 +122,50 @@ def expand_seasonal(histories: Histories) -> SeasonalExpansion:
     rows = histories.size
     indptr = np.zeros(rows + 1, dtype=np.int64)
     np.cumsum(silent + 1, out=indptr[1:])
-    cells = int(indptr[-1])
-    first, last = indptr[:-1], indptr[1:] - 1
-    owner = np.repeat(np.arange(rows), silent + 1)
-    step = np.arange(cells) - first[owner]  # j
-    base = base_class_counts(histories)
-    increments = np.zeros((cells, CLASSES), dtype=np.int32)
-    later = step >= 1
-    season = (histories.phase[owner] + histories.t_x[owner] + step) % 4
-    flag = histories.after_last[owner[later], step[later] - 1]
-    np.add.at(increments, (np.flatnonzero(later), 2 * season[later] + flag), 1)
-    increments[first] += base.astype(np.int32)
-    counts = np.cumsum(increments, axis=0)
-    counts -= (counts[first] - base)[owner].astype(np.int32)  # restart at each history
-    del increments
-    x = histories.x
+    x = histories.x.astype(np.int64)
     max_quarter = int(histories.n.max()) + 1
-    bits = max(int(counts.max()), int(x.max()) + 1, 1).bit_length()
-    if bits * (1 + CLASSES) > 63:
+    count_bits = int(season_quarters(np.arange(4), np.full(4, max_quarter)).max()).bit_length()
+    x_bits = (int(x.max()) + 1).bit_length()
+    if x_bits + CLASSES * count_bits + 1 > 63:
         raise ValueError("histories too long for the state keys")
+    shifts = count_bits * (CLASSES - 1 - np.arange(CLASSES))  # class k's field
 
-    def keys(x_: np.ndarray, counts_: np.ndarray) -> np.ndarray:
-        key = np.asarray(x_, dtype=np.int64).copy()
-        for k in range(CLASSES):
-            key = (key << bits) | counts_[:, k]
-        return key
-
-    cell_keys = keys(x[owner], counts)
-    through_n = counts[last]
-    all_keys = np.concatenate([cell_keys, keys(x, through_n), keys(x + 1, through_n)])
-    codes, unique = pd.factorize(all_keys)
-    states = np.empty((len(unique), 1 + CLASSES), dtype=np.int64)
-    rest = np.asarray(unique, dtype=np.int64)
-    for k in range(CLASSES, 0, -1):
-        states[:, k] = rest & ((1 << bits) - 1)
-        rest = rest >> bits
-    states[:, 0] = rest
-    cell_state = codes[:cells]
-    tau = histories.t_x[owner] + step
-    theta_index = tau.copy()
-    theta_index[last] += max_quarter + 1  # alive through n rather than dead after tau
-    term_codes, term_keys = pd.factorize(theta_index * len(unique) + cell_state)
+    base = base_class_counts(histories)
+    base_key = (x << (CLASSES * count_bits)) + (base << shifts[None, :]).sum(axis=1)
+    width = histories.after_last.shape[1]
+    quarter = np.arange(1, width + 1)[None, :]
+    klass = 2 * ((histories.phase[:, None] + histories.t_x[:, None] + quarter) % 4) + histories.after_last[:, :width]
+    keys = np.empty((rows, width + 1), dtype=np.int64)
+    keys[:, 0] = base_key
+    keys[:, 1:] = np.left_shift(1, shifts[klass])
+    del klass
+    np.cumsum(keys, axis=1, out=keys)
+    through_n = keys[np.arange(rows), silent]
+    keys <<= 1
+    keys[np.arange(rows), silent] += 1  # the last cell: alive through n
+    inside = np.arange(width + 1)[None, :] <= silent[:, None]
+    cell_terms, term_keys = pd.factorize(keys[inside])
+    del keys, inside
     term_keys = np.asarray(term_keys, dtype=np.int64)
-    terms = sparse.csr_matrix((np.ones(cells), term_codes.astype(np.int32), indptr.astype(np.int32)), shape=(rows, len(term_keys)))
+    state_codes, state_keys = pd.factorize(np.concatenate([term_keys >> 1, through_n, through_n + (1 << (CLASSES * count_bits))]))
+    state_keys = np.asarray(state_keys, dtype=np.int64)
+    states = np.empty((len(state_keys), 1 + CLASSES), dtype=np.int64)
+    states[:, 0] = state_keys >> (CLASSES * count_bits)
+    states[:, 1:] = (state_keys[:, None] >> shifts[None, :]) & ((1 << count_bits) - 1)
+    term_state = state_codes[: len(term_keys)]
+    tau = states[term_state].sum(axis=1)  # every quarter 1..tau is a purchase or a silent quarter of some class
+    terms = sparse.csr_matrix(
+        (np.ones(len(cell_terms)), cell_terms.astype(np.int32), indptr.astype(np.int32)), shape=(rows, len(term_keys))
+    )
     purchases = np.concatenate([histories.season_x, histories.x_unmailed[:, None]], axis=1).astype(float)
     return SeasonalExpansion(
         histories=histories,
         terms=terms,
-        term_theta=term_keys // len(unique),
-        term_state=term_keys % len(unique),
+        term_theta=tau + (term_keys & 1) * (max_quarter + 1),  # alive through n rather than dead after tau
+        term_state=term_state,
         states=states,
-        alive_state=codes[cells : cells + rows],
-        next_state=codes[cells + rows :],
+        alive_state=state_codes[len(term_keys) : len(term_keys) + rows],
+        next_state=state_codes[len(term_keys) + rows :],
         purchases=purchases,
         max_quarter=max_quarter,
     )
@@ -205,31 +202,64 @@ def beta_nodes(alpha: float, beta: float, nodes: int) -> tuple[np.ndarray, np.nd
     return p, log_weights - special.logsumexp(log_weights)
 
 
+def node_sensitivities(alpha: float, beta: float, nodes: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """How the nodes and log weights of :func:`beta_nodes` move with alpha and beta: (dp/dalpha, dlogw/dalpha,
+    dp/dbeta, dlogw/dbeta), by central differences in log alpha and log beta (step 1e-5; the nodes are smooth
+    functions of both). Where a weight underflows to 0 its slope is 0 (such a node carries no share)."""
+    h = _DIFFERENCE_STEP
+    slopes = []
+    for name in ("alpha", "beta"):
+        base = alpha if name == "alpha" else beta
+        moved = [beta_nodes(*((base * math.exp(sign * h), beta) if name == "alpha" else (alpha, base * math.exp(sign * h))), nodes) for sign in (1, -1)]
+        d_p = (moved[0][0] - moved[1][0]) / (2.0 * h * base)
+        with np.errstate(invalid="ignore"):
+            d_log_w = (moved[0][1] - moved[1][1]) / (2.0 * h * base)
+        slopes += [d_p, np.where(np.isfinite(d_log_w), d_log_w, 0.0)]
+    return tuple(slopes)
+
+
 def log_state_moments(states: np.ndarray, alpha: float, beta: float, c: np.ndarray, nodes: int, gradient: bool = False):
     """``log E_p[p^x prod_k (1 - c_k p)^m_k]`` for each state row (x, m_1..m_8), by quadrature; exact (module docstring).
 
-    With ``gradient`` also the derivatives by ``c_k``, shape (states, CLASSES).
+    With ``gradient`` also the derivatives by (alpha, beta, c_1..c_8), shape (states, 2 + CLASSES). Those by
+    ``c_k`` differentiate the integrand, a polynomial of the same degree: exact. The quadrature sum equals the
+    expectation for every alpha and beta, so its derivative by alpha is the expectation's: with ``f`` the
+    integrand, ``sum_i (dw_i/dalpha f(p_i) + w_i f'(p_i) dp_i/dalpha)``, where ``f'/f = x/p - sum_k m_k c_k/(1 - c_k p)``
+    is exact and the nodes' slopes come from :func:`node_sensitivities`.
     """
     p, log_weights = beta_nodes(float(alpha), float(beta), int(nodes))
     with np.errstate(divide="ignore"):
         features = np.column_stack([np.log(p), np.log1p(-np.outer(p, c))])  # (nodes, 1 + CLASSES)
+    # A node at p = 1 with c = 1 gives log 0: a very negative finite number instead, so that a count of 0 times it is 0.
+    features_t = np.ascontiguousarray(np.maximum(features, -1e300).T)
     counts = states.astype(float)
     value = np.empty(len(states))
-    d_c = np.empty((len(states), CLASSES)) if gradient else None
-    slope = -p[:, None] / (1.0 - np.outer(p, c))  # d log(1 - c p) / d c at each node
+    if gradient:
+        d = np.empty((len(states), 2 + CLASSES))
+        slope_c = -p[:, None] / (1.0 - np.outer(p, c))  # d log(1 - c p) / d c at each node
+        # d log f / d p at each node is counts @ slope_p[node]: x / p for the purchases, -c_k / (1 - c_k p) for class k.
+        slope_p = np.column_stack([1.0 / np.maximum(p, 1e-300), -c[None, :] / (1.0 - np.outer(p, c))])  # (nodes, 1 + CLASSES)
+        d_p_alpha, d_log_w_alpha, d_p_beta, d_log_w_beta = node_sensitivities(float(alpha), float(beta), int(nodes))
+        # The alpha and beta slopes of each node's exponent, side by side: share @ these gives both derivatives at once.
+        moves = np.stack([d_p_alpha[:, None] * slope_p, d_p_beta[:, None] * slope_p], axis=0)  # (2, nodes, 1 + CLASSES)
+        weight_moves = np.column_stack([d_log_w_alpha, d_log_w_beta])
     for begin in range(0, len(states), _CHUNK):
         block = counts[begin : begin + _CHUNK]
-        with np.errstate(invalid="ignore"):
-            exponents = block[:, 1:] @ features[:, 1:].T + np.outer(block[:, 0], features[:, 0]) + log_weights
-        exponents = np.where(np.isnan(exponents), -np.inf, exponents)  # 0 * log 0: a count of 0 at a node p = 1
-        peak = exponents.max(axis=1)
-        share = np.exp(exponents - peak[:, None])
+        share = block @ features_t
+        share += log_weights
+        peak = share.max(axis=1)
+        share -= peak[:, None]
+        np.exp(share, out=share)
         total = share.sum(axis=1)
         value[begin : begin + _CHUNK] = np.log(total) + peak
         if gradient:
             share /= total[:, None]
-            d_c[begin : begin + _CHUNK] = block[:, 1:] * (share @ slope)
-    return (value, d_c) if gradient else value
+            rows = slice(begin, begin + len(block))
+            d[rows, 2:] = block[:, 1:] * (share @ slope_c)
+            d[rows, :2] = share @ weight_moves
+            d[rows, 0] += np.einsum("ij,ij->i", block, share @ moves[0])
+            d[rows, 1] += np.einsum("ij,ij->i", block, share @ moves[1])
+    return (value, d) if gradient else value
 
 
 def _moments_and_derivatives(expansion: SeasonalExpansion, process: Process, gradient: bool):
@@ -238,15 +268,10 @@ def _moments_and_derivatives(expansion: SeasonalExpansion, process: Process, gra
     nodes = expansion.nodes
     if not gradient:
         return log_state_moments(expansion.states, process.alpha, process.beta, c, nodes)
-    value, d_c = log_state_moments(expansion.states, process.alpha, process.beta, c, nodes, gradient=True)
+    value, d_all = log_state_moments(expansion.states, process.alpha, process.beta, c, nodes, gradient=True)
+    d_c = d_all[:, 2:]
     d = np.zeros((len(value), 7))
-    h = _DIFFERENCE_STEP
-    for column, (name, base) in enumerate((("alpha", process.alpha), ("beta", process.beta))):
-        up = dict(alpha=process.alpha, beta=process.beta)
-        down = dict(up)
-        up[name], down[name] = base * math.exp(h), base * math.exp(-h)
-        rise = log_state_moments(expansion.states, up["alpha"], up["beta"], c, nodes) - log_state_moments(expansion.states, down["alpha"], down["beta"], c, nodes)
-        d[:, column] = rise / (2.0 * h) / base
+    d[:, :2] = d_all[:, :2]
     seasons = np.asarray(process.seasons if process.seasons is not None else (1.0,) * 4)
     rho = process.unmailed_response
     d[:, 2] = d_c[:, 0::2] @ seasons  # c of the unmailed classes is rho s_q
@@ -313,17 +338,88 @@ def season_rates(histories: Histories) -> np.ndarray:
         return np.where(observed > 0, bought / np.maximum(observed, 1), np.nan)
 
 
+CURVATURE_CUSTOMERS = 100_000
+"""On a base larger than this the standard errors come from the observed information of a sample of this many customers."""
+
+_AT_ONE = 1e-3  # a multiplier within this of 1 is at the top of its range
+
+
+@dataclass(frozen=True)
+class _Layout:
+    """Which multipliers the search moves: all but the reference (held at 1) and any ``fixed`` ones (held at 1 too)."""
+
+    mailing_history: bool
+    reference: int
+    fixed: tuple[int, ...] = ()
+
+    @property
+    def free_seasons(self) -> list[int]:
+        return [q for q in range(4) if q != self.reference and q not in self.fixed]
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        head = ("alpha", "beta", "gamma", "delta") + (("rho",) if self.mailing_history else ())
+        return head + tuple(f"season_{q + 1}" for q in self.free_seasons)
+
+    @property
+    def bounds(self) -> list[tuple[float, float]]:
+        return [_LOG_BOUNDS] * 4 + ([_RHO_BOUNDS] if self.mailing_history else []) + [_SEASON_BOUNDS] * len(self.free_seasons)
+
+    @property
+    def gradient_columns(self) -> list[int]:
+        """The columns of :func:`evaluate_seasonal`'s gradient that the search coordinates take."""
+        return [0, 1, 2, 3] + ([4] if self.mailing_history else []) + [5 + q for q in self.free_seasons]
+
+    def process(self, theta: np.ndarray) -> Process:
+        alpha, beta, gamma, delta = (float(v) for v in np.exp(theta[:4]))
+        rho = float(theta[4]) if self.mailing_history else None
+        free = dict(zip(self.free_seasons, (float(v) for v in theta[5 if self.mailing_history else 4 :])))
+        return Process(alpha, beta, gamma, delta, rho, tuple(free.get(q, 1.0) for q in range(4)))
+
+    def coordinates(self, process: Process) -> np.ndarray:
+        head = list(np.log([process.alpha, process.beta, process.gamma, process.delta]))
+        if self.mailing_history:
+            head.append(float(np.clip(process.rho, *_RHO_BOUNDS)))
+        return np.array(head + [float(np.clip(process.seasons[q], *_SEASON_BOUNDS)) for q in self.free_seasons])
+
+    def objective(self, expansion: SeasonalExpansion):
+        """The negative log-likelihood per customer and its gradient in search coordinates."""
+        scale = 1.0 / max(float(expansion.histories.count.sum()), 1.0)
+        columns = self.gradient_columns
+
+        def objective(theta: np.ndarray):
+            process = self.process(theta)
+            row, _, grad = evaluate_seasonal(expansion, process, gradient=True)
+            value = float(np.dot(expansion.histories.count, row))
+            if not np.isfinite(value):
+                return 1e10, np.zeros_like(theta)
+            grad = grad.copy()
+            grad[:4] *= [process.alpha, process.beta, process.gamma, process.delta]  # d/d log(parameter)
+            return -value * scale, -grad[columns] * scale
+
+        return objective
+
+
 def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") -> "ChurnFit":
     """Maximum-likelihood fit of the seasonal model, with the likelihood-ratio test against ``plain`` (the fit without seasons).
 
-    The multipliers are scaled so that the largest is 1: the search fixes one
+    The multipliers are scaled so that the largest is 1: the search holds one
     quarter of the year (the reference) at 1 and bounds the other three to
-    (0, 1]. It starts with the quarter with the most purchases per customer-quarter
-    as the reference; should another multiplier reach 1, that quarter is tried as
-    the reference too and the better fit kept. The search itself is the churn
-    fit's (:func:`lapsewise.model.optimum.minimize`, from the plain estimates),
-    with the Hessian by differences of the gradient. Returns ``plain`` with a
-    warning when some quarter of the year is never observed.
+    (0, 1]. The reference is first the quarter with the most purchases per
+    customer-quarter; should another multiplier reach 1, that quarter is tried as
+    the reference too and the better fit kept. A multiplier still at 1 then equals
+    the reference's and is held there (a season no different from the peak).
+
+    On a base of more than :data:`lapsewise.model.optimum.STAND_IN_CUSTOMERS`
+    customers the search and the choice of reference run on a sample of them (the
+    churn fit's stand-in), starting from the plain estimates; Newton steps with the
+    full gradient finish on the whole base (:func:`lapsewise.model.optimum.minimize`).
+    Their curvature, and the standard errors, come from the Hessian (by differences
+    of the exact gradient) of the whole base, or of a sample of
+    :data:`CURVATURE_CUSTOMERS` customers when the base is larger (a full Hessian
+    by differences costs eight full gradients; the sample's standard errors are
+    within a few per cent of the full ones, see ``tests/bench/README.md``).
+    Returns ``plain`` with a warning when some quarter of the year has no purchase.
     """
     from lapsewise.model.churn import ChurnFit, has_unmailed_quarter, on_bounds, sample_histories
     from lapsewise.model import optimum
@@ -334,36 +430,58 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") 
         missing = [f"quarter {q + 1}" for q in range(4) if not (np.isfinite(rates[q]) and rates[q] > 0)]
         warning = f"seasons not fitted: no purchase observed in {', '.join(missing)} of the year"
         return dataclasses.replace(plain, warnings=plain.warnings + (warning,))
-    expansion = expand_seasonal(histories)
     customers = float(histories.count.sum())
-    stand_in = None
-    if histories.size > optimum.STAND_IN_CUSTOMERS:
-        stand_in = expand_seasonal(sample_histories(histories, optimum.STAND_IN_CUSTOMERS))
-    tried = []
+    large = histories.size > optimum.STAND_IN_CUSTOMERS
+    sample = expand_seasonal(sample_histories(histories, optimum.STAND_IN_CUSTOMERS)) if large else expand_seasonal(histories)
+    sample_customers = float(sample.histories.count.sum())
+    start = dataclasses.replace(plain.process, rho=plain.rho if plain.rho is not None else (0.5 if mailing_history else None))
+
+    # The reference quarter, chosen on the sample (the whole base when small).
+    tried: dict[int, optimum.Optimum] = {}
     reference = int(np.argmax(rates))
-    while reference not in [t[0] for t in tried]:
-        best = _search(expansion, stand_in, mailing_history, plain, reference, rates, customers)
-        tried.append((reference, best))
-        seasons = _seasons_at(best.x, mailing_history, reference)
-        top = [q for q in range(4) if q != reference and seasons[q] >= _SEASON_BOUNDS[1] - 1e-4]
+    while reference not in tried:
+        layout = _Layout(mailing_history, reference)
+        ratios = np.clip(rates / rates[reference], 0.05, 0.99)
+        starts = [
+            layout.coordinates(dataclasses.replace(start, seasons=tuple(float(r) for r in ratios))),
+            layout.coordinates(dataclasses.replace(start, seasons=(0.9,) * 4)),
+        ]
+        tried[reference] = optimum.minimize(layout.objective(sample), starts, layout.bounds, sample_customers, _SCOUT_STEPS, projected=True)
+        seasons = layout.process(tried[reference].x).seasons
+        top = [q for q in range(4) if q != reference and seasons[q] >= 1.0 - _AT_ONE]
         if not top:
             break
         reference = top[0]
-    reference, best = min(tried, key=lambda item: item[1].fun)
-    process = _unpack(best.x, mailing_history, reference)
-    names = _names(mailing_history, reference)
-    bounds = _bounds(mailing_history)
+    reference = min(tried, key=lambda q: tried[q].fun)
+    scout = _Layout(mailing_history, reference).process(tried[reference].x)
+    layout = _Layout(mailing_history, reference, tuple(q for q in range(4) if q != reference and scout.seasons[q] >= 1.0 - _AT_ONE))
+    if large:
+        # The whole base: Newton steps from the sample's optimum, with the curvature of a larger sample (or the base).
+        curvature_base = sample_histories(histories, CURVATURE_CUSTOMERS) if customers > CURVATURE_CUSTOMERS else histories
+        curvature_objective = layout.objective(expand_seasonal(curvature_base))
+        bounds = layout.bounds
+
+        def curvature(theta: np.ndarray) -> np.ndarray | None:
+            return optimum.hessian(curvature_objective, theta, curvature_objective(theta)[1], bounds)
+
+        best = optimum.minimize(
+            layout.objective(expand_seasonal(histories)), [layout.coordinates(scout)], bounds, customers, 1, layout.objective(sample), curvature, projected=True
+        )
+    else:
+        best = optimum.minimize(layout.objective(sample), [layout.coordinates(scout)], layout.bounds, customers, 1, projected=True)
+    process = layout.process(best.x)
+    names = layout.names
     # A multiplier at 1 is not on a bound of the model (the scaling puts the largest there); at 0.001 it is.
-    on_bound = [name for name in on_bounds(best.x, bounds, names) if not (name.startswith("season") and process.seasons[int(name[-1]) - 1] >= 0.5)]
+    on_bound = [name for name in on_bounds(best.x, layout.bounds, names) if not (name.startswith("season") and process.seasons[int(name[-1]) - 1] >= 0.5)]
     warnings = [w for w in plain.warnings if "sits on the bound" not in w]
     warnings += [f"{name} sits on the bound of its range; its value and standard error are not reliable" for name in on_bound]
     if not best.converged:
         warnings.append(f"the optimiser did not report convergence with seasons ({best.message})")
     unidentified = ["rho"] if mailing_history and not has_unmailed_quarter(histories) else []
+    # A multiplier that ends at 1 equals the reference's: held there, like the reference, with no standard error.
+    unidentified += [name for name in names if name.startswith("season") and process.seasons[int(name[-1]) - 1] >= 1.0 - 1e-9]
     free = [name not in on_bound + unidentified for name in names]
-    errors = optimum.standard_errors(best.hessian, best.x, customers, logged=[i < 4 for i in range(len(names))], free=free)
-    std_errors = dict(zip(names, errors))
-    std_errors[f"season_{reference + 1}"] = None  # fixed at 1 by the scaling
+    errors = dict(zip(names, optimum.standard_errors(best.hessian, best.x, customers, logged=[i < 4 for i in range(len(names))], free=free)))
     log_likelihood = -best.fun * customers
     statistic = max(2.0 * (log_likelihood - plain.log_likelihood), 0.0)
     test = {
@@ -372,13 +490,14 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") 
         "p_value": float(stats.chi2.sf(statistic, 3)),
         "log_likelihood_without": plain.log_likelihood,
     }
+    names_out = PARAMETERS if mailing_history else tuple(n for n in PARAMETERS if n != "rho")
     return ChurnFit(
         alpha=process.alpha,
         beta=process.beta,
         gamma=process.gamma,
         delta=process.delta,
         rho=process.rho,
-        std_errors={name: std_errors.get(name) for name in PARAMETERS if name in std_errors or name.startswith("season")},
+        std_errors={name: errors.get(name) for name in names_out},  # None for the multipliers held at 1
         log_likelihood=log_likelihood,
         customers=int(customers),
         histories=histories.size,
@@ -387,57 +506,3 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") 
         seasons=process.seasons,
         season_test=test,
     )
-
-
-def _names(mailing_history: bool, reference: int) -> tuple[str, ...]:
-    free_seasons = [f"season_{q + 1}" for q in range(4) if q != reference]
-    return ("alpha", "beta", "gamma", "delta") + (("rho",) if mailing_history else ()) + tuple(free_seasons)
-
-
-def _bounds(mailing_history: bool) -> list[tuple[float, float]]:
-    return [_LOG_BOUNDS] * 4 + ([_RHO_BOUNDS] if mailing_history else []) + [_SEASON_BOUNDS] * 3
-
-
-def _seasons_at(theta: np.ndarray, mailing_history: bool, reference: int) -> tuple[float, ...]:
-    free = list(theta[5 if mailing_history else 4 :])
-    return tuple(1.0 if q == reference else float(free.pop(0)) for q in range(4))
-
-
-def _unpack(theta: np.ndarray, mailing_history: bool, reference: int) -> Process:
-    alpha, beta, gamma, delta = (float(v) for v in np.exp(theta[:4]))
-    rho = float(theta[4]) if mailing_history else None
-    return Process(alpha, beta, gamma, delta, rho, _seasons_at(theta, mailing_history, reference))
-
-
-def _objective(expansion: SeasonalExpansion, mailing_history: bool, reference: int):
-    """The negative log-likelihood per customer and its gradient in search coordinates."""
-    scale = 1.0 / max(float(expansion.histories.count.sum()), 1.0)
-    keep = [0, 1, 2, 3] + ([4] if mailing_history else []) + [5 + q for q in range(4) if q != reference]
-
-    def objective(theta: np.ndarray):
-        process = _unpack(theta, mailing_history, reference)
-        row, _, grad = evaluate_seasonal(expansion, process, gradient=True)
-        value = float(np.dot(expansion.histories.count, row))
-        if not np.isfinite(value):
-            return 1e10, np.zeros_like(theta)
-        grad = grad.copy()
-        grad[:4] *= [process.alpha, process.beta, process.gamma, process.delta]  # d/d log(parameter)
-        return -value * scale, -grad[keep] * scale
-
-    return objective
-
-
-def _search(expansion, stand_in, mailing_history, plain, reference, rates, customers):
-    from lapsewise.model import optimum
-
-    head = list(np.log([plain.alpha, plain.beta, plain.gamma, plain.delta]))
-    if mailing_history:
-        head.append(float(np.clip(plain.rho if plain.rho is not None else 0.5, *_RHO_BOUNDS)))
-    ratios = np.clip(rates / rates[reference], 0.05, 0.99)
-    starts = [
-        np.array(head + [float(ratios[q]) for q in range(4) if q != reference]),
-        np.array(head + [0.9] * 3),
-    ]
-    objective = _objective(expansion, mailing_history, reference)
-    rough = None if stand_in is None else _objective(stand_in, mailing_history, reference)
-    return optimum.minimize(objective, starts, _bounds(mailing_history), customers, _SCOUT_STEPS, rough)
