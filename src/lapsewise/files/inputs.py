@@ -216,6 +216,7 @@ QUARTER_COLUMN = "quarter"
 PURCHASED_COLUMN = "purchased"
 SPEND_COLUMN = "spend"
 MAILED_COLUMN = "mailed"
+BEFORE_ORDER_COLUMN = "mailed_before_order"
 
 
 def is_quarterly_table(path: str | Path, reading: Reading | None = None) -> bool:
