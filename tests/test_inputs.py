@@ -236,6 +236,57 @@ def test_quarterly_flags_must_be_zero_or_one(tmp_path):
         panel_from_files(write(tmp_path, "quarters.csv", QUARTERS.replace("A,2023-04-01,0,0,1", "A,2023-04-01,maybe,0,1")))
 
 
+# Piece timing in both forms: A's April-June piece (2023-05-20) comes after its order (2023-05-10), B's
+# (2023-04-15) before its order (2023-05-10); B's July-September piece falls in a quarter without a purchase.
+TIMED_ORDERS = orders_text("A,2023-01-15,40", "A,2023-05-10,20", "B,2023-01-20,30", "B,2023-05-10,20")
+TIMED_MAILINGS = mailings_text("A,2023-05-20", "B,2023-04-15", "B,2023-08-05")
+TIMED_QUARTERS = """customer_id,quarter,purchased,spend,mailed,mailed_before_order
+A,2023-01-01,1,40,0,0
+A,2023-04-01,1,20,1,0
+B,2023-01-01,1,30,0,0
+B,2023-04-01,1,20,1,1
+B,2023-07-01,0,0,1,0
+"""
+
+
+def test_mailed_before_order_decides_purchase_quarters_as_the_dates_do(tmp_path):
+    raw = panel_from_files(write(tmp_path, "orders.csv", TIMED_ORDERS), write(tmp_path, "mailings.csv", TIMED_MAILINGS), as_of="2023-09-30")
+    table = panel_from_files(write(tmp_path, "quarters.csv", TIMED_QUARTERS))
+    # By hand: A's purchase quarter 1 had its piece only after the order (not mailed); B's had it before (mailed),
+    # and B's quarter 2, without a purchase, is mailed by its piece.
+    np.testing.assert_array_equal(raw.mailed, [[0, 0, 0], [0, 1, 1]])
+    np.testing.assert_array_equal(table.mailed, raw.mailed)
+    np.testing.assert_array_equal(table.purchased, raw.purchased)
+    assert repair_count(table.counts, "only pieces arrived after the first order") == repair_count(raw.counts, "only pieces arrived after the first order") == 1
+    # Without the column the table means what it meant before: a mailed quarter is mailed, whatever the timing.
+    untimed_text = "".join(line.rsplit(",", 1)[0] + "\n" for line in TIMED_QUARTERS.splitlines())
+    untimed = panel_from_files(write(tmp_path, "untimed.csv", untimed_text))
+    np.testing.assert_array_equal(untimed.mailed, [[0, 1, 0], [0, 1, 1]])
+    assert repair_count(untimed.counts, "only pieces arrived after the first order") == 0
+
+
+@pytest.mark.parametrize(
+    "table, message",
+    [
+        (TIMED_QUARTERS.replace("A,2023-04-01,1,20,1,0", "A,2023-04-01,1,20,1,soon"), "row 3, column mailed_before_order: 'soon' is not 0 or 1"),
+        (TIMED_QUARTERS.replace("A,2023-04-01,1,20,1,0", "A,2023-04-01,1,20,0,1"), "row 3, column mailed_before_order: 1 but mailed is 0"),
+        (TIMED_QUARTERS.replace(",mailed,", ",posted,"), "column 'mailed_before_order' needs the column 'mailed'"),
+    ],
+    ids=["not-a-flag", "before-order-but-not-mailed", "without-mailed-column"],
+)
+def test_mailed_before_order_is_checked_like_the_other_flags(tmp_path, table, message):
+    path = write(tmp_path, "quarters.csv", table)
+    with pytest.raises(InputError, match=message) as refused:
+        panel_from_files(path)
+    assert str(refused.value).startswith(path) and "\n" not in str(refused.value)
+
+
+def test_the_quarterly_table_refuses_in_home_days(tmp_path):
+    # The table's mailed_before_order column already settles the timing; in-home days belong where it is computed.
+    with pytest.raises(InputError, match="--in-home-days: .* is a customer-quarter table"):
+        panel_from_files(write(tmp_path, "quarters.csv", TIMED_QUARTERS), in_home_days=3)
+
+
 def test_every_command_reads_the_quarterly_table(tmp_path):
     path = write(tmp_path, "quarters.csv", QUARTERS)
     result = subprocess.run([sys.executable, "-m", "lapsewise", "summary", path], capture_output=True, text=True)

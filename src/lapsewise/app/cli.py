@@ -98,6 +98,12 @@ column_names = option_group(
             typer.Option(None, "--decimal-comma/--decimal-point", help="Amounts use a decimal comma (1.234,50) or a decimal point (1,234.50); default: found from the amounts."),
         ),
         ("date_format", Optional[str], typer.Option(None, "--date-format", help="Format of the dates in strftime codes, e.g. %m/%d/%Y or %d.%m.%Y; default: ISO dates or one unambiguous format, found.")),
+        # How the mailings are read against the orders (data.panel.attach_mailings).
+        (
+            "in_home_days",
+            int,
+            typer.Option(0, "--in-home-days", min=0, help="Days a piece takes to arrive: a quarter with an order counts as mailed only for a piece dated at least this many days before its first order."),
+        ),
     ],
 )
 

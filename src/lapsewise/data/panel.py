@@ -17,9 +17,9 @@ import numpy as np
 import pandas as pd
 
 from lapsewise.data.codes import integer_codes
-from lapsewise.data.quarters import as_of_quarter, check_latest_date, parse_as_of, quarter_end, quarter_index
+from lapsewise.data.quarters import _day_numbers, as_of_quarter, check_latest_date, parse_as_of, quarter_end, quarter_index
 from lapsewise.errors import InputError
-from lapsewise.files.inputs import AMOUNT_COLUMN, ID_COLUMN, MAIL_DATE_COLUMN, ORDER_DATE_COLUMN, Loaded
+from lapsewise.files.inputs import AMOUNT_COLUMN, BEFORE_ORDER_COLUMN, ID_COLUMN, MAIL_DATE_COLUMN, ORDER_DATE_COLUMN, Loaded
 
 
 @dataclass(frozen=True)
@@ -40,9 +40,10 @@ class Panel:
     spend : numpy.ndarray of float32, shape (customers, width)
         Net spend per quarter (returns netted), 0 where there was no purchase.
     mailed : numpy.ndarray of uint8, shape (customers, width)
-        1 when at least one piece was mailed in that quarter; column 0 and columns
-        after the last observed quarter are 0. Without a mailings file every
-        quarter 1..n is 1.
+        1 when at least one piece was mailed in that quarter; in a quarter with a
+        purchase, only a piece that arrived by the quarter's first order counts
+        (see :func:`attach_mailings`). Column 0 and columns after the last observed
+        quarter are 0. Without a mailings file every quarter 1..n is 1.
     mailing_history : bool
         True when a mailings file was given.
     fiscal_year_start : int
@@ -84,6 +85,7 @@ def build_panel(
     mailings: Loaded | None = None,
     as_of: dt.date | None = None,
     fiscal_year_start: int = 1,
+    in_home_days: int = 0,
 ) -> Panel:
     """Build the quarterly panel from loaded orders and (optionally) mailings.
 
@@ -91,8 +93,10 @@ def build_panel(
     zero is one purchase occasion, however many orders it holds. Orders after the
     as-of quarter, and customers whose first purchase comes after it, are left out
     and counted. Mailings for customers not in the orders are left out and counted.
+    A quarter with a purchase counts as mailed only when a piece arrived by its
+    first order (``in_home_days``: see :func:`attach_mailings`).
     """
-    return attach_mailings(purchase_panel(orders, as_of, fiscal_year_start), mailings)
+    return attach_mailings(purchase_panel(orders, as_of, fiscal_year_start), mailings, in_home_days)
 
 
 @dataclass(frozen=True)
@@ -102,16 +106,37 @@ class PurchasePanel:
     ``fields`` are the :class:`Panel` fields the orders decide (all but ``mailed`` and
     ``mailing_history``); ``order_ids`` are the orders' id categories and
     ``row_of_code`` the panel row of each (-1 when the customer is left out), so that
-    mailing rows map to panel rows through integer codes.
+    mailing rows map to panel rows through integer codes. ``first_order_day``
+    (int32, shaped like ``purchased``) is the day number (days since 1970-01-01) of
+    the earliest order with a positive amount in each purchase quarter; it is 0 in
+    quarters without a purchase.
     """
 
     fields: dict
     order_ids: pd.Index
     row_of_code: np.ndarray
+    first_order_day: np.ndarray
 
 
-def attach_mailings(purchases: PurchasePanel, mailings: Loaded | None) -> Panel:
-    """The panel with its mailed quarters: from the mailings, or every quarter after quarter 0 when there are none."""
+TIMING_COUNT = "purchase quarters whose only pieces arrived after the first order (not counted as mailed)"
+"""The count of purchase quarters that a piece dated in them would mark mailed, were it not for its timing."""
+
+
+def attach_mailings(purchases: PurchasePanel, mailings: Loaded | None, in_home_days: int = 0) -> Panel:
+    """The panel with its mailed quarters: from the mailings, or every quarter after quarter 0 when there are none.
+
+    A quarter without a purchase is mailed when any piece is dated in it. A quarter
+    with a purchase is mailed only when a piece dated in it arrived by the quarter's
+    first order, that is when its mail date is at least ``in_home_days`` days before
+    the first order's date (with 0, a piece dated on the order's day counts): a piece
+    that arrives after the order cannot have caused it, and counting it would credit
+    the piece with a purchase made without it. Purchase quarters that lose their
+    mailed flag this way are counted (:data:`TIMING_COUNT`). A customer-quarter
+    table's mailings carry the answer in a column instead of dates (see
+    :func:`lapsewise.files.inputs.load_quarterly`).
+    """
+    if in_home_days < 0:
+        raise InputError(f"--in-home-days: {in_home_days} is below 0; give the days a piece takes to arrive, 0 or more")
     fields = purchases.fields
     first_quarter, end_quarter = fields["first_quarter"], fields["end_quarter"]
     width = fields["purchased"].shape[1]
@@ -120,7 +145,15 @@ def attach_mailings(purchases: PurchasePanel, mailings: Loaded | None) -> Panel:
         mailed = ((columns >= 1) & (columns <= (end_quarter - first_quarter)[:, None])).astype(np.uint8)
         return Panel(**fields, mailed=mailed, mailing_history=False)
     mailed, mail_counts = _mailed_quarters(
-        mailings, purchases.order_ids, purchases.row_of_code, first_quarter, end_quarter, width, fields["fiscal_year_start"]
+        mailings,
+        purchases.order_ids,
+        purchases.row_of_code,
+        first_quarter,
+        end_quarter,
+        fields["purchased"],
+        purchases.first_order_day,
+        in_home_days,
+        fields["fiscal_year_start"],
     )
     return Panel(**{**fields, "counts": {**fields["counts"], **mail_counts}}, mailed=mailed, mailing_history=True)
 
@@ -152,6 +185,7 @@ def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_sta
 
     keep = ~late
     codes, quarters, amounts = codes[keep], quarters[keep], frame[AMOUNT_COLUMN].to_numpy()[keep]
+    dates = dates[keep]
     # Net spend per customer and quarter.
     base = quarters.min()
     span = end_quarter - base + 1
@@ -160,6 +194,11 @@ def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_sta
     cell_code = cells // span
     cell_quarter = cells % span + base
     bought = net > 0
+    # The first order of each cell: the earliest order with a positive amount (a purchase cell has one, since its net is above 0).
+    positive = amounts > 0
+    first_day = np.full(len(cells), np.iinfo(np.int32).max, dtype=np.int32)
+    np.minimum.at(first_day, inverse[positive], _day_numbers(dates[positive]).astype(np.int32))
+    del dates, positive
     netted_out = int((~bought).sum())
     if netted_out:
         counts["customer-quarters whose returns netted spend to zero or below (not purchases)"] = netted_out
@@ -193,6 +232,8 @@ def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_sta
     flat = row * width + (cell_quarter[bought][live] - first_quarter[row])
     purchased.ravel()[flat] = 1
     spend.ravel()[flat] = net[bought][live]
+    first_order_day = np.zeros((customers, width), dtype=np.int32)
+    first_order_day.ravel()[flat] = first_day[bought][live]
 
     fields = {
         "customer_ids": customer_ids,
@@ -203,7 +244,7 @@ def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_sta
         "fiscal_year_start": fiscal_year_start,
         "counts": counts,
     }
-    return PurchasePanel(fields, ids.categories, new_code)
+    return PurchasePanel(fields, ids.categories, new_code, first_order_day)
 
 
 def _mailed_quarters(
@@ -212,14 +253,20 @@ def _mailed_quarters(
     order_new_code: np.ndarray,
     first_quarter: np.ndarray,
     end_quarter: int,
-    width: int,
+    purchased: np.ndarray,
+    first_order_day: np.ndarray,
+    in_home_days: int,
     fiscal_year_start: int,
 ) -> tuple[np.ndarray, dict[str, int]]:
-    """Mark each customer-quarter in which at least one piece was mailed.
+    """Mark each customer-quarter in which a piece was mailed (in a purchase quarter: in time for the first order).
 
     The mailings' own id categories are looked up once in the orders' categories
     (whose hash table pandas already built), then every mailing row maps to its
-    panel row through integer codes.
+    panel row through integer codes. A piece in a purchase quarter is in time when
+    its day is at most the first order's day less ``in_home_days``; the quarter is
+    mailed when any of its pieces is, which is when the earliest one is. Pieces
+    mark their cells with 2 when late and then 1 when in time, so a cell left at 2
+    had only late pieces: it is counted and cleared.
     """
     counts = {f"mailings file: {k}": v for k, v in mailings.repairs.items()}
     frame = mailings.frame
@@ -230,21 +277,38 @@ def _mailed_quarters(
     unknown = row < 0
     if unknown.any():
         counts["mailing rows for customers not in the orders left out"] = int(unknown.sum())
-    quarters = quarter_index(frame[MAIL_DATE_COLUMN].to_numpy(), fiscal_year_start)
+    dates = frame[MAIL_DATE_COLUMN].to_numpy()
+    quarters = quarter_index(dates, fiscal_year_start)
     after = (quarters > end_quarter) & ~unknown
     if after.any():
         counts["mailing rows after the as-of quarter ignored"] = int(after.sum())
+    # The customer-quarter table says whether each piece came before the order; raw mailings have their dates.
+    in_time = frame[BEFORE_ORDER_COLUMN].to_numpy() if BEFORE_ORDER_COLUMN in frame.columns else None
     if unknown.any() or after.any():
         keep = ~unknown & ~after
-        row, quarters = row[keep], quarters[keep]
+        row, quarters, dates = row[keep], quarters[keep], dates[keep]
+        in_time = None if in_time is None else in_time[keep]
+    width = purchased.shape[1]
     column = quarters - first_quarter.astype(np.int32)[row]
     mailed = np.zeros((len(first_quarter), width), dtype=np.uint8)
     flat = row.astype(np.int32 if mailed.size < 2**31 else np.int64)
     flat *= width
     flat += column
-    mailed.ravel()[flat[column >= 1]] = 1
+    later = column >= 1
+    flat = flat[later]
+    in_purchase = purchased.ravel()[flat] != 0
+    if in_time is None:
+        late = np.zeros_like(in_purchase)
+        late[in_purchase] = _day_numbers(dates[later][in_purchase]) > first_order_day.ravel()[flat[in_purchase]].astype(np.int64) - in_home_days
+    else:
+        late = in_purchase & ~in_time[later]
+    mailed.ravel()[flat[late]] = 2
+    mailed.ravel()[flat[~late]] = 1
+    changed = int(np.count_nonzero(mailed == 2))
+    if changed:
+        counts[TIMING_COUNT] = changed
+    mailed &= 1
     return mailed, counts
-
 
 
 def truncate(panel: Panel, end_quarter: int) -> Panel:
@@ -291,6 +355,7 @@ def panel_from_files(
     id_column: str = ID_COLUMN,
     date_column: str = ORDER_DATE_COLUMN,
     amount_column: str = AMOUNT_COLUMN,
+    in_home_days: int = 0,
     **reading_options,
 ) -> Panel:
     """Load the orders (and mailings) files and build the panel: the first two stages in one call.
@@ -298,9 +363,15 @@ def panel_from_files(
     ``reading_options`` are the fields of :class:`~lapsewise.files.tables.Reading` (``delimiter``,
     ``encoding``, ``sheet``, ``decimal_comma``, ``date_format``), applied to both files.
 
+    ``in_home_days`` is the days a piece takes to arrive: in a quarter with a purchase
+    only a piece dated at least that many days before the first order counts
+    (:func:`attach_mailings`).
+
     ``orders_path`` may instead be a customer-quarter table (customer_id, quarter,
-    purchased, spend[, mailed]), recognised by its columns; it then stands for both
-    orders and mailings, and its last quarter is the default as-of quarter.
+    purchased, spend[, mailed[, mailed_before_order]]), recognised by its columns; it
+    then stands for both orders and mailings, and its last quarter is the default
+    as-of quarter. Its ``mailed_before_order`` column already settles the timing, so
+    it takes no ``in_home_days``.
     """
     from lapsewise.files.inputs import (
         is_quarterly_table,
@@ -315,6 +386,11 @@ def panel_from_files(
     if is_quarterly_table(orders_path, reading):
         if mailings_path:
             raise InputError(f"{orders_path}: is a customer-quarter table, which already says which quarters were mailed; drop --mailings")
+        if in_home_days:
+            raise InputError(
+                f"--in-home-days: {orders_path} is a customer-quarter table, whose mailed_before_order column settles the timing; "
+                "subtract the in-home days where that column is computed and drop --in-home-days"
+            )
         orders, mailings = load_quarterly(orders_path, id_column, reading)
         if as_of_date is None:
             dates = orders.frame[ORDER_DATE_COLUMN].to_numpy()
@@ -331,4 +407,4 @@ def panel_from_files(
         orders_path, mailings_path, id_column, date_column, amount_column, then=lambda orders: purchase_panel(orders, as_of_date, fiscal_year_start),
         reading=reading,
     )
-    return attach_mailings(purchases, mailings)
+    return attach_mailings(purchases, mailings, in_home_days)

@@ -17,7 +17,9 @@ The process (the truth the model should recover):
 - the value of each order is gamma-gamma: a customer's orders are
   ``Gamma(shape=spend_p, rate=nu)`` with ``nu ~ Gamma(shape=spend_q, rate=spend_gamma)``;
 - some purchase quarters are split into two orders, some orders are partly
-  returned in the same quarter, and a few export rows are duplicated.
+  returned in the same quarter, and a few export rows are duplicated;
+- each mailed quarter's piece is dated in the quarter's first 20 days, and the
+  orders of a mailed quarter on or after the piece's day (the piece prompts them).
 """
 
 from __future__ import annotations
@@ -103,9 +105,13 @@ def simulate_base(
     buys = np.concatenate([np.stack([np.arange(customers), first], axis=1), np.stack([repeat_row, repeat_quarter], axis=1)])
     mail_quarter, mail_row = np.nonzero(simulated.mailed.T)
     mails = np.stack([mail_row, mail_quarter], axis=1)
+    # The catalog drops in the first 20 days of its quarter; an order in a mailed quarter comes on or after that day.
+    mail_offset = rng.integers(0, 20, len(mails))
+    offset_of_cell = np.zeros(simulated.mailed.shape, dtype=np.int64)
+    offset_of_cell[mails[:, 0], mails[:, 1]] = mail_offset
     values = rng.gamma(truth.spend_p, 1.0 / nu[buys[:, 0]])
-    orders = _orders_from_purchases(rng, buys, values, start, truth)
-    mail_dates = np.array([_quarter_start(start, q) for q in range(quarters)])[mails[:, 1]] + rng.integers(0, 20, len(mails))
+    orders = _orders_from_purchases(rng, buys, values, start, truth, offset_of_cell[buys[:, 0], buys[:, 1]])
+    mail_dates = np.array([_quarter_start(start, q) for q in range(quarters)])[mails[:, 1]] + mail_offset
     ids = np.char.add("G", np.char.zfill(np.arange(1, customers + 1).astype(str), 6))
     mailings = pd.DataFrame({"customer_id": ids[mails[:, 0]], "mail_date": mail_dates.astype("datetime64[D]"), "version": "full"})
     mailings = mailings.sort_values(["mail_date", "customer_id"], kind="stable").reset_index(drop=True)
@@ -115,25 +121,33 @@ def simulate_base(
     return DemoData(orders=orders, mailings=mailings, as_of=pd.Timestamp(end).date(), truth=truth)
 
 
-def _orders_from_purchases(rng: np.random.Generator, buys: np.ndarray, values: np.ndarray, start: dt.date, truth: Truth) -> pd.DataFrame:
-    """Turn purchase occasions into order rows: split orders, partial returns, a few duplicated rows."""
+def _orders_from_purchases(
+    rng: np.random.Generator, buys: np.ndarray, values: np.ndarray, start: dt.date, truth: Truth, earliest: np.ndarray
+) -> pd.DataFrame:
+    """Turn purchase occasions into order rows: split orders, partial returns, a few duplicated rows.
+
+    ``earliest`` is each occasion's first possible day in its quarter (the day of the quarter's piece when it was mailed, else 0).
+    """
     quarter_starts = np.array([_quarter_start(start, q) for q in range(int(buys[:, 1].max()) + 2)])
     day_span = (quarter_starts[1:] - quarter_starts[:-1]).astype(np.int64)
-    def dates(quarter: np.ndarray) -> np.ndarray:
-        return quarter_starts[quarter] + (rng.random(len(quarter)) * day_span[quarter]).astype(np.int64)
+
+    def dates(chosen: np.ndarray | slice) -> np.ndarray:
+        first_day = earliest[chosen]
+        span = day_span[quarter[chosen]] - first_day
+        return quarter_starts[quarter[chosen]] + first_day + (rng.random(len(first_day)) * span).astype(np.int64)
 
     row, quarter = buys[:, 0], buys[:, 1]
     split = rng.random(len(buys)) < truth.split_share
     share = rng.uniform(0.3, 0.7, size=len(buys))
     main_amount = np.where(split, values * share, values)
     parts = [
-        pd.DataFrame({"row": row, "order_date": dates(quarter), "amount": np.round(main_amount, 2)}),
-        pd.DataFrame({"row": row[split], "order_date": dates(quarter[split]), "amount": np.round(values[split] * (1 - share[split]), 2)}),
+        pd.DataFrame({"row": row, "order_date": dates(slice(None)), "amount": np.round(main_amount, 2)}),
+        pd.DataFrame({"row": row[split], "order_date": dates(split), "amount": np.round(values[split] * (1 - share[split]), 2)}),
     ]
     returned = rng.random(len(buys)) < truth.return_share
     return_share = rng.uniform(0.1, 0.5, size=len(buys))
     parts.append(
-        pd.DataFrame({"row": row[returned], "order_date": dates(quarter[returned]), "amount": -np.round(values[returned] * return_share[returned], 2)})
+        pd.DataFrame({"row": row[returned], "order_date": dates(returned), "amount": -np.round(values[returned] * return_share[returned], 2)})
     )
     orders = pd.concat(parts, ignore_index=True)
     orders = orders.sort_values(["order_date", "row"], kind="stable").reset_index(drop=True)

@@ -216,10 +216,11 @@ QUARTER_COLUMN = "quarter"
 PURCHASED_COLUMN = "purchased"
 SPEND_COLUMN = "spend"
 MAILED_COLUMN = "mailed"
+BEFORE_ORDER_COLUMN = "mailed_before_order"
 
 
 def is_quarterly_table(path: str | Path, reading: Reading | None = None) -> bool:
-    """True for a customer-quarter table (customer_id, quarter, purchased, spend[, mailed]) rather than raw orders."""
+    """True for a customer-quarter table (customer_id, quarter, purchased, spend[, mailed[, mailed_before_order]]) rather than raw orders."""
     columns = set(header_columns(path, reading))
     return {QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN} <= columns
 
@@ -229,16 +230,25 @@ def load_quarterly(path: str | Path, id_column: str = ID_COLUMN, reading: Readin
 
     One row per customer and quarter with a purchase or a mailing: ``customer_id``,
     ``quarter`` (any date in the quarter, e.g. its first day), ``purchased`` (0/1),
-    ``spend`` (net spend of the quarter) and optionally ``mailed`` (0/1). Each
-    purchased quarter becomes one order of its spend; each mailed quarter one piece.
-    Without a ``mailed`` column every quarter counts as mailed.
+    ``spend`` (net spend of the quarter), optionally ``mailed`` (0/1) and, beside it,
+    optionally ``mailed_before_order`` (0/1: a piece arrived by the quarter's first
+    order). Each purchased quarter becomes one order of its spend; each mailed
+    quarter one piece, whose ``mailed_before_order`` column says whether it counts
+    for a purchase in its quarter (without the column, it does). Without a
+    ``mailed`` column every quarter counts as mailed.
     """
     reading = reading or Reading()
     name = str(path)
     frame, is_csv, repairs = read_table(path, reading)
     _require_columns(name, frame, {id_column: "--id-column", QUARTER_COLUMN: "", PURCHASED_COLUMN: "", SPEND_COLUMN: ""})
     has_mailed = MAILED_COLUMN in frame.columns
-    _count_extra_columns(frame, [id_column, QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN] + ([MAILED_COLUMN] if has_mailed else []), repairs)
+    has_before = BEFORE_ORDER_COLUMN in frame.columns
+    if has_before and not has_mailed:
+        raise InputError(
+            f"{name}: column '{BEFORE_ORDER_COLUMN}' needs the column '{MAILED_COLUMN}' (1 when any piece was mailed that quarter); add it or drop '{BEFORE_ORDER_COLUMN}'"
+        )
+    used = [MAILED_COLUMN] * has_mailed + [BEFORE_ORDER_COLUMN] * has_before
+    _count_extra_columns(frame, [id_column, QUARTER_COLUMN, PURCHASED_COLUMN, SPEND_COLUMN] + used, repairs)
     ids = clean_ids(name, frame[id_column], repairs, None, id_column, is_csv)
     keep = drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
     dates = parse_dates(name, QUARTER_COLUMN, frame[QUARTER_COLUMN], is_csv, keep, reading.date_format, repairs)
@@ -255,5 +265,16 @@ def load_quarterly(path: str | Path, id_column: str = ID_COLUMN, reading: Readin
     mailings = None
     if has_mailed:
         mailed = parse_flags(name, MAILED_COLUMN, frame[MAILED_COLUMN], is_csv) & keep
-        mailings = Loaded(name, _frame({ID_COLUMN: ids, MAIL_DATE_COLUMN: dates}, mailed), {}, _kept(mailed), is_csv)
+        before = np.ones(len(frame), dtype=bool)
+        if has_before:
+            before = parse_flags(name, BEFORE_ORDER_COLUMN, frame[BEFORE_ORDER_COLUMN], is_csv)
+            contradiction = before & ~mailed & keep
+            if contradiction.any():
+                first = int(np.flatnonzero(contradiction)[0])
+                raise InputError(
+                    f"{name}, row {row_label(first, is_csv)}, column {BEFORE_ORDER_COLUMN}: 1 but {MAILED_COLUMN} is 0; "
+                    "a piece before the order is a piece mailed, so fix one of the two"
+                )
+        columns = {ID_COLUMN: ids, MAIL_DATE_COLUMN: dates, BEFORE_ORDER_COLUMN: before}
+        mailings = Loaded(name, _frame(columns, mailed), {}, _kept(mailed), is_csv)
     return Loaded(name, orders, repairs, orders_kept, is_csv), mailings
