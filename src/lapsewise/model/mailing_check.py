@@ -40,12 +40,16 @@ Mailing **followed the firm's own rules** when ``explained_share >=``
 mailing both figures are 0 in expectation (by the corrections above), and their
 chance spread is small (the adjusted share's standard deviation is about
 ``sqrt(2 K) / N``, under 0.01 from 2,000 customer-quarters on); a mailing rule
-that looks at recency moves them far past the thresholds (the simulations of the
-tests: a rule "mail while silent for fewer than 3 quarters, 5% of the rest at
-random" explains about half the variance). A tenth of the variance, or five
-points of accuracy, is where the choice of who was held visibly tracks the
-firm's own view of the customer; both are rules of thumb (common practice, no
-source), set well clear of the chance spread on either side. The accuracy gain
+that looks at recency moves them far past the thresholds. In the tests'
+simulations (4,000 customers, 8 to 16 quarters each, about 48,000
+customer-quarters) mailing at random at 70% explains at most 0.0004 of the
+variance and gains no accuracy, while "mail while silent for 3 quarters or
+fewer, 5% of the rest at random" explains 0.92 and gains 38 points; milder rules
+("silent under 4 quarters, half of the rest", "under 6, 70% of the rest") still
+explain 0.37 and 0.23. A tenth of the variance, or five points of accuracy, is
+where the choice of who was held visibly tracks the firm's own view of the
+customer; both are rules of thumb (common practice, no source), set well clear
+of the chance spread on one side and of such rules on the other. The accuracy gain
 catches a rule when one decision is rare (the variance is then small and the
 share moves little); the share catches it when the base rate is high.
 
