@@ -465,6 +465,29 @@ def test_fit_says_rho_cannot_be_estimated_when_every_quarter_was_mailed(every_qu
     assert model["mailing_check"]["unmailed_quarters"] == 0 and model["mailing_check"]["customer_quarters"] > 0
 
 
+@pytest.mark.parametrize("command", ["stop-table", "plan", "simulate", "mail-list"])
+def test_deciding_without_rho_needs_unmailed_response(every_quarter_mailed, tmp_path, command):
+    folder, orders, mailings, _ = every_quarter_mailed
+    model = folder / "model.json"
+    files = {
+        "stop-table": (model,),
+        "simulate": (model, "--customers", 500),
+        "plan": (model, orders, "--mailings", mailings, "--budget", 200),
+        "mail-list": (model, orders, "--mailings", mailings, "--out", tmp_path / "list.csv"),
+    }[command]
+    refused = run(command, *files, "--policy", POLICY, "--horizon-quarters", 4)
+    assert refused.returncode == 2 and "Traceback" not in refused.stderr
+    assert refused.stderr.count("\n") == 1 and refused.stderr.startswith("error:")
+    assert f"{POLICY}: unmailed_response is required" in refused.stderr and "could not be estimated" in refused.stderr
+    assert not (tmp_path / "list.csv").exists()
+    # The policy file's key, or the override, lets it run.
+    policy = tmp_path / "policy.toml"
+    policy.write_text(POLICY.read_text().replace("# unmailed_response = 0.2", "unmailed_response = 0.2"))
+    for runs in (run(command, *files, "--policy", policy, "--horizon-quarters", 4, "--force" if command == "mail-list" else "--json"),
+                 run(command, *files, "--policy", POLICY, "--horizon-quarters", 4, "--unmailed-response", 0.2, *(["--force"] if command == "mail-list" else []))):
+        assert runs.returncode == 0, runs.stderr
+
+
 def test_without_a_mailings_file_deciding_still_takes_rho_zero(demo_dir, tmp_path):
     # Regression: no mailings file means every quarter counts as mailed, and a held customer is taken never to order
     # (rho 0, README); the check is not run and nothing is required of the policy.
