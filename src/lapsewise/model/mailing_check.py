@@ -177,29 +177,47 @@ def mailing_cells(purchased: np.ndarray, mailed: np.ndarray, n: np.ndarray, firs
     ``purchased`` and ``mailed`` are the panel's dense customer x quarter arrays aligned on
     quarter 0 (a purchase in quarter 0 for everyone), ``n`` the quarters observed after it and
     ``first_quarter`` the absolute quarter of quarter 0. The loop runs over quarters; within a
-    quarter every customer is one numpy operation.
+    quarter every customer is one numpy operation. Each customer's cell is a small state
+    (:func:`_next_cell`, one byte) that a table moves on after each quarter: recency back to 1
+    and frequency up by one after a purchase, recency up by one after silence, the season on by
+    one; after the customer's last observed quarter the state is :data:`_UNOBSERVED`, never counted.
     """
-    customers = len(n)
     n = np.asarray(n, dtype=np.int64)
-    width = purchased.shape[1] if purchased.ndim == 2 else 0
-    last_quarter = min(width - 1, int(n.max())) if customers else 0
-    cells = RECENCY_CAP * (FREQUENCY_CAP + 1) * SEASONS
-    counts = np.zeros(2 * cells, dtype=np.int64)  # cell * 2 + mailed
-    last_purchase = np.zeros(customers, dtype=np.int64)
-    frequency = np.zeros(customers, dtype=np.int64)
-    season_of_start = np.asarray(first_quarter, dtype=np.int64) % SEASONS
-    for quarter in range(1, last_quarter + 1):
-        observed = n >= quarter
-        recency = np.minimum(quarter - last_purchase, RECENCY_CAP)
-        cell = ((recency - 1) * (FREQUENCY_CAP + 1) + np.minimum(frequency, FREQUENCY_CAP)) * SEASONS + (season_of_start + quarter) % SEASONS
-        flag = mailed[:, quarter] > 0
-        counts += np.bincount((2 * cell + flag)[observed], minlength=2 * cells)
-        bought = purchased[:, quarter] > 0
-        last_purchase[bought] = quarter
-        frequency += bought
+    last_quarter = min(purchased.shape[1] - 1, int(n.max())) if len(n) and purchased.ndim == 2 else 0
+    counts = np.zeros(2 * (_UNOBSERVED + 1), dtype=np.int64)  # cell * 2 + mailed
+    if last_quarter >= 1:
+        seasons = ((np.asarray(first_quarter, dtype=np.int64) + 1) % SEASONS).astype(np.uint8)
+        cell = np.where(n >= 1, seasons, _UNOBSERVED).astype(np.uint8)  # recency 1, frequency 0 in quarter 1
+        by_n = np.argsort(n, kind="stable")
+        ends = np.searchsorted(n[by_n], np.arange(last_quarter + 2))  # customers observed through exactly quarter j: by_n[ends[j]:ends[j + 1]]
+        for quarter in range(1, last_quarter + 1):
+            twice = 2 * cell.astype(np.uint16)
+            counts += np.bincount(twice + (mailed[:, quarter] != 0), minlength=len(counts))
+            cell = _NEXT_CELL[twice + (purchased[:, quarter] != 0)]
+            cell[by_n[ends[quarter] : ends[quarter + 1]]] = _UNOBSERVED
+    by_flag = counts[: 2 * _UNOBSERVED].reshape(_UNOBSERVED, 2)
     shape = (RECENCY_CAP, FREQUENCY_CAP + 1, SEASONS)
-    by_flag = counts.reshape(cells, 2)
     return MailingCells(total=by_flag.sum(axis=1).reshape(shape), mailed=by_flag[:, 1].reshape(shape))
+
+
+_UNOBSERVED = RECENCY_CAP * (FREQUENCY_CAP + 1) * SEASONS
+"""The state after a customer's last observed quarter (cells are 0 .. 159: ((recency - 1) * 5 + frequency) * 4 + season)."""
+
+
+def _next_cell() -> np.ndarray:
+    """``table[2 * cell + bought]``: the cell of the next quarter, from this quarter's cell and whether the customer bought."""
+    recency, frequency, season = np.unravel_index(np.arange(_UNOBSERVED), (RECENCY_CAP, FREQUENCY_CAP + 1, SEASONS))
+    recency = recency + 1
+    shape = (RECENCY_CAP, FREQUENCY_CAP + 1, SEASONS)
+    silent = np.ravel_multi_index((np.minimum(recency + 1, RECENCY_CAP) - 1, frequency, (season + 1) % SEASONS), shape)
+    bought = np.ravel_multi_index((np.zeros_like(recency), np.minimum(frequency + 1, FREQUENCY_CAP), (season + 1) % SEASONS), shape)
+    table = np.full(2 * (_UNOBSERVED + 1), _UNOBSERVED, dtype=np.uint8)
+    table[0 : 2 * _UNOBSERVED : 2] = silent
+    table[1 : 2 * _UNOBSERVED : 2] = bought
+    return table
+
+
+_NEXT_CELL = _next_cell()
 
 
 def check_mailing(purchased: np.ndarray, mailed: np.ndarray, n: np.ndarray, first_quarter: np.ndarray) -> MailingCheck:
