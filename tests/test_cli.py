@@ -455,3 +455,104 @@ def test_ambiguous_files_are_refused_and_nothing_is_written(tmp_path, text, frag
     assert_one_error_line(run_cli("fit", orders, "--out", out, "--as-of", "2023-06-30"), str(orders), *fragments)
     assert not out.exists()
     assert list(tmp_path.iterdir()) == [orders]  # no partial or temporary file either
+
+
+# ---------------------------------------------------------------- how mailing was decided (issue 13, item 3)
+
+
+def scenario_files(folder, lapse_after, winback_share, seed=5, customers=3_000):
+    """Orders and mailings of the demo scenario drawn with the given mailing rule: mailed while silent for fewer
+    than ``lapse_after`` quarters, and a random ``winback_share`` of the rest (lapse_after 0: everyone at random)."""
+    from lapsewise.evaluate.scenario import Truth, simulate_base
+
+    data = simulate_base(customers, 16, seed, Truth(lapse_after=lapse_after, winback_share=winback_share))
+    folder.mkdir(exist_ok=True)
+    data.orders.to_csv(folder / "orders.csv", index=False)
+    data.mailings.to_csv(folder / "mailings.csv", index=False)
+    return folder / "orders.csv", folder / "mailings.csv"
+
+
+@pytest.fixture(scope="module")
+def every_quarter_mailed(tmp_path_factory):
+    """A model fitted on a mailings file that mails every customer in every quarter (the rule never lapses anyone)."""
+    folder = tmp_path_factory.mktemp("all-mailed")
+    orders, mailings = scenario_files(folder, lapse_after=100, winback_share=0.0)
+    result = run("fit", orders, "--mailings", mailings, "--out", folder / "model.json")
+    return folder, orders, mailings, result
+
+
+def test_fit_json_reports_mailing_at_random_as_not_following_rules(tmp_path):
+    # Every customer mailed at random at 70%, whatever their history: the check finds no rule and adds no warning.
+    orders, mailings = scenario_files(tmp_path / "random", lapse_after=0, winback_share=0.7)
+    result = run("fit", orders, "--mailings", mailings, "--out", tmp_path / "model.json", "--json")
+    assert result.returncode == 0, result.stderr
+    data = json.loads(result.stdout)
+    check = data["mailing_check"]
+    assert list(check) == sorted(check)  # stable: sorted keys
+    assert check["followed_rules"] is False
+    assert abs(check["unmailed_share"] - 0.30) < 0.02
+    assert check["explained_share"] < 0.02
+    assert not any("control cell" in warning for warning in data["warnings"])
+    assert json.loads((tmp_path / "model.json").read_text())["mailing_check"] == check
+
+
+def test_fit_warns_when_mailing_followed_recency(tmp_path):
+    # Mailed while silent for 3 quarters or fewer, 5% of the rest at random: the check names recency, and fit warns.
+    orders, mailings = scenario_files(tmp_path / "targeted", lapse_after=4, winback_share=0.05)
+    result = run("fit", orders, "--mailings", mailings, "--out", tmp_path / "model.json", "--json")
+    assert result.returncode == 0, result.stderr
+    data = json.loads(result.stdout)
+    assert data["mailing_check"]["followed_rules"] is True
+    assert data["mailing_check"]["strongest_predictor"] == "recency"
+    warning = [w for w in data["warnings"] if "control cell" in w]
+    assert len(warning) == 1 and "rather than chance" in warning[0] and "lapsewise control-cell" in warning[0]
+    shown = run("fit", orders, "--mailings", mailings, "--out", tmp_path / "model.json", "--force")
+    text = " ".join(shown.stdout.split())  # rich wraps lines at 80 columns
+    assert "How was mailing decided?" in text and "Mailing followed the firm's own rules" in text and "recency explains most" in text
+
+
+def test_fit_says_rho_cannot_be_estimated_when_every_quarter_was_mailed(every_quarter_mailed):
+    folder, _, _, result = every_quarter_mailed
+    assert result.returncode == 0, result.stderr
+    text = " ".join(result.stdout.split())
+    assert "rho cannot be estimated" in text and "not identified" not in text
+    model = json.loads((folder / "model.json").read_text())
+    assert model["churn"]["rho"] is None and model["rho_estimable"] is False and model["mailing_history"] is True
+    assert model["mailing_check"]["unmailed_quarters"] == 0 and model["mailing_check"]["customer_quarters"] > 0
+
+
+@pytest.mark.parametrize("command", ["stop-table", "plan", "simulate", "mail-list"])
+def test_deciding_without_rho_needs_unmailed_response(every_quarter_mailed, tmp_path, command):
+    folder, orders, mailings, _ = every_quarter_mailed
+    model = folder / "model.json"
+    files = {
+        "stop-table": (model,),
+        "simulate": (model, "--customers", 500),
+        "plan": (model, orders, "--mailings", mailings, "--budget", 200),
+        "mail-list": (model, orders, "--mailings", mailings, "--out", tmp_path / "list.csv"),
+    }[command]
+    refused = run(command, *files, "--policy", POLICY, "--horizon-quarters", 4)
+    assert refused.returncode == 2 and "Traceback" not in refused.stderr
+    assert refused.stderr.count("\n") == 1 and refused.stderr.startswith("error:")
+    assert f"{POLICY}: unmailed_response is required" in refused.stderr and "could not be estimated" in refused.stderr
+    assert not (tmp_path / "list.csv").exists()
+    # The policy file's key, or the override, lets it run.
+    policy = tmp_path / "policy.toml"
+    policy.write_text(POLICY.read_text().replace("# unmailed_response = 0.2", "unmailed_response = 0.2"))
+    for runs in (run(command, *files, "--policy", policy, "--horizon-quarters", 4, "--force" if command == "mail-list" else "--json"),
+                 run(command, *files, "--policy", POLICY, "--horizon-quarters", 4, "--unmailed-response", 0.2, *(["--force"] if command == "mail-list" else []))):
+        assert runs.returncode == 0, runs.stderr
+
+
+def test_without_a_mailings_file_deciding_still_takes_rho_zero(demo_dir, tmp_path):
+    # Regression: no mailings file means every quarter counts as mailed, and a held customer is taken never to order
+    # (rho 0, README); the check is not run and nothing is required of the policy.
+    model = tmp_path / "model.json"
+    fitted = run("fit", demo_dir / "orders.csv", "--out", model, "--json")
+    assert fitted.returncode == 0, fitted.stderr
+    data = json.loads(fitted.stdout)
+    assert data["churn"]["rho"] is None and data["mailing_check"] is None and data["rho_estimable"] is True
+    assert data["mailing_history"] is False
+    table = run("stop-table", model, "--policy", POLICY, "--horizon-quarters", 4, "--json")
+    assert table.returncode == 0, table.stderr
+    assert json.loads(table.stdout)["unmailed_response_used"] == 0.0

@@ -7,7 +7,9 @@ from numpy.testing import assert_allclose
 
 from lapsewise.data.histories import mailed_silent_histories
 from lapsewise.decide.decisions import decide
-from lapsewise.decide.program import solve
+from lapsewise.decide.program import decision_process, solve
+from lapsewise.errors import InputError
+from lapsewise.model.churn import ChurnFit
 from lapsewise.model.posterior import posterior
 from lapsewise.model.process import Process
 
@@ -169,3 +171,15 @@ def test_the_memory_estimate_is_what_the_program_takes():
     tracemalloc.stop()
     estimate = program_bytes(20, 40, 0, 0, 20, rho=0.3)
     assert 0.8 * peak <= estimate <= 1.5 * peak
+
+
+def test_decision_process_without_rho():
+    fit = ChurnFit(alpha=1.1, beta=2.4, gamma=0.7, delta=4.5, rho=None)
+    # No mailings file: a held customer is taken never to order (rho 0), as the README says.
+    assert decision_process(fit).rho == 0.0
+    # Fitted on a mailings file that mailed every quarter: rho was not estimable, so the policy must give it.
+    with pytest.raises(InputError, match=r"^season.toml: unmailed_response is required: .*could not be estimated"):
+        decision_process(fit, None, rho_estimable=False, policy_source="season.toml")
+    assert decision_process(fit, 0.25, rho_estimable=False, policy_source="season.toml").rho == 0.25
+    # A model whose rho was estimated is never refused.
+    assert decision_process(ChurnFit(1.1, 2.4, 0.7, 4.5, rho=0.4), None, rho_estimable=False).rho == 0.4

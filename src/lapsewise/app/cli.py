@@ -159,17 +159,21 @@ def fit(
     no_seasons: bool = NoSeasonsOption,
     columns: dict | None = None,
     force: bool = ForceOption,
+    json_output: bool = JsonOption,
 ) -> None:
     """Fit the hidden-churn and order-value models and write the model file."""
     check_writable(out, force)
-    console = _console()
-    with render.progress(console, 2) as step:
+    console = _console(json_output)
+    with render.progress(console, 2, not json_output) as step:
         with step("Reading the files and building the quarterly panel"):
             panel = pipeline.read_panel(orders, mailings, as_of, fiscal_year_start, columns)
         with step(f"Fitting the models on {panel.customers:,} customers"):
             fitted = pipeline.fit(panel, seasons=not no_seasons)
     model = fitted.model
     write_text_atomic(out, dumps_stable(model.to_dict()), force)
+    if json_output:  # the model file's contents: parameters, mailing_check, rho_estimable, warnings
+        typer.echo(dumps_stable(model.to_dict()), nl=False)
+        return
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_model(console, model, fitted.curves)

@@ -84,7 +84,11 @@ def run_demo(console: Console, folder: Path, customers: int, quarters: int, seed
     backtest = run_backtest(panel, holdout)
     render.print_backtest(console, backtest)
 
-    policy = pipeline.read_policy(paths["policy"])
+    # A history so short that the lapse rule mailed everyone every quarter leaves rho unestimated; the demo knows the truth.
+    unmailed = None if model.rho_estimable else {"unmailed_response": data.truth.rho}
+    policy = pipeline.read_policy(paths["policy"], unmailed)
+    if unmailed:
+        console.print(f"Every quarter was mailed, so the demo plans with the scenario's true rho, unmailed_response = {data.truth.rho:g}.")
     console.rule(f"When to stop mailing: the stop table (policy: {paths['policy']})")
     stop_table = pipeline.stop_table(model, policy)
     render.print_stop_table(console, stop_table, model)

@@ -113,13 +113,15 @@ def stop_table(model: Model, policy: Policy) -> StopTable:
     """The stop table, the spend bands' programs two at a time when memory allows."""
     economics = policy.economics
     size = program_bytes(economics.horizon_quarters, 2 * economics.horizon_quarters, 0, 0, economics.horizon_quarters)
-    return build_stop_table(model.churn, model.spend, economics, policy.segments.spend_bands, each=side_by_side_if_they_fit([size]))
+    return build_stop_table(
+        model.churn, model.spend, economics, policy.segments.spend_bands, each=side_by_side_if_they_fit([size]), rho_estimable=model.rho_estimable, policy_source=policy.source
+    )
 
 
 def simulation(model: Model, policy: Policy, customers: int, quarters: int | None, seed: int) -> Simulation:
     """The optimal policy against the rules of thumb on new customers drawn from the model."""
     economics = policy.economics
-    process = decision_process(model.churn, economics.unmailed_response)
+    process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
     order_value = typical_order_value(model.spend, economics)
     return simulate_policies(process, economics, order_value, customers, quarters or economics.horizon_quarters, seed)
 
@@ -138,7 +140,7 @@ def value_customers(
     ``budget_price`` is added to the cost of every later quarter's piece (a recurring budget's shadow price).
     """
     economics = policy.economics
-    process = decision_process(model.churn, economics.unmailed_response)
+    process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
     with workers() as pool:
         summary_job = pool.submit(summarize, panel)
         histories = compress(panel)

@@ -18,6 +18,7 @@ from rich.table import Table
 from lapsewise.data.panel import Panel
 from lapsewise.data.quarters import quarter_label, quarter_start
 from lapsewise.data.summary import BaseDescription
+from lapsewise.model.mailing_check import ACCURACY_GAIN_THRESHOLD, EXPLAINED_SHARE_THRESHOLD
 
 CAUTION = (
     "Customer files are personal data: keep them on this machine, honour opt-outs and suppression lists, "
@@ -109,7 +110,7 @@ def print_model(console: Console, model, curves) -> None:
     for name, meaning in meanings.items():
         value = getattr(churn, name)
         estimate, error = _estimate(value, churn.std_errors.get(name))
-        table.add_row(name, estimate, error, meaning if name != "rho" or value is not None else "no mailings file: every quarter counted as mailed")
+        table.add_row(name, estimate, error, meaning if name != "rho" or value is not None else _rho_missing(model))
     if churn.seasons is not None:
         for q, multiplier in enumerate(churn.seasons):
             error = churn.std_errors.get(f"season_{q + 1}")
@@ -134,6 +135,7 @@ def print_model(console: Console, model, curves) -> None:
             f"Population mean order value {money(spend.population_mean)} (currency units) from {spend.customers:,} repeat customers; "
             f"correlation between repeat purchases and mean order value {spend.frequency_value_correlation:+.2f} (the model assumes none)."
         )
+    print_mailing_check(console, model.mailing_check)
     for warning in model.warnings:
         console.print(f"[yellow]warning:[/yellow] {warning}")
     print_lapse_curves(console, curves)
@@ -148,6 +150,45 @@ def print_season_test(console: Console, test: dict | None) -> None:
         f"Seasons against none: likelihood-ratio statistic {test['statistic']:,.1f} on {test['degrees_of_freedom']} degrees of freedom, "
         f"p-value {test['p_value']:.3g}: {verdict} (5% level)."
     )
+
+
+def _rho_missing(model) -> str:
+    if model.rho_estimable:
+        return "no mailings file: every quarter counted as mailed"
+    return "cannot be estimated: every customer was mailed in every quarter"
+
+
+def print_mailing_check(console: Console, check) -> None:
+    """How far the mailing followed recency, frequency and season (:mod:`lapsewise.model.mailing_check`), and what it means."""
+    if check is None:
+        return
+    def share(value) -> str:
+        return "-" if value is None else f"{100 * value:.1f}"
+
+    table = Table(title="How was mailing decided? Customer-quarters after the first purchase", title_justify="left")
+    table.add_column("Figure")
+    table.add_column("Value", justify="right")
+    table.add_row("Customer-quarters (count)", f"{check.customer_quarters:,}")
+    table.add_row("Unmailed (count)", f"{check.unmailed_quarters:,}")
+    table.add_row("Unmailed (%)", share(check.unmailed_share))
+    table.add_row("Accuracy of always the more common decision (%)", share(check.base_rate_accuracy))
+    table.add_row("Accuracy of the majority of recency x frequency x season cells (%)", share(check.rule_accuracy))
+    table.add_row("Mail/hold variance explained by the cells (%)", share(check.explained_share))
+    for name, value in check.explained_share_by_predictor.items():
+        table.add_row(f"  by {name.replace('_', ' ')} alone (%)", share(value))
+    console.print(table)
+    if not check.rho_estimable:
+        console.print("No customer-quarter was left unmailed: rho, the response without a piece, cannot be estimated.")
+    elif check.followed_rules:
+        console.print(
+            f"Mailing followed the firm's own rules (thresholds: {EXPLAINED_SHARE_THRESHOLD:.0%} of the variance explained or "
+            f"{100 * ACCURACY_GAIN_THRESHOLD:.0f} points of accuracy gained); {str(check.strongest_predictor).replace('_', ' ')} explains most."
+        )
+    else:
+        console.print(
+            f"Mailing looks like chance: the cells explain {share(check.explained_share)}% of who was mailed "
+            f"(rules from {EXPLAINED_SHARE_THRESHOLD:.0%}) and gain {100 * check.accuracy_gain:+.1f} points of accuracy (rules from +{100 * ACCURACY_GAIN_THRESHOLD:.0f})."
+        )
 
 
 def print_lapse_curves(console: Console, curves) -> None:

@@ -80,11 +80,14 @@ from lapsewise.model.moments import log_alive_ahead, log_moment_grid
 from lapsewise.model.process import Process
 
 
-def decision_process(fit: ChurnFit, unmailed_response: float | None = None) -> Process:
+def decision_process(fit: ChurnFit, unmailed_response: float | None = None, *, rho_estimable: bool = True, policy_source: str = "the policy") -> Process:
     """The fitted process as the program plans against it: rho is a number, and every quarter is alike.
 
     ``unmailed_response`` (the policy's) overrides rho; without it and without a
-    mailing history a held customer is assumed not to buy (rho 0).
+    mailing history a held customer is assumed not to buy (rho 0). A model fitted on
+    a mailings file that mailed every customer every quarter has no rho
+    (``rho_estimable`` False): nothing showed how a held customer orders, so the
+    policy must say (``policy_source`` names it in the refusal).
 
     The program does not yet follow the calendar. With seasons it plans with the
     purchase probability of an average quarter: ``s_bar p`` with ``s_bar`` the mean
@@ -93,6 +96,11 @@ def decision_process(fit: ChurnFit, unmailed_response: float | None = None) -> P
     customers, shifted to the average quarter). An approximation: a quarter of
     the year's own multiplier is not used.
     """
+    if not rho_estimable and fit.rho is None and unmailed_response is None:
+        raise InputError(
+            f"{policy_source or 'the policy'}: unmailed_response is required: the model's mailings file mailed every customer every quarter, "
+            "so rho (the response without a piece) could not be estimated; set it (0 to 1) under [economics] or pass --unmailed-response"
+        )
     rho = unmailed_response if unmailed_response is not None else (fit.rho if fit.rho is not None else 0.0)
     beta = fit.beta
     if fit.process.seasonal:

@@ -53,12 +53,15 @@ def all_states(horizon: int) -> tuple[np.ndarray, np.ndarray]:
     return x, t
 
 
-def build_stop_table(churn: ChurnFit, spend: SpendFit | None, economics: Economics, band_count: int = 3, each: Callable = map) -> StopTable:
+def build_stop_table(
+    churn: ChurnFit, spend: SpendFit | None, economics: Economics, band_count: int = 3, each: Callable = map, rho_estimable: bool = True, policy_source: str = "the policy"
+) -> StopTable:
     """Solve the program for each spend band and read off the stop point of every (x, t_x).
 
-    ``each`` maps a function over the bands (the pipeline passes one that runs two at a time).
+    ``each`` maps a function over the bands (the pipeline passes one that runs two at a time);
+    ``rho_estimable`` and ``policy_source`` are :func:`~lapsewise.decide.program.decision_process`'s.
     """
-    process = decision_process(churn, economics.unmailed_response)
+    process = decision_process(churn, economics.unmailed_response, rho_estimable=rho_estimable, policy_source=policy_source)
     horizon = economics.horizon_quarters
     bands = spend_bands(spend, economics, band_count)
     x_rows, t_rows = all_states(horizon)

@@ -78,6 +78,27 @@ class _Check:
             self.fail("churn.seasons", f"= {_shown(seasons)} has no multiplier equal to 1 (the largest is 1)")
 
 
+MAILING_CHECK_SHARES = ("base_rate_accuracy", "rule_accuracy", "explained_share")
+MAILING_CHECK_PREDICTORS = ("recency", "frequency", "quarter_of_year")
+
+
+def _check_mailing_check(check: _Check, figures: dict) -> None:
+    """The optional ``mailing_check`` table (model files before it have none): counts, and shares from 0 to 1."""
+    for name in ("customer_quarters", "unmailed_quarters"):
+        value = figures.get(name)
+        if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value <= 10**15:
+            check.fail(f"mailing_check.{name}", f"= {_shown(value)} is not a whole number from 0 to 1e15")
+    if figures["unmailed_quarters"] > figures["customer_quarters"]:
+        check.fail("mailing_check.unmailed_quarters", "is more than mailing_check.customer_quarters")
+    for name in MAILING_CHECK_SHARES:
+        check.number(figures, name, 0.0, 1.0, "mailing_check.", optional=name == "explained_share")
+    shares = figures.get("explained_share_by_predictor", {})
+    if not isinstance(shares, dict):
+        check.fail("mailing_check.explained_share_by_predictor", "is not a table of shares")
+    for name in MAILING_CHECK_PREDICTORS:
+        check.number(shares, name, 0.0, 1.0, "mailing_check.explained_share_by_predictor.", optional=True)
+
+
 def _shown(value) -> str:
     text = json.dumps(value) if not isinstance(value, float) or math.isfinite(value) else str(value)
     return text if len(text) <= 40 else text[:37] + "..."
@@ -126,6 +147,10 @@ def read_model_file(path: str | Path) -> tuple[dict, str]:
         dt.date.fromisoformat(str(data.get("as_of")))
     except ValueError:
         check.fail("as_of", f"= {_shown(data.get('as_of'))} is not a date (YYYY-MM-DD)")
+    if not isinstance(data.get("rho_estimable", True), bool):
+        check.fail("rho_estimable", f"= {_shown(data.get('rho_estimable'))} is not true or false")
+    if data.get("mailing_check") is not None:
+        _check_mailing_check(check, check.table(data, "mailing_check"))
     if not isinstance(data.get("warnings", []), list) or not all(isinstance(w, str) for w in data.get("warnings", [])):
         check.fail("warnings", "is not a list of texts")
     return data, source

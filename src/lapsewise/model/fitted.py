@@ -6,7 +6,7 @@ file (JSON with the published parameter names, see :mod:`lapsewise.files.model_f
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from lapsewise.data.histories import compress
@@ -15,6 +15,7 @@ from lapsewise.data.summary import CustomerSummary, summarize
 from lapsewise.errors import InputError
 from lapsewise.files.model_file import MODEL_FORMAT, MODEL_VERSION, read_model_file
 from lapsewise.model.churn import ChurnFit, fit_churn
+from lapsewise.model.mailing_check import MailingCheck, check_mailing
 from lapsewise.model.seasons import fit_seasons
 from lapsewise.model.spend import SpendFit, fit_spend
 
@@ -34,7 +35,13 @@ class Model:
         The as-of quarter on lapsewise's absolute scale, and the fiscal year's first month.
     customers : int
     warnings : tuple of str
-        Warnings of both fits.
+        Warnings of both fits and of the mailing check.
+    mailing_check : MailingCheck or None
+        How far the mailing followed recency, frequency and season (:mod:`lapsewise.model.mailing_check`);
+        None without a mailings file (and in model files written before the check).
+    rho_estimable : bool
+        False when the mailings file shows every customer mailed in every quarter: rho is then
+        None although there was a mailing history, and deciding needs the policy's unmailed_response.
     """
 
     churn: ChurnFit
@@ -44,10 +51,13 @@ class Model:
     fiscal_year_start: int
     customers: int
     warnings: tuple[str, ...] = field(default_factory=tuple)
+    mailing_check: MailingCheck | None = None
+    rho_estimable: bool = True
 
     @property
     def mailing_history(self) -> bool:
-        return self.churn.mailing_history
+        """True when fitted with a mailings file (rho None then means it could not be estimated)."""
+        return self.churn.mailing_history or not self.rho_estimable
 
     def to_dict(self) -> dict:
         churn = self.churn.to_dict()
@@ -66,6 +76,8 @@ class Model:
             "fiscal_year_start": self.fiscal_year_start,
             "mailing_history": self.mailing_history,
             "warnings": list(self.warnings),
+            "mailing_check": None if self.mailing_check is None else self.mailing_check.to_dict(),
+            "rho_estimable": self.rho_estimable,
         }
 
     @classmethod
@@ -86,7 +98,25 @@ class Model:
             fiscal_year_start=int(data.get("fiscal_year_start", 1)),
             customers=int(data.get("customers", 0)),
             warnings=tuple(data.get("warnings", ())),
+            mailing_check=None if data.get("mailing_check") is None else MailingCheck.from_dict(data["mailing_check"]),
+            rho_estimable=bool(data.get("rho_estimable", True)),
         )
+
+
+RHO_NOT_ESTIMABLE = (
+    "rho cannot be estimated: the mailings file shows every customer mailed in every quarter, so nothing shows how a customer "
+    "who is not mailed orders; rho is left out of the model, and stop-table, simulate, plan, mail-list and report need "
+    "unmailed_response in the policy (or --unmailed-response); a randomised no-mail control cell (lapsewise control-cell) measures it"
+)
+
+
+def mailing_rules_warning(check: MailingCheck) -> str:
+    """The warning when the mailing followed the firm's own rules: rho rests on it and may be biased."""
+    return (
+        "rho rests on mailing that followed the firm's own rules rather than chance (recency, frequency and season explain "
+        f"{check.explained_share:.0%} of who was mailed, most of it {check.strongest_predictor}), so it may be biased; "
+        "run a randomised no-mail control cell (lapsewise control-cell) to measure it"
+    )
 
 
 def fit_model(panel: Panel, summary: CustomerSummary | None = None, seasons: bool = True) -> Model:
@@ -96,12 +126,20 @@ def fit_model(panel: Panel, summary: CustomerSummary | None = None, seasons: boo
     (:func:`lapsewise.model.seasons.fit_seasons`), tested against the plain fit.
     ``summary`` is the panel's :func:`~lapsewise.data.summary.summarize`, when the caller has it already.
     """
+    check = check_mailing(panel.purchased, panel.mailed, panel.n, panel.first_quarter) if panel.mailing_history else None
     # One after the other: both searches set the process's BLAS threads to one while they run (optimum.maximize).
     churn = fit_churn(compress(panel), panel.mailing_history)
-    if seasons:
-        churn = fit_seasons(compress(panel, seasons=True), panel.mailing_history, churn)
+    rho_estimable = check is None or check.rho_estimable
+    if not rho_estimable:
+        churn = _without_rho(churn)
+    if seasons:  # with every quarter mailed, rho stays out of the seasonal fit too
+        churn = fit_seasons(compress(panel, seasons=True), panel.mailing_history and rho_estimable, churn)
     spend, spend_warnings = _fit_spend_or_warn(panel, summary)
     warnings = list(churn.warnings) + spend_warnings
+    if not rho_estimable:
+        warnings.append(RHO_NOT_ESTIMABLE)
+    elif check is not None and check.followed_rules:
+        warnings.append(mailing_rules_warning(check))
     return Model(
         churn=churn,
         spend=spend,
@@ -110,6 +148,22 @@ def fit_model(panel: Panel, summary: CustomerSummary | None = None, seasons: boo
         fiscal_year_start=panel.fiscal_year_start,
         customers=panel.customers,
         warnings=tuple(warnings),
+        mailing_check=check,
+        rho_estimable=rho_estimable,
+    )
+
+
+def _without_rho(churn: ChurnFit) -> ChurnFit:
+    """The churn fit with rho left out: every quarter was mailed, so the likelihood is flat in rho and its value means nothing.
+
+    alpha to delta are unchanged (with no unmailed quarter rho does not enter the likelihood); rho's standard
+    error and warnings go with it.
+    """
+    return replace(
+        churn,
+        rho=None,
+        std_errors={name: error for name, error in churn.std_errors.items() if name != "rho"},
+        warnings=tuple(w for w in churn.warnings if not (w.startswith("rho ") or "rho is not identified" in w)),
     )
 
 
