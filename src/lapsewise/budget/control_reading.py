@@ -46,6 +46,7 @@ import pandas as pd
 from lapsewise.budget.control_cell import Z_95
 from lapsewise.data.panel import Panel, truncate
 from lapsewise.data.summary import summarize
+from lapsewise.data.suppression import refuse_if_none_match
 from lapsewise.errors import InputError
 from lapsewise.files.inputs import CELL_SEGMENT_COLUMN, ID_COLUMN, Loaded
 
@@ -101,13 +102,7 @@ def cell_counts(panel: Panel, cell: Loaded, orders_name: str = "the orders") -> 
     position = pd.Index(ids).get_indexer(panel.customer_ids)
     in_cell = position >= 0
     matched = int(in_cell.sum())
-    if len(ids) and matched == 0:
-        example = str(ids[0])[:20]
-        base = str(panel.customer_ids[0])[:20] if panel.customers else "-"
-        raise InputError(
-            f"{cell.name}: none of its {len(ids):,} ids is a customer in {orders_name} (its ids look like '{example}', "
-            f"the customers' like '{base}'); give the cell file that 'lapsewise control-cell' wrote for this base"
-        )
+    refuse_if_none_match(cell.name, ids, matched, panel, orders_name, "give the cell file that 'lapsewise control-cell' wrote for this base")
     if not len(ids):
         raise InputError(f"{cell.name}: the cell file lists no customer; give the file that 'lapsewise control-cell' wrote")
     rows = np.arange(panel.customers)
