@@ -193,4 +193,9 @@ def read_control_cell(counts: CellCounts, rho_model: float | None, rho_model_se:
             "fit with --as-of at the end of the quarter the cell was held in"
         )
     rho, se = ratio_estimate(counts.cell_size, counts.cell_orders, counts.mailed_count, counts.mailed_orders)
+    if not np.isfinite(rho):
+        raise InputError(
+            "the control cell cannot be read: the mailed customers of the cell's states placed no order in the as-of quarter, "
+            "so there is no rate to compare the held customers with; check that the fit's as-of quarter is the one the cell was held in"
+        )
     return ControlReading(float(rho), float(se), rho_model, rho_model_se, counts)
