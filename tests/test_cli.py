@@ -556,3 +556,81 @@ def test_without_a_mailings_file_deciding_still_takes_rho_zero(demo_dir, tmp_pat
     table = run("stop-table", model, "--policy", POLICY, "--horizon-quarters", 4, "--json")
     assert table.returncode == 0, table.stderr
     assert json.loads(table.stdout)["unmailed_response_used"] == 0.0
+
+
+# ---------------------------------------------------------------- the control cell
+
+CONTROL_KEYS = ["customers_in_cell", "eligible", "expected_value_forgone", "precision", "seed"]
+
+
+def control_cell_args(demo_dir, out, *extra):
+    return ("control-cell", demo_dir / "model.json", demo_dir / "orders.csv", "--policy", POLICY, "--mailings", demo_dir / "mailings.csv",
+            "--horizon-quarters", 8, "--as-of", "2023-09-30", "--precision", 0.2, "--out", out, *extra)
+
+
+def test_control_cell_json_keys_force_and_the_same_seed(demo_dir, tmp_path):
+    out = tmp_path / "cell.csv"
+    first = run_cli(*control_cell_args(demo_dir, out, "--json", "--seed", 5))
+    assert first.code == 0, first.stderr
+    data = json.loads(first.stdout)
+    assert list(data) == CONTROL_KEYS  # exactly these keys, sorted
+    assert data["seed"] == 5 and 0 < data["customers_in_cell"] <= data["eligible"] / 2 and data["precision"] <= 0.2
+    rows = pd.read_csv(out)
+    assert list(rows.columns) == ["customer_id", "segment"] and len(rows) == data["customers_in_cell"]
+    written = out.read_bytes()
+    again = run_cli(*control_cell_args(demo_dir, out, "--json", "--seed", 5))
+    assert_one_error_line(again, "already exists", "--force")
+    forced = run_cli(*control_cell_args(demo_dir, out, "--json", "--seed", 5, "--force"))
+    assert forced.code == 0 and forced.stdout == first.stdout and out.read_bytes() == written
+    other = run_cli(*control_cell_args(demo_dir, out, "--seed", 6, "--force"))
+    assert other.code == 0 and out.read_bytes() != written
+    assert "Expected value forgone" in other.stdout and "data-protection law" in other.stdout
+
+
+@pytest.mark.parametrize("precision", ["0", "1", "-0.1", "1.5", "nan"])
+def test_control_cell_refuses_a_precision_outside_0_to_1(demo_dir, tmp_path, precision):
+    out = tmp_path / "cell.csv"
+    args = list(control_cell_args(demo_dir, out))
+    args[args.index("--precision") + 1] = precision
+    assert_one_error_line(run_cli(*args), "--precision", "above 0 and below 1")
+    assert not out.exists()
+
+
+def test_control_cell_refuses_a_precision_the_base_cannot_reach_saying_the_best(demo_dir, tmp_path):
+    out = tmp_path / "cell.csv"
+    args = list(control_cell_args(demo_dir, out))
+    args[args.index("--precision") + 1] = "0.01"
+    assert_one_error_line(run_cli(*args), "--precision 0.01", "holding half", "only to within +-")
+    assert not out.exists()
+
+
+def test_fit_reads_a_control_cell_held_in_its_as_of_quarter(demo_dir, tmp_path):
+    cell = tmp_path / "cell.csv"
+    assert run_cli(*control_cell_args(demo_dir, cell)).code == 0
+    # The demo mailed by its own rule; take the quarter's pieces away from the cell but its first 3 customers
+    # (3 list errors), so the cell is held there.
+    held = pd.read_csv(cell).customer_id
+    mailings = pd.read_csv(demo_dir / "mailings.csv")
+    in_quarter = mailings.mail_date >= "2023-10-01"
+    mailed_anyway = held.iloc[:3][held.iloc[:3].isin(mailings.customer_id[in_quarter])]
+    edited = tmp_path / "mailings.csv"
+    mailings[~(in_quarter & mailings.customer_id.isin(held.iloc[3:]))].to_csv(edited, index=False)
+    result = run_cli("fit", demo_dir / "orders.csv", "--mailings", edited, "--control", cell, "--out", tmp_path / "m.json", "--json")
+    assert result.code == 0, result.stderr
+    control = json.loads(result.stdout)["control"]
+    assert list(control) == ["customers", "disagree", "rho_cell", "rho_cell_se", "rho_model", "rho_model_se"]
+    assert control["customers"] <= len(held) - len(mailed_anyway)
+    assert control["rho_cell"] >= 0 and control["rho_cell_se"] > 0
+    assert control["rho_model"] == pytest.approx(json.loads((tmp_path / "m.json").read_text())["churn"]["rho"], abs=1e-6)  # JSON keeps 6 decimals
+    shown = run_cli("fit", demo_dir / "orders.csv", "--mailings", edited, "--control", cell, "--out", tmp_path / "m.json", "--force")
+    assert "rho from the control cell" in shown.stdout
+    assert (f"{len(mailed_anyway):,} of the cell's {len(held):,} customers were mailed anyway" in shown.stdout) == (len(mailed_anyway) > 0)
+
+
+def test_fit_refuses_a_control_cell_that_matches_nobody_and_writes_no_model(demo_dir, tmp_path):
+    cell = tmp_path / "cell.csv"
+    cell.write_text("customer_id,segment\nNOBODY1,\"0 repeat, 1 silent\"\nNOBODY2,\"1 repeat, 0 silent\"\n")
+    out = tmp_path / "m.json"
+    result = run_cli("fit", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--control", cell, "--out", out)
+    assert_one_error_line(result, "cell.csv", "none of its 2 ids is a customer")
+    assert not out.exists()

@@ -18,6 +18,7 @@ import typer
 from rich.console import Console
 
 from lapsewise.app import pipeline, render
+from lapsewise.budget.control_cell import DEFAULT_SEED
 from lapsewise.budget.mail_list import decision_counts
 from lapsewise.errors import InputError
 from lapsewise.files.writing import check_writable, dumps_stable, save_csv, write_text_atomic
@@ -159,7 +160,10 @@ def fit(
     no_seasons: bool = NoSeasonsOption,
     columns: dict | None = None,
     force: bool = ForceOption,
-    json_output: bool = JsonOption,
+    control: Optional[Path] = typer.Option(
+        None, "--control", help="Control cell held in the as-of quarter (written by 'lapsewise control-cell'): estimate rho from it alone."
+    ),
+    json_output: bool = typer.Option(False, "--json", help="Print the model file's content (and 'control') as JSON instead of tables."),
 ) -> None:
     """Fit the hidden-churn and order-value models and write the model file."""
     check_writable(out, force)
@@ -167,16 +171,19 @@ def fit(
     with render.progress(console, 2, not json_output) as step:
         with step("Reading the files and building the quarterly panel"):
             panel = pipeline.read_panel(orders, mailings, as_of, fiscal_year_start, columns)
+            counts = None if control is None else pipeline.read_control_counts(panel, control, columns, str(orders))
         with step(f"Fitting the models on {panel.customers:,} customers"):
             fitted = pipeline.fit(panel, seasons=not no_seasons)
     model = fitted.model
+    reading = None if counts is None else pipeline.control_reading(counts, model)
     write_text_atomic(out, dumps_stable(model.to_dict()), force)
-    if json_output:  # the model file's contents: parameters, mailing_check, rho_estimable, warnings
-        typer.echo(dumps_stable(model.to_dict()), nl=False)
+    if json_output:  # the model file's contents (parameters, seasons, mailing_check, rho_estimable, warnings) and the control reading
+        typer.echo(dumps_stable({**model.to_dict(), "control": None if reading is None else reading.to_dict()}), nl=False)
         return
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_model(console, model, fitted.curves)
+    render.print_control_reading(console, reading)
     console.print(f"Model written to {out}.")
     render.print_caution(console)
 
@@ -385,6 +392,46 @@ def mail_list_command(
     render.print_suppression(console, inputs.suppression)
     render.print_recurring_budget(console, recurring_result)
     render.print_mail_list(console, decision_counts(rows), result, out)
+    render.print_caution(console)
+
+
+@app.command("control-cell")
+@column_names
+@economics_overrides
+def control_cell_command(
+    model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
+    orders: Path = OrdersArgument,
+    policy_file: Path = PolicyOption,
+    precision: float = typer.Option(..., "--precision", help="95% half-width wanted on rho, above 0 and below 1 (e.g. 0.1 for +-0.1)."),
+    out: Path = typer.Option(..., "--out", help="Control cell to write (CSV: customer_id, segment)."),
+    mailings: Optional[Path] = MailingsOption,
+    as_of: Optional[str] = AsOfOption,
+    suppress: Optional[Path] = SuppressOption,
+    attributes: Optional[Path] = AttributesOption,
+    segment_column: Optional[str] = SegmentColumnOption,
+    seed: int = typer.Option(DEFAULT_SEED, "--seed", min=0, max=2**32 - 1, help=f"Seed of the cell's random draw (0 to 4294967295; default {DEFAULT_SEED})."),
+    columns: dict | None = None,
+    json_output: bool = JsonOption,
+    force: bool = ForceOption,
+    overrides: dict | None = None,
+) -> None:
+    """Draw a random no-mail control cell among this quarter's mailable customers, sized to estimate rho to +-PRECISION."""
+    check_writable(out, force)
+    pipeline.check_precision(precision)
+    console = _console(json_output)
+    with render.progress(console, 2, not json_output) as step:
+        with step("Reading the files and valuing a mailing to every customer"):
+            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
+        with step("Sizing and drawing the control cell"):
+            cell = pipeline.control_cell(inputs, precision, seed)
+            save_csv(out, cell.rows(), force)
+    if json_output:
+        typer.echo(dumps_stable(cell.to_dict()), nl=False)
+        return
+    if not inputs.panel.mailing_history:
+        console.print(render.ALL_MAILED_NOTE)
+    render.print_suppression(console, inputs.suppression)
+    render.print_control_cell(console, cell, out)
     render.print_caution(console)
 
 

@@ -17,6 +17,8 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
+from lapsewise.budget.control_cell import ControlCell, check_precision, draw_control_cell
+from lapsewise.budget.control_reading import CellCounts, ControlReading, cell_counts, read_control_cell
 from lapsewise.budget.integer_program import Plan, make_plan
 from lapsewise.budget.mail_list import mail_list
 from lapsewise.budget.values import CustomerValues, band_program, band_program_bytes, band_values, customer_order_values, customer_values, valued_states
@@ -30,7 +32,7 @@ from lapsewise.decide.stop_table import StopTable, build_stop_table
 from lapsewise.errors import InputError
 from lapsewise.machine import available_memory
 from lapsewise.evaluate.policies import Simulation, simulate_policies
-from lapsewise.files.inputs import ID_COLUMN, load_attributes, load_id_list
+from lapsewise.files.inputs import ID_COLUMN, load_attributes, load_control_cell, load_id_list
 from lapsewise.files.tables import Reading
 from lapsewise.files.policy_file import Policy, load_policy
 from lapsewise.model.fitted import Model, fit_model, load_model
@@ -288,3 +290,35 @@ def plan_inputs(
     attribute = attribute_values(panel, attributes, segment_column, columns["id_column"], side)
     flags = None if suppression is None else suppression.flags
     return PlanInputs(model, policy, panel, value_customers(model, panel, policy, flags, attribute), suppression, attribute)
+
+
+# ---------------------------------------------------------------- the control cell
+
+
+def planning_rho(model: Model, policy: Policy) -> tuple[float, str]:
+    """The rho a control cell is sized with, and where it comes from: the policy's unmailed_response, else the model's rho."""
+    if policy.economics.unmailed_response is not None:
+        return float(policy.economics.unmailed_response), "the policy's unmailed_response"
+    if model.churn.rho is None:
+        raise InputError(
+            "the model was fitted without a mailings file, so it has no rho to size the cell with; "
+            "set unmailed_response in the policy (or pass --unmailed-response) to a planning guess"
+        )
+    return float(model.churn.rho), "the model's rho"
+
+
+def control_cell(inputs: PlanInputs, precision: float, seed: int) -> ControlCell:
+    """This quarter's randomised no-mail cell among the customers the policy would mail."""
+    check_precision(precision)
+    rho, source = planning_rho(inputs.model, inputs.policy)
+    return draw_control_cell(inputs.values, precision, rho, source, seed)
+
+
+def read_control_counts(panel: Panel, path: str | Path, columns: dict | None, orders_name: str) -> CellCounts:
+    """The control cell file against the panel's as-of quarter (refused before any fitting when it matches nobody)."""
+    return cell_counts(panel, load_control_cell(path, side_file_reading(columns)), orders_name)
+
+
+def control_reading(counts: CellCounts, model: Model) -> ControlReading:
+    """rho from the cell beside the model's."""
+    return read_control_cell(counts, model.churn.rho, model.churn.std_errors.get("rho"))

@@ -509,3 +509,69 @@ def progress(console: Console, steps: int, enabled: bool = True):
             bar.advance(task)
 
         yield step
+
+
+# ---------------------------------------------------------------- the control cell
+
+
+def print_control_cell(console: Console, cell, out) -> None:
+    """The cell's size and what it buys (:class:`lapsewise.budget.control_cell.ControlCell`), per segment, and where it is."""
+    table = Table(title="Control cell: customers held (not mailed) this quarter", title_justify="left")
+    table.add_column("Figure")
+    table.add_column("Value", justify="right")
+    table.add_row("Customers the policy would mail (customers)", f"{cell.eligible:,}")
+    table.add_row("Held in the cell (customers)", f"{cell.customers_in_cell:,} ({cell.customers_in_cell / cell.eligible:.1%})")
+    table.add_row("rho planned with (share of response)", f"{cell.rho:.3g}")
+    table.add_row("Order rate of those customers if mailed (per quarter)", f"{cell.rate_mailed:.2%}")
+    table.add_row("95% half-width on rho asked (share of response)", f"+-{cell.precision_asked:.3g}")
+    table.add_row("95% half-width on rho expected (share of response)", f"+-{cell.precision:.3g}")
+    table.add_row("Expected value forgone (currency units)", money(cell.expected_value_forgone))
+    table.add_row("Seed of the draw", str(cell.seed))
+    console.print(table)
+    segments = compact_table()
+    for column in ("Segment", "Would mail", "Held"):
+        segments.add_column(column, justify="left" if column == "Segment" else "right")
+    for row in cell.segments.itertuples(index=False):
+        segments.add_row(str(row.segment), f"{row.eligible:,}", f"{row.held:,}")
+    console.print(segments)
+    console.print(
+        f"Hold these {cell.customers_in_cell:,} of the {cell.eligible:,} customers the policy would mail this quarter and mail the rest: "
+        f"after the quarter, 'lapsewise fit --control {out}' estimates rho to within about +-{cell.precision:.3g} (95%), planned with "
+        f"rho {cell.rho:.3g} ({cell.rho_source}), at an expected {money(cell.expected_value_forgone)} of value forgone. "
+        f"The cell (customer_id, segment) is in {out}; drawn at random within segments with seed {cell.seed}, the same seed giving the same cell."
+    )
+
+
+def print_control_reading(console: Console, reading) -> None:
+    """rho from the control cell beside the model's (:class:`lapsewise.budget.control_reading.ControlReading`); nothing without a cell."""
+    if reading is None:
+        return
+    counts = reading.counts
+    table = Table(title="rho from the control cell, beside the model's", title_justify="left")
+    for column in ("Estimate", "rho (share of response)", "Std. error", "From"):
+        table.add_column(column, justify="left" if column in ("Estimate", "From") else "right")
+    table.add_row("control cell", f"{reading.rho_cell:.4g}", f"{reading.rho_cell_se:.3g}", f"{reading.customers:,} held customers against the mailed of their states")
+    model_rho, model_error = _estimate(reading.rho_model, reading.rho_model_se)
+    table.add_row("model", model_rho, model_error, "the fit of every customer's history")
+    console.print(table)
+    left_out = {
+        "were mailed anyway in the quarter (a list error)": counts.mailed_anyway,
+        "first ordered in the quarter (not customers when the cell was drawn)": counts.joined,
+        "had no mailed customer of their state to compare with": counts.without_comparison,
+        "are not customers in the orders": counts.listed - counts.matched,
+    }
+    for what, count in left_out.items():
+        if count:
+            console.print(f"[yellow]warning:[/yellow] {count:,} of the cell's {counts.listed:,} customers {what}; they are left out.")
+    if reading.disagree:
+        console.print(
+            f"[yellow]warning:[/yellow] the cell's rho {reading.rho_cell:.3g} and the model's {reading.rho_model:.3g} differ by more than their "
+            "errors allow (95%); the model's rho rests on the firm's own, non-random mailing, the cell's on a random hold. "
+            "Consider setting unmailed_response in the policy from the cell's estimate."
+        )
+    else:
+        console.print(
+            f"The held customers ordered at {reading.rho_cell:.3g} times the rate of comparable mailed ones (95% interval "
+            f"{reading.rho_cell - 1.96 * reading.rho_cell_se:.3g} to {reading.rho_cell + 1.96 * reading.rho_cell_se:.3g}); "
+            "the model's rho is within their errors of it."
+        )

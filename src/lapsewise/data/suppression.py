@@ -44,11 +44,16 @@ def match_suppression(panel: Panel, listed: Loaded, orders_name: str = "the orde
     ids = listed.frame[ID_COLUMN].to_numpy()
     flags = np.isin(panel.customer_ids, ids)
     matched = int(flags.sum())
+    refuse_if_none_match(listed.name, ids, matched, panel, orders_name, "check that both files hold the same kind of id, or pass --id-column")
+    return Suppression(listed.name, flags, len(ids), matched)
+
+
+def refuse_if_none_match(name: str, ids: np.ndarray, matched: int, panel: Panel, orders_name: str, fix: str) -> None:
+    """Refuse a list of ids of which none is a customer (almost always a format mismatch), showing an id of each side."""
     if len(ids) and matched == 0:
         example = str(ids[0])[:20]
         base = str(panel.customer_ids[0])[:20] if panel.customers else "-"
         raise InputError(
-            f"{listed.name}: none of its {len(ids):,} ids is a customer in {orders_name} (its ids look like '{example}', "
-            f"the customers' like '{base}'); check that both files hold the same kind of id, or pass --id-column"
+            f"{name}: none of its {len(ids):,} ids is a customer in {orders_name} (its ids look like '{example}', "
+            f"the customers' like '{base}'); {fix}"
         )
-    return Suppression(listed.name, flags, len(ids), matched)

@@ -210,6 +210,33 @@ def load_attributes(path: str | Path, column: str, id_column: str = ID_COLUMN, r
     return Loaded(name, out[~duplicated].reset_index(drop=True), repairs)
 
 
+CELL_SEGMENT_COLUMN = "segment"
+
+
+def load_control_cell(path: str | Path, reading: Reading | None = None) -> Loaded:
+    """Read a control cell written by ``lapsewise control-cell``: ``customer_id, segment``, one row per held customer.
+
+    A cell that the writer protected from spreadsheets (a quote before a leading ``=``, ``+``, ``-``, ``@``)
+    has the quote taken off again, so the ids read back as they were written.
+    """
+    name = str(path)
+    frame, is_csv, repairs = read_table(path, reading)
+    _require_columns(name, frame, {ID_COLUMN: "", CELL_SEGMENT_COLUMN: ""})
+    _count_extra_columns(frame, [ID_COLUMN, CELL_SEGMENT_COLUMN], repairs)
+    ids = clean_ids(name, _unquoted(frame[ID_COLUMN]), repairs, None, ID_COLUMN, is_csv)
+    keep = drop_blank_ids(name, ids, np.ones(len(frame), dtype=bool), repairs)
+    out = pd.DataFrame({ID_COLUMN: np.asarray(ids[keep]).astype(str), CELL_SEGMENT_COLUMN: _unquoted(frame[CELL_SEGMENT_COLUMN]).str.strip().to_numpy()[keep]})
+    duplicated = out.duplicated(subset=[ID_COLUMN], keep="first").to_numpy()
+    if duplicated.any():
+        repairs["cell rows for an id already seen ignored"] = int(duplicated.sum())
+    return Loaded(name, out[~duplicated].reset_index(drop=True), repairs)
+
+
+def _unquoted(column: pd.Series) -> pd.Series:
+    """Text cells without the quote the CSV writer puts before a leading =, +, -, @, tab or carriage return."""
+    return column.astype(str).str.replace(r"^'(?=[=+\-@\t\r])", "", regex=True)
+
+
 # ---------------------------------------------------------------- the customer-quarter table
 
 QUARTER_COLUMN = "quarter"
