@@ -9,7 +9,7 @@ from numpy.testing import assert_array_equal
 
 from conftest import THREE_CUSTOMERS, row_of
 from lapsewise.data import reference
-from lapsewise.data.histories import compress, compress_arrays, history_arrays, season_quarters
+from lapsewise.data.histories import compress, compress_arrays, compress_both, history_arrays, season_quarters
 from lapsewise.data.summary import summarize
 
 
@@ -154,3 +154,16 @@ def test_season_quarters_counts_the_calendar():
     # By hand: quarter 0 in quarter of the year 2 (phase 2); quarters 1..6 fall in 3, 0, 1, 2, 3, 0.
     assert season_quarters(np.array([2]), np.array([6])).tolist() == [[2, 1, 1, 2]]
     assert season_quarters(np.array([0]), np.array([0])).tolist() == [[0, 0, 0, 0]]
+
+
+def test_compress_both_equals_the_two_compressions():
+    # compress_both counts the statistics once: it must give exactly compress(panel) and compress(panel, seasons=True).
+    from builders import seasonal_panel
+
+    panel = seasonal_panel(2_000, seed=4)
+    plain, seasonal = compress_both(panel)
+    for got, expected in ((plain, compress(panel)), (seasonal, compress(panel, seasons=True))):
+        for name in ("x", "x_unmailed", "t_x", "n", "mailed_silent", "unmailed_silent", "after_last", "count", "inverse"):
+            assert_array_equal(getattr(got, name), getattr(expected, name), err_msg=name)
+    assert plain.phase is None and seasonal.seasonal
+    assert_array_equal(seasonal.season_x, compress(panel, seasons=True).season_x)

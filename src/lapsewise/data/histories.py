@@ -104,12 +104,17 @@ def history_arrays(purchased: np.ndarray, mailed: np.ndarray, n: np.ndarray, pha
         "after_last": after_last.view(np.uint8),
     }
     if phase is not None:
+        # Column j of a row is in quarter of the year (phase + j) % 4: sum the columns j = r (mod 4), four strided
+        # sums, and put each at its row's quarter of the year.
         phase = np.asarray(phase, dtype=np.int64) % 4
-        season = ((phase[:, None] + columns) % 4).astype(np.int8)
+        where = (phase[:, None] + np.arange(4)[None, :]) % 4
         mailed_silent_through = was_mailed & ~bought & (columns <= t_x[:, None])
+        for name, flags in (("season_x", bought), ("season_mailed_silent", mailed_silent_through)):
+            by_offset = np.stack([flags[:, r::4].sum(axis=1, dtype=np.int64) for r in range(4)], axis=1)
+            values = np.empty_like(by_offset)
+            np.put_along_axis(values, where, by_offset, axis=1)
+            arrays[name] = values
         arrays["phase"] = phase
-        arrays["season_x"] = np.stack([(bought & (season == q)).sum(axis=1, dtype=np.int64) for q in range(4)], axis=1)
-        arrays["season_mailed_silent"] = np.stack([(mailed_silent_through & (season == q)).sum(axis=1, dtype=np.int64) for q in range(4)], axis=1)
     return arrays
 
 
@@ -132,6 +137,12 @@ def compress(panel: Panel, seasons: bool = False) -> Histories:
     phase = panel.first_quarter % 4 if seasons else None
     arrays = history_arrays(panel.purchased, panel.mailed, panel.n, phase)
     return compress_arrays(arrays)
+
+
+def compress_both(panel: Panel) -> tuple[Histories, Histories]:
+    """The histories without and with seasons (:func:`compress` twice), the statistics counted once."""
+    arrays = history_arrays(panel.purchased, panel.mailed, panel.n, panel.first_quarter % 4)
+    return compress_arrays({name: value for name, value in arrays.items() if name not in SEASONAL}), compress_arrays(arrays)
 
 
 def compress_arrays(arrays: dict[str, np.ndarray]) -> Histories:

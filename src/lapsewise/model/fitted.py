@@ -9,7 +9,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
-from lapsewise.data.histories import compress
+from lapsewise.data.histories import compress, compress_both
 from lapsewise.data.panel import Panel
 from lapsewise.data.summary import CustomerSummary, summarize
 from lapsewise.errors import InputError
@@ -128,12 +128,13 @@ def fit_model(panel: Panel, summary: CustomerSummary | None = None, seasons: boo
     """
     check = check_mailing(panel.purchased, panel.mailed, panel.n, panel.first_quarter) if panel.mailing_history else None
     # One after the other: both searches set the process's BLAS threads to one while they run (optimum.maximize).
-    churn = fit_churn(compress(panel), panel.mailing_history)
+    plain, seasonal = compress_both(panel) if seasons else (compress(panel), None)
+    churn = fit_churn(plain, panel.mailing_history)
     rho_estimable = check is None or check.rho_estimable
     if not rho_estimable:
         churn = _without_rho(churn)
     if seasons:  # with every quarter mailed, rho stays out of the seasonal fit too
-        churn = fit_seasons(compress(panel, seasons=True), panel.mailing_history and rho_estimable, churn)
+        churn = fit_seasons(seasonal, panel.mailing_history and rho_estimable, churn)
     spend, spend_warnings = _fit_spend_or_warn(panel, summary)
     warnings = list(churn.warnings) + spend_warnings
     if not rho_estimable:

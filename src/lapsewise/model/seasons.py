@@ -226,16 +226,43 @@ def log_state_moments(states: np.ndarray, alpha: float, beta: float, c: np.ndarr
     expectation for every alpha and beta, so its derivative by alpha is the expectation's: with ``f`` the
     integrand, ``sum_i (dw_i/dalpha f(p_i) + w_i f'(p_i) dp_i/dalpha)``, where ``f'/f = x/p - sum_k m_k c_k/(1 - c_k p)``
     is exact and the nodes' slopes come from :func:`node_sensitivities`.
+
+    A state's integrand has degree ``x + sum_k m_k``, and ``J`` nodes are exact up to degree ``2J - 1``, so the
+    states are integrated in groups by degree, each with the fewest nodes exact for it (at most ``nodes``):
+    the work grows with the states' own lengths, not the longest history's.
     """
+    counts = states.astype(float)
+    value = np.empty(len(states))
+    d = np.empty((len(states), 2 + CLASSES)) if gradient else None
+    sizes = _node_groups(int(nodes))
+    group = np.searchsorted(sizes, states.sum(axis=1) // 2 + 1)  # the fewest nodes exact for each state's degree
+    for index, size in enumerate(sizes):
+        members = np.flatnonzero(group == index)
+        if len(members) == 0:
+            continue
+        result = _integrate(counts[members], alpha, beta, c, size, gradient)
+        if gradient:
+            value[members], d[members] = result
+        else:
+            value[members] = result
+    return (value, d) if gradient else value
+
+
+def _node_groups(nodes: int) -> list[int]:
+    """The node counts the states are grouped by: a few sizes up to ``nodes``, smallest first."""
+    return sorted({min(size, nodes) for size in (6, 11, 16)} | {nodes})
+
+
+def _integrate(counts: np.ndarray, alpha: float, beta: float, c: np.ndarray, nodes: int, gradient: bool):
+    """:func:`log_state_moments` of one group of states, all with ``nodes`` nodes."""
     p, log_weights = beta_nodes(float(alpha), float(beta), int(nodes))
     with np.errstate(divide="ignore"):
         features = np.column_stack([np.log(p), np.log1p(-np.outer(p, c))])  # (nodes, 1 + CLASSES)
     # A node at p = 1 with c = 1 gives log 0: a very negative finite number instead, so that a count of 0 times it is 0.
     features_t = np.ascontiguousarray(np.maximum(features, -1e300).T)
-    counts = states.astype(float)
-    value = np.empty(len(states))
+    value = np.empty(len(counts))
     if gradient:
-        d = np.empty((len(states), 2 + CLASSES))
+        d = np.empty((len(counts), 2 + CLASSES))
         slope_c = -p[:, None] / (1.0 - np.outer(p, c))  # d log(1 - c p) / d c at each node
         # d log f / d p at each node is counts @ slope_p[node]: x / p for the purchases, -c_k / (1 - c_k p) for class k.
         slope_p = np.column_stack([1.0 / np.maximum(p, 1e-300), -c[None, :] / (1.0 - np.outer(p, c))])  # (nodes, 1 + CLASSES)
@@ -243,7 +270,7 @@ def log_state_moments(states: np.ndarray, alpha: float, beta: float, c: np.ndarr
         # The alpha and beta slopes of each node's exponent, side by side: share @ these gives both derivatives at once.
         moves = np.stack([d_p_alpha[:, None] * slope_p, d_p_beta[:, None] * slope_p], axis=0)  # (2, nodes, 1 + CLASSES)
         weight_moves = np.column_stack([d_log_w_alpha, d_log_w_beta])
-    for begin in range(0, len(states), _CHUNK):
+    for begin in range(0, len(counts), _CHUNK):
         block = counts[begin : begin + _CHUNK]
         share = block @ features_t
         share += log_weights
