@@ -56,3 +56,23 @@ def test_the_stop_table_reading_quotes_the_tables_stop_point():
 
 def test_money_shows_missing_values_as_a_dash():
     assert render.money(None) == "-" and render.money(float("nan")) == "-" and render.money(1234.5) == "1,234.50"
+
+
+def test_a_seasonal_model_says_the_stop_rule_plans_an_average_quarter():
+    import dataclasses
+
+    from lapsewise.decide.program import decision_process
+
+    seasonal = dataclasses.replace(MODEL, churn=dataclasses.replace(MODEL.churn, seasons=(1.0, 0.5, 0.4, 0.7)))
+    economics = Economics(0.45, 4.0, 0.9, 0.10, 8)
+    table = pipeline.stop_table(seasonal, Policy(economics, (Version("full", 0.9),), Segments(), "test"))
+    text = " ".join(recorded(render.print_stop_table, table, seasonal).split())
+    assert "plans every quarter as an average one (multiplier 0.65)" in text
+    assert "stop-table" not in text and "The model has seasons (1.00, 0.50, 0.40, 0.70" in text
+    # The process it plans with has the mean p of an average quarter: alpha / (alpha + beta') = 0.65 alpha / (alpha + beta).
+    plain = decision_process(MODEL.churn)
+    averaged = decision_process(seasonal.churn)
+    assert abs(averaged.mean_p - 0.65 * plain.mean_p) < 1e-12 and averaged.alpha == plain.alpha
+    assert table.process.beta == averaged.beta
+    # Without seasons nothing is said.
+    assert "The model has seasons" not in " ".join(recorded(render.print_stop_table, pipeline.stop_table(MODEL, Policy(economics, (Version("full", 0.9),), Segments(), "test")), MODEL).split())

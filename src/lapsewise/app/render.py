@@ -308,6 +308,12 @@ def print_stop_table(console: Console, table, model) -> None:
         f"{economics.annual_discount_rate:.0%} a year, each decision looking {horizon} quarters ahead; "
         f"a held customer orders at {table.process.rho:.2f} times the mailed rate."
     )
+    if model.churn.process.seasonal:
+        seasons = model.churn.seasons
+        console.print(
+            f"The model has seasons ({', '.join(f'{s:.2f}' for s in seasons)} by quarter of the year); the stop rule does not follow "
+            f"the calendar yet and plans every quarter as an average one (multiplier {sum(seasons) / 4:.2f})."
+        )
     cells = table.cells.set_index(["spend_band", "frequency", "last_purchase_quarter", "silent_quarters"])
     rows = table.rows.set_index(["spend_band", "frequency", "last_purchase_quarter"])
     for band in table.bands:
