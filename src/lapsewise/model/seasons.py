@@ -444,8 +444,8 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") 
     Their curvature, and the standard errors, come from the Hessian (by differences
     of the exact gradient) of the whole base, or of a sample of
     :data:`CURVATURE_CUSTOMERS` customers when the base is larger (a full Hessian
-    by differences costs eight full gradients; the sample's standard errors are
-    within a few per cent of the full ones, see ``tests/bench/README.md``).
+    by differences costs eight full gradients; the sample's standard errors were
+    within 2.5% of the full ones on simulated bases, see ``tests/bench/README.md``).
     Returns ``plain`` with a warning when some quarter of the year has no purchase.
     """
     from lapsewise.model.churn import ChurnFit, has_unmailed_quarter, on_bounds, sample_histories
