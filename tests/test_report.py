@@ -217,6 +217,8 @@ def test_the_parameters_equal_the_model_file(report, demo_dir):
     churn = json.loads((demo_dir / "model.json").read_text())["churn"]
     for name in ("alpha", "beta", "gamma", "delta", "rho"):
         assert page.numbers[f"model.{name}"] == f"{churn[name]:.4g}", name
+    for q in range(4):  # the demo's model is fitted with seasons (the default)
+        assert page.numbers[f"model.season_{q + 1}"] == f"{churn['seasons'][q]:.4g}", q
 
 
 def test_the_report_holds_the_cautions_and_assumptions(report):

@@ -471,6 +471,13 @@ def model_section(results: ReportResults) -> str:
     for name, meaning in meanings.items():
         estimate, error = _estimate(getattr(churn, name), churn.std_errors.get(name))
         lines.append([name, _number(f"model.{name}", estimate), error, html.escape(meaning)])
+    if churn.seasons is not None:
+        for q, multiplier in enumerate(churn.seasons):
+            estimate, error = _estimate(multiplier, churn.std_errors.get(f"season_{q + 1}"))
+            lines.append([f"season_{q + 1}", _number(f"model.season_{q + 1}", estimate), error, html.escape(f"multiplier of p in quarter {q + 1} of the year (the largest is 1)")])
+    if churn.season_test is not None:
+        test = churn.season_test
+        lines.append(["seasons against none", f"{test['statistic']:,.1f}", "-", html.escape(f"likelihood-ratio statistic, {test['degrees_of_freedom']} degrees of freedom, p-value {test['p_value']:.3g}")])
     if model.spend is not None:
         for name in ("p", "q", "gamma"):
             estimate, error = _estimate(getattr(model.spend, name), model.spend.std_errors.get(name))
@@ -486,7 +493,8 @@ def model_section(results: ReportResults) -> str:
         else f"Suppression list {suppression.source}: {suppression.matched:,} of its {suppression.listed:,} ids are customers here; they are never mailed."
     )
     assumptions = [
-        "Each quarter a customer who is still active orders with their own probability p; mailing raises it (an unmailed quarter keeps only the share rho).",
+        "Each quarter a customer who is still active orders with their own probability p; mailing raises it (an unmailed quarter keeps only the share rho)"
+        + ("; a quarter of the year multiplies it by its season's multiplier (the stop rule plans an average quarter)." if churn.process.seasonal else "."),
         "After each quarter a customer may lapse for good, with their own probability theta; nobody comes back once lapsed, and lapsing is never seen directly.",
         "Customers differ: p and theta vary across customers as Beta distributions; order values vary around each customer's own mean (gamma-gamma), independent of how often they buy.",
         "A piece is worth mailing when the orders it adds now and the future those orders buy, discounted, exceed its cost.",
