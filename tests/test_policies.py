@@ -42,3 +42,30 @@ def test_a_simulation_too_large_for_the_free_memory_is_refused(monkeypatch):
     monkeypatch.setattr(policies, "available_memory", lambda: 1_000_000)
     with pytest.raises(InputError, match="simulating 100,000 customers over 40 quarters needs about"):
         simulate_policies(FIT, Economics(0.45, 4.0, 0.9, 0.10, 40), 45.0, 100_000, 40, seed=1)
+
+
+def test_in_a_seasonal_world_the_average_quarter_plan_still_beats_the_rules():
+    # Out of the program's world: the customers follow seasons (1, 0.5, 0.4, 0.7 by quarter of the year) on the
+    # calendar while the program plans an average quarter (decision_process: beta' = (alpha + beta)/s_bar - alpha).
+    # Measured (fixed seeds, 20,000 customers, 12 quarters): the plan still beats every rule of thumb (none better by
+    # 4 standard errors; 'always mail' and 'stop after 1' clearly worse). The program's value of the average quarter
+    # (14.8) lies above the simulated mean (14.4 +- 0.4), within the noise of this size: not asserted.
+    from lapsewise.decide.program import decision_process
+    from lapsewise.model.churn import ChurnFit
+
+    seasons = (1.0, 0.5, 0.4, 0.7)
+    fit = ChurnFit(FIT.alpha, FIT.beta, FIT.gamma, FIT.delta, 0.3, seasons=seasons)
+    planner = decision_process(fit)
+    world = Process(FIT.alpha, FIT.beta, FIT.gamma, FIT.delta, 0.3, seasons)
+    economics = Economics(0.45, 4.0, 0.9, 0.10, 12)
+    result = simulate_policies(planner, economics, 50.0, customers=20_000, quarters=12, seed=1, world=world, calendar_start=401)
+    summary = result.summary.set_index("policy")
+    others = summary.drop(index="optimal")
+    assert np.all(others.difference_to_optimal < 4 * others.difference_std_error)
+    for rule in ("always mail", "stop after 1"):
+        assert others.loc[rule, "difference_to_optimal"] < -4 * others.loc[rule, "difference_std_error"]
+    assert result.to_dict()["seasons"] == list(seasons)
+    # Without seasons the world is the planner's own: the same figures as without a world.
+    plain = simulate_policies(planner, economics, 50.0, customers=2_000, quarters=6, seed=3)
+    same = simulate_policies(planner, economics, 50.0, customers=2_000, quarters=6, seed=3, world=planner, calendar_start=7)
+    assert plain.to_dict() == same.to_dict() and plain.to_dict()["seasons"] is None

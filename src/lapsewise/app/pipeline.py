@@ -36,6 +36,7 @@ from lapsewise.files.inputs import ID_COLUMN, load_attributes, load_control_cell
 from lapsewise.files.tables import Reading
 from lapsewise.files.policy_file import Policy, load_policy
 from lapsewise.model.fitted import Model, fit_model, load_model
+from lapsewise.model.process import Process
 from lapsewise.model.posterior import posterior
 from lapsewise.model.scores import lapse_curves
 
@@ -121,11 +122,16 @@ def stop_table(model: Model, policy: Policy) -> StopTable:
 
 
 def simulation(model: Model, policy: Policy, customers: int, quarters: int | None, seed: int) -> Simulation:
-    """The optimal policy against the rules of thumb on new customers drawn from the model."""
+    """The optimal policy against the rules of thumb on new customers drawn from the model.
+
+    With seasons the customers follow them on the calendar from the quarter after the as-of quarter, while the
+    program plans an average quarter (:func:`~lapsewise.decide.program.decision_process`)."""
     economics = policy.economics
     process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
     order_value = typical_order_value(model.spend, economics)
-    return simulate_policies(process, economics, order_value, customers, quarters or economics.horizon_quarters, seed)
+    churn = model.churn
+    world = Process(churn.alpha, churn.beta, churn.gamma, churn.delta, process.rho, churn.seasons) if churn.process.seasonal else None
+    return simulate_policies(process, economics, order_value, customers, quarters or economics.horizon_quarters, seed, world, model.end_quarter + 1)
 
 
 # ---------------------------------------------------------------- values, plan and mail list

@@ -405,6 +405,12 @@ def print_simulation(console: Console, result, economics) -> None:
     console.print(table)
     optimal = result.summary.iloc[0]
     runner = result.best_rule
+    if result.seasons is not None:
+        console.print(
+            f"The simulated customers follow the model's seasons ({', '.join(f'{s:.2f}' for s in result.seasons)} by quarter of the year) "
+            "from the quarter after the as-of date, while the stop rule plans every quarter as an average one: the gap to a rule of "
+            "thumb includes what planning without the calendar costs, and the program's own value is for the average quarter."
+        )
     if result.program_value is not None:
         console.print(
             f"The program values a new customer at {money(result.program_value)}; the simulation gives {money(optimal.mean_profit)} "

@@ -10,6 +10,11 @@ Each simulated customer has just made their first purchase (quarter 0). In each
 of the following quarters the policy decides from what the firm can see, and
 the process runs as :mod:`lapsewise.evaluate.simulator` describes. Profit in
 quarter i is discounted by ``d ** i``, as in the program.
+
+The simulated customers may live in another world than the one the policies
+plan in: with a seasonal model they follow the model's seasons on the calendar
+(``world``), while the program plans every quarter as an average one, so the
+comparison shows what planning without the calendar costs.
 """
 
 from __future__ import annotations
@@ -43,6 +48,7 @@ class Simulation:
     margin: float
     program_value: float | None
     summary: pd.DataFrame
+    seasons: tuple[float, float, float, float] | None = None
 
     @property
     def best_rule(self) -> pd.Series:
@@ -58,6 +64,7 @@ class Simulation:
             "order_value": round(self.order_value, 6),
             "margin_per_order": round(self.margin, 6),
             "program_value": None if self.program_value is None else round(self.program_value, 6),
+            "seasons": None if self.seasons is None else [round(float(v), 6) for v in self.seasons],
             "policies": [
                 {key: (round(float(value), 6) if isinstance(value, (float, np.floating)) else value) for key, value in row.items()}
                 for row in self.summary.to_dict(orient="records")
@@ -91,10 +98,16 @@ def policy_rule(name: str, process: Process, program: Program, economics: Econom
     return model_rule
 
 
-def run_policy(name: str, process: Process, program: Program, economics: Economics, margin: float, traits: Traits, uniforms: TabledUniforms, quarters: int) -> dict:
-    """Simulate one policy over all customers; returns per-customer discounted profit, pieces and orders."""
+def run_policy(
+    name: str, process: Process, program: Program, economics: Economics, margin: float, traits: Traits, uniforms: TabledUniforms, quarters: int,
+    world: Process | None = None, calendar_start: int = 0,
+) -> dict:
+    """Simulate one policy over all customers; returns per-customer discounted profit, pieces and orders.
+
+    The policy plans with ``process``; the customers behave as ``world`` says (default the same), quarter 0 being
+    the absolute quarter ``calendar_start`` (for the seasons)."""
     rule = policy_rule(name, process, program, economics, margin, quarters)
-    result = run_process(process, traits, quarters + 1, rule, uniforms)
+    result = run_process(world or process, traits, quarters + 1, rule, uniforms, calendar_start=calendar_start)
     profit = np.zeros(traits.customers)
     d = economics.discount
     for quarter in range(1, quarters + 1):
@@ -118,8 +131,13 @@ def check_simulation_memory(customers: int, quarters: int, program: int = 0) -> 
         )
 
 
-def simulate_policies(process: Process, economics: Economics, order_value: float, customers: int, quarters: int, seed: int) -> Simulation:
+def simulate_policies(
+    process: Process, economics: Economics, order_value: float, customers: int, quarters: int, seed: int, world: Process | None = None, calendar_start: int = 0
+) -> Simulation:
     """Run every policy on the same simulated customers and compare them with the optimal one.
+
+    The policies plan with ``process``; the customers are drawn from and behave as ``world`` (default ``process``),
+    their quarter 0 being the absolute quarter ``calendar_start``.
 
     With ``quarters`` up to the horizon, "optimal" is the program's policy for
     exactly that many quarters (the best any policy can do over the simulated
@@ -145,9 +163,9 @@ def simulate_policies(process: Process, economics: Economics, order_value: float
         start = decide_within(program, np.array([0]), np.array([0]), np.array([0]), np.array([1.0]), horizon)
         program_value = float(start.value[0])
     rng = np.random.default_rng(seed)
-    traits = draw_traits(process, customers, rng)
+    traits = draw_traits(world or process, customers, rng)
     uniforms = TabledUniforms.draw(rng, customers, quarters)
-    results = {name: run_policy(name, process, program, economics, margin, traits, uniforms, quarters) for name in policy_names()}
+    results = {name: run_policy(name, process, program, economics, margin, traits, uniforms, quarters, world, calendar_start) for name in policy_names()}
     best = results["optimal"]["profit"]
     rows = []
     for name, result in results.items():
@@ -167,4 +185,5 @@ def simulate_policies(process: Process, economics: Economics, order_value: float
                 "profit_std_error": float(profit.std(ddof=1) / np.sqrt(len(profit))),
             }
         )
-    return Simulation(customers, quarters, seed, float(order_value), float(margin), program_value, pd.DataFrame(rows))
+    seasons = world.seasons if world is not None and world.seasonal else None
+    return Simulation(customers, quarters, seed, float(order_value), float(margin), program_value, pd.DataFrame(rows), seasons)
