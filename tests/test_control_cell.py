@@ -187,6 +187,19 @@ def test_cell_counts_match_held_and_mailed_customers_by_their_state_before_the_q
     assert reading.rho_cell == pytest.approx(1 / 0.5) and reading.customers == 1
 
 
+def test_a_piece_that_came_after_an_order_still_counts_as_sent_in_the_comparison():
+    # C01 was sent a piece in quarter 4 that arrived after its order, so the panel does not count the quarter as
+    # mailed (the model's timing); the randomised comparison is of sending against holding, so C01 is a mailed
+    # comparison customer with an order, and C03, held in the file but sent a late piece, was mailed anyway.
+    purchased = [[1, 0, 1, 0, 1], [1, 0, 1, 0, 1], [1, 0, 1, 0, 0], [1, 0, 1, 0, 1]]
+    mailed = [[0, 1, 1, 1, 0], [0, 1, 1, 1, 0], [0, 1, 1, 1, 1], [0, 1, 1, 1, 0]]
+    panel = replace(panel_of(purchased, mailed), late_pieces=np.array([1 * 5 + 4, 3 * 5 + 4]))
+    counts = cell_counts(panel, cell_file(["C00", "C03"], ["1 repeat, 1 silent"] * 2))
+    assert counts.cell_size.tolist() == [1] and counts.cell_orders.tolist() == [1]
+    assert counts.mailed_count.tolist() == [2] and counts.mailed_orders.tolist() == [1]
+    assert counts.mailed_anyway == 1
+
+
 def test_a_cell_whose_comparison_group_never_ordered_is_refused():
     # C00 held, C01 mailed in the same state (1, 1) but without an order: no mailed rate to divide by.
     panel = panel_of([[1, 0, 1, 0, 1], [1, 0, 1, 0, 0]], [[0, 1, 1, 1, 0], [0, 1, 1, 1, 1]])

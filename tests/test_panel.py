@@ -11,7 +11,7 @@ import pytest
 from numpy.testing import assert_array_equal
 
 from conftest import GOOD_ORDERS, Q1_2023, THREE_CUSTOMERS, mailings_text, orders_text, repair_count, row_of
-from lapsewise.data.panel import panel_from_files, truncate
+from lapsewise.data.panel import panel_from_files, select, truncate
 from lapsewise.data.summary import summarize
 from lapsewise.errors import InputError
 from lapsewise.model.fitted import fit_model
@@ -236,6 +236,15 @@ def test_the_changed_quarters_are_exactly_those_mailed_by_quarter_but_not_in_tim
         by_quarter[row_of(panel, customer), quarter] = 1
     changed = (by_quarter == 1) & (panel.mailed == 0) & (panel.purchased == 1)
     assert int(changed.sum()) == repair_count(panel.counts, "only pieces arrived after the first order") == 2
+    # The panel keeps where they are: a randomised comparison counts them as sent (Panel.sent_in).
+    assert_array_equal(panel.late_pieces, np.flatnonzero(changed.ravel()))
+    for column in range(panel.mailed.shape[1]):
+        assert_array_equal(panel.sent_in(np.full(panel.customers, column)), by_quarter[:, column] == 1)
+    # Cutting the panel keeps them with their customers and quarters.
+    order = np.array([row_of(panel, "T4"), row_of(panel, "T2"), row_of(panel, "T1")])
+    picked = select(panel, order)
+    assert_array_equal(picked.sent_in(np.ones(3, dtype=np.int64)), by_quarter[order, 1] == 1)
+    assert len(truncate(panel, panel.end_quarter - 2).late_pieces) == 0  # quarter 1 cut away
     # Quarters without a purchase, and purchase quarters with a piece in time, are unchanged.
     assert_array_equal(panel.mailed[~changed], by_quarter[~changed])
 

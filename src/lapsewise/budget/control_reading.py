@@ -109,7 +109,9 @@ def cell_counts(panel: Panel, cell: Loaded, orders_name: str = "the orders") -> 
     n = panel.n
     present = n >= 1  # a customer when the cell was drawn, at the start of the as-of quarter
     ordered = panel.purchased[rows, n].astype(bool) & present
-    mailed = panel.mailed[rows, n].astype(bool) & present
+    # Sent a piece in the quarter, whenever it arrived: the randomised comparison is of sending against holding
+    # (a piece that came after an order is not counted as mailed by the model, but the customer was not held).
+    mailed = panel.sent_in(n) & present
     state = _state_before(panel, present)
     held = in_cell & present & ~mailed
     label_codes, names = pd.factorize(pd.Series(cell.frame[CELL_SEGMENT_COLUMN].to_numpy()), sort=True)

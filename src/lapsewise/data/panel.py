@@ -50,6 +50,11 @@ class Panel:
         Month (1-12) in which the first quarter of the year starts.
     counts : dict
         What was left out or repaired while loading and building the panel, ``{description: count}``.
+    late_pieces : numpy.ndarray of int64
+        The purchase quarters not counted as mailed because their only pieces
+        arrived after the first order, as flat indices ``row * width + column``
+        into the arrays above (sorted; empty when there were none). They were sent
+        a piece all the same, which a randomised comparison counts (:meth:`sent_in`).
     """
 
     customer_ids: np.ndarray
@@ -61,6 +66,17 @@ class Panel:
     mailing_history: bool
     fiscal_year_start: int = 1
     counts: dict[str, int] = field(default_factory=dict)
+    late_pieces: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+
+    def sent_in(self, column: np.ndarray) -> np.ndarray:
+        """Whether each customer was sent a piece in their quarter ``column`` (one per row), whenever it arrived:
+        mailed, or a purchase quarter whose only pieces came after its first order."""
+        rows = np.arange(self.customers)
+        sent = self.mailed[rows, column].astype(bool)
+        width = self.mailed.shape[1]
+        late_rows, late_columns = np.divmod(self.late_pieces, width)
+        sent[late_rows[late_columns == column[late_rows]]] = True
+        return sent
 
     @property
     def n(self) -> np.ndarray:
@@ -144,7 +160,7 @@ def attach_mailings(purchases: PurchasePanel, mailings: Loaded | None, in_home_d
         columns = np.arange(width)[None, :]
         mailed = ((columns >= 1) & (columns <= (end_quarter - first_quarter)[:, None])).astype(np.uint8)
         return Panel(**fields, mailed=mailed, mailing_history=False)
-    mailed, mail_counts = _mailed_quarters(
+    mailed, mail_counts, late_pieces = _mailed_quarters(
         mailings,
         purchases.order_ids,
         purchases.row_of_code,
@@ -155,7 +171,7 @@ def attach_mailings(purchases: PurchasePanel, mailings: Loaded | None, in_home_d
         in_home_days,
         fields["fiscal_year_start"],
     )
-    return Panel(**{**fields, "counts": {**fields["counts"], **mail_counts}}, mailed=mailed, mailing_history=True)
+    return Panel(**{**fields, "counts": {**fields["counts"], **mail_counts}}, mailed=mailed, mailing_history=True, late_pieces=late_pieces)
 
 
 def purchase_panel(orders: Loaded, as_of: dt.date | None = None, fiscal_year_start: int = 1) -> PurchasePanel:
@@ -257,8 +273,9 @@ def _mailed_quarters(
     first_order_day: np.ndarray,
     in_home_days: int,
     fiscal_year_start: int,
-) -> tuple[np.ndarray, dict[str, int]]:
-    """Mark each customer-quarter in which a piece was mailed (in a purchase quarter: in time for the first order).
+) -> tuple[np.ndarray, dict[str, int], np.ndarray]:
+    """Mark each customer-quarter in which a piece was mailed (in a purchase quarter: in time for the first order);
+    also return the flat indices of the purchase quarters whose only pieces were late (:attr:`Panel.late_pieces`).
 
     The mailings' own id categories are looked up once in the orders' categories
     (whose hash table pandas already built), then every mailing row maps to its
@@ -304,11 +321,11 @@ def _mailed_quarters(
         late = in_purchase & ~in_time[later]
     mailed.ravel()[flat[late]] = 2
     mailed.ravel()[flat[~late]] = 1
-    changed = int(np.count_nonzero(mailed == 2))
-    if changed:
-        counts[TIMING_COUNT] = changed
+    late_pieces = np.flatnonzero(mailed.ravel() == 2).astype(np.int64)
+    if len(late_pieces):
+        counts[TIMING_COUNT] = len(late_pieces)
     mailed &= 1
-    return mailed, counts
+    return mailed, counts, late_pieces
 
 
 def truncate(panel: Panel, end_quarter: int) -> Panel:
@@ -328,6 +345,7 @@ def truncate(panel: Panel, end_quarter: int) -> Panel:
         mailing_history=panel.mailing_history,
         fiscal_year_start=panel.fiscal_year_start,
         counts=dict(panel.counts),
+        late_pieces=_late_pieces_of(panel, np.flatnonzero(keep), width, end_quarter),
     )
 
 
@@ -343,7 +361,18 @@ def select(panel: Panel, rows: np.ndarray) -> Panel:
         mailing_history=panel.mailing_history,
         fiscal_year_start=panel.fiscal_year_start,
         counts=dict(panel.counts),
+        late_pieces=_late_pieces_of(panel, np.arange(panel.customers)[rows], panel.mailed.shape[1], panel.end_quarter),
     )
+
+
+def _late_pieces_of(panel: Panel, rows: np.ndarray, width: int, end_quarter: int) -> np.ndarray:
+    """:attr:`Panel.late_pieces` of the panel cut to ``rows`` (old row numbers, in their new order), ``width``
+    columns and the as-of quarter ``end_quarter``."""
+    old_rows, columns = np.divmod(panel.late_pieces, panel.mailed.shape[1])
+    new_row = np.full(panel.customers, -1, dtype=np.int64)
+    new_row[rows] = np.arange(len(rows))
+    kept = (new_row[old_rows] >= 0) & (columns < width) & (panel.first_quarter[old_rows] + columns <= end_quarter)
+    return np.sort(new_row[old_rows[kept]] * width + columns[kept])
 
 
 
