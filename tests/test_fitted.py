@@ -108,3 +108,24 @@ def test_without_a_mailings_file_there_is_no_check_and_rho_stays_unset():
     model = fit_model(replace(panel, mailed=everything, mailing_history=False))
     assert model.mailing_check is None and model.rho_estimable and not model.mailing_history and model.churn.rho is None
     assert not any("rho cannot be estimated" in w for w in model.warnings)
+
+
+def test_mailing_that_followed_only_the_calendar_is_left_to_the_seasonal_model():
+    # Mailing by the quarter of the year alone (everyone in the peak quarter, 30% at random otherwise) follows a rule,
+    # but one the seasonal model accounts for: with seasons fitted, fit says so instead of warning that rho may be
+    # biased; without seasons it warns. The fitted rho lands near the truth (0.6) with seasons.
+    from builders import seasonal_panel
+
+    def by_calendar(seen):
+        if seen.quarter % 4 == 0:
+            return seen.in_play.copy()
+        return seen.in_play & (seen.rng.random(len(seen.in_play)) < 0.3)
+
+    panel = seasonal_panel(6_000, seed=13, rule=by_calendar)
+    seasonal = fit_model(panel)
+    assert seasonal.mailing_check.followed_rules and seasonal.mailing_check.strongest_predictor == "quarter_of_year"
+    assert any(w.startswith("mailing followed the quarter of the year") for w in seasonal.warnings)
+    assert not any("rather than chance" in w for w in seasonal.warnings)
+    assert abs(seasonal.churn.rho - 0.6) < 4 * seasonal.churn.std_errors["rho"]
+    plain = fit_model(panel, seasons=False)
+    assert any("rather than chance" in w for w in plain.warnings)

@@ -119,6 +119,20 @@ def mailing_rules_warning(check: MailingCheck) -> str:
     )
 
 
+CALENDAR_RULES_NOTE = (
+    "mailing followed the quarter of the year (not recency or frequency), which the seasonal model accounts for: "
+    "rho is estimated within each quarter of the year; a randomised no-mail control cell (lapsewise control-cell) still checks it"
+)
+
+
+def calendar_only(check: MailingCheck) -> bool:
+    """True when the mailing's rules are the calendar's alone: recency and frequency each explain under the threshold."""
+    from lapsewise.model.mailing_check import EXPLAINED_SHARE_THRESHOLD
+
+    shares = check.explained_share_by_predictor
+    return all((shares.get(name) or 0.0) < EXPLAINED_SHARE_THRESHOLD for name in ("recency", "frequency"))
+
+
 def fit_model(panel: Panel, summary: CustomerSummary | None = None, seasons: bool = True) -> Model:
     """Fit the hidden-churn model on the panel's compressed histories and the gamma-gamma model on its repeat customers.
 
@@ -140,7 +154,10 @@ def fit_model(panel: Panel, summary: CustomerSummary | None = None, seasons: boo
     if not rho_estimable:
         warnings.append(RHO_NOT_ESTIMABLE)
     elif check is not None and check.followed_rules:
-        warnings.append(mailing_rules_warning(check))
+        if churn.seasons is not None and calendar_only(check):
+            warnings.append(CALENDAR_RULES_NOTE)
+        else:
+            warnings.append(mailing_rules_warning(check))
     return Model(
         churn=churn,
         spend=spend,
