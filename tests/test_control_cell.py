@@ -10,7 +10,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from builders import synthetic_values
-from lapsewise.budget.control_cell import Z_95, cell_size, draw_control_cell, proportional_allocation, ratio_half_width
+from lapsewise.budget.control_cell import Z_95, cell_size, draw_control_cell, eligible_customers, proportional_allocation, ratio_half_width
 from lapsewise.budget.control_reading import cell_counts, ratio_estimate, read_control_cell
 from lapsewise.data.panel import Panel
 from lapsewise.errors import InputError
@@ -281,3 +281,26 @@ def test_simulated_cells_cover_the_true_rho_at_the_nominal_rate():
     assert 0.90 <= covered.mean() <= 0.99, covered.mean()
     assert abs(np.mean(Z_95 * se) / precision - 1) < 0.15, np.mean(Z_95 * se)
     print(f"coverage {covered.mean():.3f}, mean half-width {np.mean(Z_95 * se):.4f}, mean rho {rho.mean():.4f}, cell {cells[0].customers_in_cell}")
+
+
+def test_a_seasonal_model_sizes_the_cell_at_the_next_quarters_multiplier():
+    # The values plan an average quarter; the cell is sized with the chance of an order next quarter if mailed, which
+    # with seasons carries the next quarter's multiplier. small_panel's as-of quarter is 100, so the next is quarter
+    # 101, the second of the year (multiplier 0.4 here, against a mean of 0.75): the planned rate is lower and the
+    # cell larger than the average quarter would make it.
+    from builders import MODEL, POLICY, small_panel
+    from lapsewise.app import pipeline
+    from lapsewise.data.histories import compress
+    from lapsewise.model.posterior import posterior
+
+    panel = small_panel(2_000, seed=5)
+    seasonal = replace(MODEL, churn=replace(MODEL.churn, seasons=(1.0, 0.4, 0.9, 0.7)))
+    inputs = pipeline.PlanInputs(seasonal, POLICY, panel, pipeline.value_customers(seasonal, panel, POLICY), None)
+    cell = pipeline.control_cell(inputs, 0.25, seed=2)
+    eligible = eligible_customers(inputs.values)
+    histories = compress(panel, seasons=True)
+    rho = MODEL.churn.rho if POLICY.economics.unmailed_response is None else POLICY.economics.unmailed_response
+    p_buy = posterior(replace(seasonal.churn.process, rho=rho), histories).p_buy[histories.inverse]
+    assert len(cell.customer_ids) == cell_size(rho, float(p_buy[eligible].mean()), int(eligible.sum()), 0.25)
+    averaged = draw_control_cell(inputs.values, 0.25, rho, "test", seed=2)
+    assert len(cell.customer_ids) > len(averaged.customer_ids)

@@ -10,7 +10,7 @@ them together.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Callable
 
@@ -314,10 +314,19 @@ def planning_rho(model: Model, policy: Policy) -> tuple[float, str]:
 
 
 def control_cell(inputs: PlanInputs, precision: float, seed: int) -> ControlCell:
-    """This quarter's randomised no-mail cell among the customers the policy would mail."""
+    """This quarter's randomised no-mail cell among the customers the policy would mail.
+
+    The cell is sized with the eligible customers' chance of an order next quarter if mailed; with a seasonal model
+    that is the seasonal posterior's, at the next quarter's multiplier (the values plan an average quarter)."""
     check_precision(precision)
     rho, source = planning_rho(inputs.model, inputs.policy)
-    return draw_control_cell(inputs.values, precision, rho, source, seed)
+    values = inputs.values
+    churn = inputs.model.churn
+    if churn.process.seasonal:
+        process = replace(churn.process, rho=rho)
+        histories = compress(inputs.panel, seasons=True)
+        values = replace(values, p_buy=posterior(process, histories).p_buy[histories.inverse])
+    return draw_control_cell(values, precision, rho, source, seed)
 
 
 def read_control_counts(panel: Panel, path: str | Path, columns: dict | None, orders_name: str) -> CellCounts:
