@@ -94,6 +94,35 @@ class SeasonalExpansion:
         """Quadrature nodes: exact for the polynomials of degree up to max_quarter + 1 (the next purchase included)."""
         return (self.max_quarter + 1) // 2 + 2
 
+    @functools.cached_property
+    def state_groups(self) -> "StateGroups":
+        """The states grouped by the nodes their degree needs, laid out once for every evaluation of a fit."""
+        return StateGroups.of(self.states, self.nodes)
+
+
+@dataclass(frozen=True)
+class StateGroups:
+    """States grouped by the fewest quadrature nodes exact for their degree (``x + sum_k m_k``): ``sizes[g]``
+    nodes for the rows ``members[g]``, whose counts (as floats) are ``counts[g]``."""
+
+    sizes: tuple[int, ...]
+    members: tuple[np.ndarray, ...]
+    counts: tuple[np.ndarray, ...]
+    rows: int
+
+    @classmethod
+    def of(cls, states: np.ndarray, nodes: int) -> "StateGroups":
+        sizes = _node_groups(int(nodes))
+        group = np.searchsorted(sizes, states.sum(axis=1) // 2 + 1)  # J nodes are exact up to degree 2J - 1
+        members = [np.flatnonzero(group == index) for index in range(len(sizes))]
+        kept = [i for i, m in enumerate(members) if len(m)]
+        return cls(
+            sizes=tuple(sizes[i] for i in kept),
+            members=tuple(members[i] for i in kept),
+            counts=tuple(states[members[i]].astype(float) for i in kept),
+            rows=len(states),
+        )
+
 
 def base_class_counts(histories: Histories) -> np.ndarray:
     """Silent quarters 1..t_x of every class, shape (histories, CLASSES)."""
@@ -218,7 +247,7 @@ def node_sensitivities(alpha: float, beta: float, nodes: int) -> tuple[np.ndarra
     return tuple(slopes)
 
 
-def log_state_moments(states: np.ndarray, alpha: float, beta: float, c: np.ndarray, nodes: int, gradient: bool = False):
+def log_state_moments(states: "np.ndarray | StateGroups", alpha: float, beta: float, c: np.ndarray, nodes: int, gradient: bool = False):
     """``log E_p[p^x prod_k (1 - c_k p)^m_k]`` for each state row (x, m_1..m_8), by quadrature; exact (module docstring).
 
     With ``gradient`` also the derivatives by (alpha, beta, c_1..c_8), shape (states, 2 + CLASSES). Those by
@@ -229,18 +258,14 @@ def log_state_moments(states: np.ndarray, alpha: float, beta: float, c: np.ndarr
 
     A state's integrand has degree ``x + sum_k m_k``, and ``J`` nodes are exact up to degree ``2J - 1``, so the
     states are integrated in groups by degree, each with the fewest nodes exact for it (at most ``nodes``):
-    the work grows with the states' own lengths, not the longest history's.
+    the work grows with the states' own lengths, not the longest history's. ``states`` may be given already
+    grouped (:class:`StateGroups`).
     """
-    counts = states.astype(float)
-    value = np.empty(len(states))
-    d = np.empty((len(states), 2 + CLASSES)) if gradient else None
-    sizes = _node_groups(int(nodes))
-    group = np.searchsorted(sizes, states.sum(axis=1) // 2 + 1)  # the fewest nodes exact for each state's degree
-    for index, size in enumerate(sizes):
-        members = np.flatnonzero(group == index)
-        if len(members) == 0:
-            continue
-        result = _integrate(counts[members], alpha, beta, c, size, gradient)
+    groups = states if isinstance(states, StateGroups) else StateGroups.of(np.asarray(states), nodes)
+    value = np.empty(groups.rows)
+    d = np.empty((groups.rows, 2 + CLASSES)) if gradient else None
+    for size, members, counts in zip(groups.sizes, groups.members, groups.counts):
+        result = _integrate(counts, alpha, beta, c, size, gradient)
         if gradient:
             value[members], d[members] = result
         else:
@@ -294,8 +319,8 @@ def _moments_and_derivatives(expansion: SeasonalExpansion, process: Process, gra
     c = class_multipliers(process)
     nodes = expansion.nodes
     if not gradient:
-        return log_state_moments(expansion.states, process.alpha, process.beta, c, nodes)
-    value, d_all = log_state_moments(expansion.states, process.alpha, process.beta, c, nodes, gradient=True)
+        return log_state_moments(expansion.state_groups, process.alpha, process.beta, c, nodes)
+    value, d_all = log_state_moments(expansion.state_groups, process.alpha, process.beta, c, nodes, gradient=True)
     d_c = d_all[:, 2:]
     d = np.zeros((len(value), 7))
     d[:, :2] = d_all[:, :2]
@@ -466,15 +491,21 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") 
     # The reference quarter, chosen on the sample (the whole base when small).
     tried: dict[int, optimum.Optimum] = {}
     reference = int(np.argmax(rates))
+    previous = None
     while reference not in tried:
         layout = _Layout(mailing_history, reference)
-        ratios = np.clip(rates / rates[reference], 0.05, 0.99)
-        starts = [
-            layout.coordinates(dataclasses.replace(start, seasons=tuple(float(r) for r in ratios))),
-            layout.coordinates(dataclasses.replace(start, seasons=(0.9,) * 4)),
-        ]
+        if previous is None:
+            ratios = np.clip(rates / rates[reference], 0.05, 0.99)
+            starts = [
+                layout.coordinates(dataclasses.replace(start, seasons=tuple(float(r) for r in ratios))),
+                layout.coordinates(dataclasses.replace(start, seasons=(0.9,) * 4)),
+            ]
+        else:  # from the last optimum, its multipliers over the new reference's (which reached 1 there)
+            scaled = np.asarray(previous.seasons) / previous.seasons[reference]
+            starts = [layout.coordinates(dataclasses.replace(previous, seasons=tuple(float(v) for v in np.minimum(scaled, 0.99))))]
         tried[reference] = optimum.minimize(layout.objective(sample), starts, layout.bounds, sample_customers, _SCOUT_STEPS, projected=True)
-        seasons = layout.process(tried[reference].x).seasons
+        previous = layout.process(tried[reference].x)
+        seasons = previous.seasons
         top = [q for q in range(4) if q != reference and seasons[q] >= 1.0 - _AT_ONE]
         if not top:
             break
