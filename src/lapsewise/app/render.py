@@ -96,12 +96,15 @@ def _estimate(value: float | None, error: float | None) -> tuple[str, str]:
 def print_model(console: Console, model, curves) -> None:
     """Parameters, fit quality, spend model and the lapse curves of a fitted model."""
     churn = model.churn
-    table = Table(title="Hidden-churn model (BG/BB with mailing response)", title_justify="left")
+    seasonal = churn.seasons is not None
+    title = "Hidden-churn model (BG/BB with mailing response" + (" and seasons)" if seasonal else ")")
+    table = Table(title=title, title_justify="left")
     for column in ("Parameter", "Estimate", "Std. error", "Meaning"):
         table.add_column(column, justify="right" if column in ("Estimate", "Std. error") else "left")
     mean_p, mean_theta = churn.process.mean_p, churn.process.mean_theta
     meanings = {
-        "alpha": f"purchase probability p ~ Beta(alpha, beta); mean p = {mean_p:.3f} per mailed quarter",
+        "alpha": f"purchase probability p ~ Beta(alpha, beta); mean p = {mean_p:.3f} per mailed quarter"
+        + (" of the busiest season" if seasonal else ""),
         "beta": "",
         "gamma": f"churn probability theta ~ Beta(gamma, delta); mean theta = {mean_theta:.3f} per quarter",
         "delta": "",
