@@ -165,3 +165,17 @@ def test_seasons_without_evidence_are_not_significant():
     fitted = fit_seasons(compress(panel, seasons=True), True, plain)
     assert fitted.season_test["statistic"] < stats.chi2.ppf(0.999, 3)
     assert fitted.log_likelihood >= plain.log_likelihood - 1e-6
+
+
+@pytest.mark.parametrize("phase", [0, 1, 2, 3])
+def test_the_seasonal_likelihoods_of_every_possible_history_sum_to_one(phase):
+    # A probability model: over all 2^6 purchase patterns of quarters 1..6 (quarter 0 is the first purchase), with a
+    # fixed mail pattern, the likelihoods of the histories must sum to 1 (the law of total probability).
+    import itertools
+
+    mailed = [0, 1, 0, 1, 1, 0, 1]
+    patterns = np.array([[1, *bits] for bits in itertools.product([0, 1], repeat=6)], dtype=np.uint8)
+    histories = compress_arrays(history_arrays(patterns, np.tile(np.array(mailed, dtype=np.uint8), (len(patterns), 1)), np.full(len(patterns), 6), np.full(len(patterns), phase)))
+    rows, _ = evaluate_seasonal(expand_seasonal(histories), PROCESS)
+    assert histories.size == 64
+    assert_allclose(np.exp(rows).sum(), 1.0, rtol=1e-12)
