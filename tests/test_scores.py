@@ -51,3 +51,29 @@ def test_dert_at_a_zero_discount_rate_is_refused_when_it_is_infinite_and_given_w
     assert np.isfinite(scores["dert"]).all()
     # Undiscounted, DERT is at least the expected orders over any finite stretch.
     assert (scores["dert"] >= score_customers(finite, panel, horizon=40, annual_discount_rate=0.0)["expected_orders"] - 1e-9).all()
+
+
+def test_a_model_without_rho_refuses_to_score_unmailed_quarters():
+    # A model fitted on a file that mailed every quarter has no rho; scoring a panel whose customers were held in
+    # some quarters would count those quarters as mailed, so it is refused (one line); the all-mailed panel scores.
+    import dataclasses
+
+    import pytest
+
+    from lapsewise.errors import InputError
+    from lapsewise.evaluate.backtest import run_backtest
+    from lapsewise.model.fitted import fit_model
+
+    all_mailed = simulated_panel(2_000, seed=4, lapse_after=None)
+    model = fit_model(all_mailed, seasons=False)
+    assert not model.rho_estimable
+    assert len(score_customers(model, all_mailed)) == all_mailed.customers
+    held = simulated_panel(2_000, seed=4)
+    with pytest.raises(InputError, match=r"could not estimate rho .* unmailed"):
+        score_customers(model, held)
+    # The backtest's calibration quarters all mailed, a holdout quarter with held customers: refused too.
+    mailed = all_mailed.mailed.copy()
+    rows = np.arange(all_mailed.customers)
+    mailed[rows[::3], all_mailed.n[::3]] = 0  # a third of the customers held in their last quarter
+    with pytest.raises(InputError, match="--holdout-quarters 1: the model could not estimate rho"):
+        run_backtest(dataclasses.replace(all_mailed, mailed=mailed), 1, seasons=False)

@@ -30,6 +30,7 @@ from lapsewise.data.quarters import quarter_label
 from lapsewise.data.summary import DEFAULT_FREQUENCY_BANDS, band_labels, band_of, summarize
 from lapsewise.errors import InputError
 from lapsewise.model.fitted import Model, fit_model
+from lapsewise.model.scores import check_unmailed_quarters
 from lapsewise.model.posterior import posterior
 from lapsewise.model.process import Process
 
@@ -131,6 +132,7 @@ def run_backtest(panel: Panel, holdout_quarters: int, seasons: bool = True) -> B
         )
     calibration = truncate(panel, calibration_end)
     model = fit_model(calibration, seasons=seasons)
+    check_unmailed_quarters(model, panel, f"--holdout-quarters {holdout_quarters}")
     known = select(panel, panel.first_quarter <= calibration_end)
     columns = (calibration_end - known.first_quarter)[:, None] + 1 + np.arange(holdout_quarters)[None, :]
     purchased = np.take_along_axis(known.purchased, columns, axis=1).astype(bool)

@@ -41,6 +41,7 @@ def score_customers(model: Model, panel: Panel, horizon: int = 4, annual_discoun
             f"--annual-discount-rate 0: DERT is infinite for this model (gamma = {process.gamma:.3g} is at most 1, so the "
             "undiscounted expected orders never converge); give a discount rate above 0"
         )
+    check_unmailed_quarters(model, panel)
     histories = compress(panel, seasons=process.seasonal)
     post = posterior(process, histories)
     summary = summarize(panel)
@@ -63,6 +64,23 @@ def score_customers(model: Model, panel: Panel, horizon: int = 4, annual_discoun
             "expected_order_value": value,
         }
     )
+
+
+def check_unmailed_quarters(model: Model, panel: Panel, what: str = "scoring") -> None:
+    """Refuse to read unmailed quarters with a model that has no rho for them.
+
+    A model fitted on a mailings file that mailed every quarter has no rho (``rho_estimable`` False); its
+    posterior counts every quarter as mailed, which is wrong for a panel whose customers were held in some.
+    """
+    if model.rho_estimable or not panel.mailing_history:
+        return
+    observed = (np.arange(panel.mailed.shape[1])[None, :] >= 1) & (np.arange(panel.mailed.shape[1])[None, :] <= panel.n[:, None])
+    unmailed = int((observed & (panel.mailed == 0)).sum())
+    if unmailed:
+        raise InputError(
+            f"{what}: the model could not estimate rho (every quarter it was fitted on was mailed), but these mailings leave "
+            f"{unmailed:,} customer-quarters unmailed; fit the model on these orders and mailings, which show how held customers order"
+        )
 
 
 def lapse_curves(model: Model, summary: CustomerSummary, max_silent: int = 12, bands: tuple[int, ...] = DEFAULT_FREQUENCY_BANDS) -> pd.DataFrame:
