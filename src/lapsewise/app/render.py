@@ -117,7 +117,7 @@ def print_model(console: Console, model, curves) -> None:
     if churn.seasons is not None:
         for q, multiplier in enumerate(churn.seasons):
             error = churn.std_errors.get(f"season_{q + 1}")
-            meaning = "multiplier of p in quarter {} of the year".format(q + 1) + (" (the largest, fixed at 1)" if error is None and multiplier == 1.0 else "")
+            meaning = f"multiplier of p in quarter {q + 1} of the year" + (" (the largest, fixed at 1)" if error is None and multiplier == 1.0 else "")
             table.add_row(f"season_{q + 1}", f"{multiplier:.4g}", "-" if error is None else f"{error:.3g}", meaning)
     console.print(table)
     console.print(

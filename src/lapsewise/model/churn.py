@@ -89,6 +89,11 @@ class ChurnFit:
     seasons: tuple[float, float, float, float] | None = None
     season_test: dict | None = None
 
+    @classmethod
+    def of(cls, process: Process, **facts) -> "ChurnFit":
+        """A fit with the parameters of ``process`` (its seasons included) and the other fields from ``facts``."""
+        return cls(alpha=process.alpha, beta=process.beta, gamma=process.gamma, delta=process.delta, rho=process.rho, seasons=process.seasons, **facts)
+
     @property
     def process(self) -> Process:
         """The fitted process (the estimates without their errors)."""
@@ -394,7 +399,7 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
     fitted = _unpack(best.x, mailing_history)
     names = PARAMETERS if mailing_history else PARAMETERS[:4]
     on_bound = on_bounds(best.x, bounds, names)
-    warnings = [f"{name} sits on the bound of its range; its value and standard error are not reliable" for name in on_bound]
+    warnings = bound_warnings(on_bound)
     unidentified = []
     if mailing_history and not has_unmailed_quarter(histories):
         unidentified.append("rho")
@@ -406,12 +411,8 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
         warnings.append(f"only {repeaters} customers have a repeat purchase; the estimates rest on thin data")
     if not best.converged:
         warnings.append(f"the optimiser did not report convergence ({best.message})")
-    return ChurnFit(
-        alpha=fitted.alpha,
-        beta=fitted.beta,
-        gamma=fitted.gamma,
-        delta=fitted.delta,
-        rho=fitted.rho,
+    return ChurnFit.of(
+        fitted,
         std_errors=dict(zip(names, errors)),
         log_likelihood=-best.fun * customers,
         customers=customers,
@@ -475,6 +476,11 @@ def sample_histories(histories: Histories, size: int) -> Histories:
 def has_unmailed_quarter(histories: Histories) -> bool:
     after_unmailed = histories.after_last.sum(axis=1) < histories.silent_quarters
     return bool(((histories.unmailed_silent > 0) | (histories.x_unmailed > 0) | after_unmailed).any())
+
+
+def bound_warnings(names: list[str]) -> list[str]:
+    """The warning for each parameter that ended on the bound of its search range."""
+    return [f"{name} sits on the bound of its range; its value and standard error are not reliable" for name in names]
 
 
 def on_bounds(theta: np.ndarray, bounds: list[tuple[float, float]], names: tuple[str, ...]) -> list[str]:

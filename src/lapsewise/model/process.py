@@ -58,11 +58,14 @@ class Process:
         """True when some quarter of the year has a multiplier other than 1."""
         return self.seasons is not None and any(s != 1.0 for s in self.seasons)
 
-    def season(self, quarter_of_year) -> "float | np.ndarray":
-        """The multiplier of a quarter of the year (0-3; arrays work too); 1 without seasons."""
-        if self.seasons is None:
-            return np.ones_like(quarter_of_year, dtype=float) if isinstance(quarter_of_year, np.ndarray) else 1.0
-        return np.asarray(self.seasons, dtype=float)[np.asarray(quarter_of_year) % 4] if isinstance(quarter_of_year, np.ndarray) else float(self.seasons[int(quarter_of_year) % 4])
+    @property
+    def multipliers(self) -> np.ndarray:
+        """The four multipliers by quarter of the year (all 1 without seasons)."""
+        return np.asarray(self.seasons if self.seasons is not None else (1.0,) * 4, dtype=float)
+
+    def season(self, quarter_of_year):
+        """The multiplier of a quarter of the year (any integer, or an array of them: taken modulo 4)."""
+        return self.multipliers[np.asarray(quarter_of_year) % 4]
 
     def without_seasons(self) -> "Process":
         """The same process with every quarter alike (multiplier 1)."""

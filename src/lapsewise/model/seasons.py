@@ -44,9 +44,11 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import linalg, sparse, special
+from scipy import linalg, sparse, special, stats
 
 from lapsewise.data.histories import Histories, season_quarters
+from lapsewise.model import optimum
+from lapsewise.model.churn import ChurnFit, bound_warnings, has_unmailed_quarter, on_bounds, sample_histories
 from lapsewise.model.moments import history_sums, theta_factors
 from lapsewise.model.process import Process
 
@@ -59,7 +61,7 @@ _CHUNK = 100_000  # states integrated at a time (a states x nodes array per chun
 
 def class_multipliers(process: Process) -> np.ndarray:
     """``c_k`` of every class: ``s_q`` when mailed, ``rho s_q`` when not (rho None: every quarter counts as mailed)."""
-    seasons = np.asarray(process.seasons if process.seasons is not None else (1.0,) * 4, dtype=float)
+    seasons = process.multipliers
     c = np.empty(CLASSES)
     c[1::2] = seasons
     c[0::2] = seasons * process.unmailed_response
@@ -324,7 +326,7 @@ def _moments_and_derivatives(expansion: SeasonalExpansion, process: Process, gra
     d_c = d_all[:, 2:]
     d = np.zeros((len(value), 7))
     d[:, :2] = d_all[:, :2]
-    seasons = np.asarray(process.seasons if process.seasons is not None else (1.0,) * 4)
+    seasons = process.multipliers
     rho = process.unmailed_response
     d[:, 2] = d_c[:, 0::2] @ seasons  # c of the unmailed classes is rho s_q
     d[:, 3:] = d_c[:, 1::2] + d_c[:, 0::2] * rho
@@ -333,7 +335,7 @@ def _moments_and_derivatives(expansion: SeasonalExpansion, process: Process, gra
 
 def purchase_factor(expansion: SeasonalExpansion, process: Process) -> np.ndarray:
     """log of the purchases' own multipliers: sum_q x_q log s_q + x_unmailed log rho."""
-    seasons = np.asarray(process.seasons if process.seasons is not None else (1.0,) * 4)
+    seasons = process.multipliers
     logs = np.append(np.log(seasons), math.log(process.rho) if process.rho is not None and process.rho > 0 else (0.0 if process.rho is None else -np.inf))
     with np.errstate(invalid="ignore"):
         product = expansion.purchases * logs[None, :]
@@ -366,7 +368,7 @@ def evaluate_seasonal(expansion: SeasonalExpansion, process: Process, gradient: 
     d_alpha, d_beta, d_rho, *d_seasons = by_state @ d_moments
     d_gamma, d_delta = by_theta @ d_theta
     counted = hist.count @ expansion.purchases  # purchases by quarter of the year, and unmailed, over all customers
-    seasons = np.asarray(process.seasons if process.seasons is not None else (1.0,) * 4)
+    seasons = process.multipliers
     d_seasons = np.asarray(d_seasons) + counted[:4] / seasons
     if process.rho is not None and process.rho > 0:
         d_rho += counted[4] / process.rho
@@ -452,7 +454,7 @@ class _Layout:
         return objective
 
 
-def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") -> "ChurnFit":
+def fit_seasons(histories: Histories, mailing_history: bool, plain: ChurnFit) -> ChurnFit:
     """Maximum-likelihood fit of the seasonal model, with the likelihood-ratio test against ``plain`` (the fit without seasons).
 
     The multipliers are scaled so that the largest is 1: the search holds one
@@ -473,10 +475,6 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") 
     within 2.5% of the full ones on simulated bases, see ``tests/bench/README.md``).
     Returns ``plain`` with a warning when some quarter of the year has no purchase.
     """
-    from lapsewise.model.churn import ChurnFit, has_unmailed_quarter, on_bounds, sample_histories
-    from lapsewise.model import optimum
-    from scipy import stats
-
     rates = season_rates(histories)
     if not np.all(np.isfinite(rates)) or np.any(rates <= 0):
         missing = [f"quarter {q + 1}" for q in range(4) if not (np.isfinite(rates[q]) and rates[q] > 0)]
@@ -532,7 +530,7 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") 
     # A multiplier at 1 is not on a bound of the model (the scaling puts the largest there); at 0.001 it is.
     on_bound = [name for name in on_bounds(best.x, layout.bounds, names) if not (name.startswith("season") and process.seasons[int(name[-1]) - 1] >= 0.5)]
     warnings = [w for w in plain.warnings if "sits on the bound" not in w]
-    warnings += [f"{name} sits on the bound of its range; its value and standard error are not reliable" for name in on_bound]
+    warnings += bound_warnings(on_bound)
     if not best.converged:
         warnings.append(f"the optimiser did not report convergence with seasons ({best.message})")
     unidentified = ["rho"] if mailing_history and not has_unmailed_quarter(histories) else []
@@ -549,18 +547,13 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: "ChurnFit") 
         "log_likelihood_without": plain.log_likelihood,
     }
     names_out = PARAMETERS if mailing_history else tuple(n for n in PARAMETERS if n != "rho")
-    return ChurnFit(
-        alpha=process.alpha,
-        beta=process.beta,
-        gamma=process.gamma,
-        delta=process.delta,
-        rho=process.rho,
+    return ChurnFit.of(
+        process,
         std_errors={name: errors.get(name) for name in names_out},  # None for the multipliers held at 1
         log_likelihood=log_likelihood,
         customers=int(customers),
         histories=histories.size,
         converged=best.converged,
         warnings=tuple(warnings),
-        seasons=process.seasons,
         season_test=test,
     )
