@@ -140,7 +140,7 @@ def test_mail_list_writes_the_columns_in_order_and_honours_suppression(demo_dir,
     assert result.returncode == 0, result.stderr
 
     rows = pd.read_csv(out)
-    assert list(rows.columns) == ["customer_id", "segment", "version", "p_alive", "p_buy", "value_of_mailing", "decision", "rule"]
+    assert list(rows.columns) == ["customer_id", "segment", "version", "p_alive", "p_buy", "value_of_mailing", "value_low", "value_high", "may_flip", "decision", "rule"]
     assert set(rows.loc[rows.customer_id.isin(suppressed_ids), "decision"]) == {"suppressed"}
     # No budget: everyone worth mailing and not suppressed is mailed.
     assert (rows.loc[(rows.value_of_mailing > 0) & (rows.decision != "suppressed"), "decision"] == "mail").all()

@@ -18,7 +18,7 @@ def test_model_file_round_trip_and_keys(tmp_path):
     model = fit_model(panel)
     data = model.to_dict()
     # The keys the model file promises (issue text: churn parameters with published names, spend, fit facts).
-    assert set(data["churn"]) == {"alpha", "beta", "gamma", "delta", "rho", "seasons", "std_errors"}
+    assert set(data["churn"]) == {"alpha", "beta", "gamma", "delta", "rho", "seasons", "std_errors", "covariance"}
     for key in ("spend", "log_likelihood", "customers", "as_of", "mailing_history"):
         assert key in data
     path = tmp_path / "model.json"

@@ -30,7 +30,7 @@ def test_customer_values_side_by_side_equal_the_stages_in_turn():
         members = states.in_band(index)
         program = band_program(process, POLICY, band.order_value, states, members)
         values[members] = band_values(program, POLICY, states, members, post.alive_now[states.history[members]])
-    theirs = customer_values(panel.customer_ids, summary, POLICY, histories, post, states, values)
+    theirs = customer_values(panel.customer_ids, summary, POLICY, histories, post, values[states.inverse])
     assert_allclose(ours.values, theirs.values, rtol=0, atol=0)
     assert (ours.segment == theirs.segment).all() and np.array_equal(ours.p_buy, theirs.p_buy)
 

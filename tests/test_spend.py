@@ -298,7 +298,7 @@ def test_to_dict_round_trips_through_json(recovery):
     data = fit.to_dict()
     assert set(data) == {
         "p", "q", "gamma", "std_errors", "log_likelihood", "customers",
-        "converged", "frequency_value_correlation", "warnings",
+        "converged", "frequency_value_correlation", "warnings", "covariance",
     }
     text = json.dumps(data, allow_nan=False)
     again = SpendFit.from_dict(json.loads(text))

@@ -144,6 +144,13 @@ def demo(
 OrdersArgument = typer.Argument(..., help="Orders file (CSV or Parquet): customer_id, order_date, amount.")
 ForceOption = typer.Option(False, "--force", help="Overwrite the output file if it exists.")
 JsonOption = typer.Option(False, "--json", help="Print machine-readable JSON instead of tables.")
+DEFAULT_DRAWS = 20
+DrawsOption = typer.Option(
+    DEFAULT_DRAWS, "--draws", min=0, max=1000,
+    help="Draws of the parameters from the fit's standard errors (normal on log and logit scales); 0 uses the estimates alone.",
+)
+DrawSeedOption = typer.Option(1, "--seed", min=0, max=2**32 - 1, help="Seed of the parameter draws (0 to 4294967295).")
+PlugInOption = typer.Option(False, "--plug-in", help="Decide at the parameter estimates alone (no draws): faster, blind to how sure they are.")
 
 
 NoSeasonsOption = typer.Option(False, "--no-seasons", help="Fit the model without multipliers by quarter of the year.")
@@ -257,18 +264,23 @@ PolicyOption = typer.Option(..., "--policy", help="Policy file (TOML); see polic
 def stop_table(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     policy_file: Path = PolicyOption,
+    draws: int = DrawsOption,
+    seed: int = DrawSeedOption,
+    sensitivity: bool = typer.Option(
+        False, "--sensitivity", help="Also count the stop points that move when each parameter is two standard errors lower or higher (two tables per parameter)."
+    ),
     json_output: bool = JsonOption,
     overrides: dict | None = None,
 ) -> None:
-    """When to stop mailing a silent customer: the optimal stop point beside the breakeven rule's."""
+    """When to stop mailing a silent customer: the optimal stop point beside the breakeven rule's, with its range over draws of the parameters."""
     from lapsewise.model.fitted import load_model
 
     model = load_model(model_file)
     policy = pipeline.read_policy(policy_file, overrides)
     console = _console(json_output)
     with render.progress(console, 1, not json_output) as step:
-        with step("Solving the stop-rule program"):
-            table = pipeline.stop_table(model, policy)
+        with step("Solving the stop-rule program" + (f" at the estimates and {draws} draws of the parameters" if draws else "")):
+            table = pipeline.stop_table(model, policy, draws, seed, sensitivity)
     if json_output:
         typer.echo(dumps_stable(render.stop_table_json(table, model)), nl=False)
         return
@@ -308,6 +320,10 @@ def simulate(
     render.print_caution(console)
 
 
+def _valuing_step(draws: int) -> str:
+    return "Reading the files and valuing a mailing to every customer" + (f", at the estimates and {draws} draws of the parameters" if draws else "")
+
+
 RecurringOption = typer.Option(
     False, "--recurring-budget", help="The budget binds every quarter: value later pieces at piece cost plus its shadow price (re-solved until it settles)."
 )
@@ -331,15 +347,19 @@ def plan(
     segment_column: Optional[str] = SegmentColumnOption,
     frontier: bool = typer.Option(False, "--frontier", help="Also show expected value over a range of budgets."),
     recurring: bool = RecurringOption,
+    draws: int = DrawsOption,
+    seed: int = DrawSeedOption,
+    plug_in: bool = PlugInOption,
     columns: dict | None = None,
     json_output: bool = JsonOption,
     overrides: dict | None = None,
 ) -> None:
     """Spread a fixed mail budget across segments and versions (an integer program)."""
     console = _console(json_output)
+    draws = 0 if plug_in else draws
     with render.progress(console, 2, not json_output) as step:
-        with step("Reading the files and valuing a mailing to every customer"):
-            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
+        with step(_valuing_step(draws)):
+            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, seed)
         with step("Solving the budget integer program"):
             result, recurring_result = pipeline.budget_plan(inputs, budget, recurring, frontier_points=10 if frontier else 0)
     panel = inputs.panel
@@ -372,6 +392,9 @@ def mail_list_command(
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
     recurring: bool = RecurringOption,
+    draws: int = DrawsOption,
+    seed: int = DrawSeedOption,
+    plug_in: bool = PlugInOption,
     columns: dict | None = None,
     force: bool = ForceOption,
     overrides: dict | None = None,
@@ -379,9 +402,10 @@ def mail_list_command(
     """Write this quarter's mail list: one row per customer with the decision."""
     check_writable(out, force)
     console = _console()
+    draws = 0 if plug_in else draws
     with render.progress(console, 3) as step:
-        with step("Reading the files and valuing a mailing to every customer"):
-            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
+        with step(_valuing_step(draws)):
+            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, seed)
         with step("Solving the budget integer program"):
             result, recurring_result = pipeline.budget_plan(inputs, budget, recurring)
         with step("Writing the mail list"):
@@ -447,6 +471,9 @@ def report(
     mailings: Optional[Path] = MailingsOption,
     as_of: Optional[str] = AsOfOption,
     suppress: Optional[Path] = SuppressOption,
+    draws: int = DrawsOption,
+    seed: int = DrawSeedOption,
+    plug_in: bool = PlugInOption,
     columns: dict | None = None,
     force: bool = ForceOption,
     overrides: dict | None = None,
@@ -456,9 +483,10 @@ def report(
 
     check_writable(out, force)
     console = _console()
+    draws = 0 if plug_in else draws
     with render.progress(console, 2) as step:
-        with step("Valuing every customer, solving the stop table and plan, backtesting and simulating"):
-            results = report_page.collect(model_file, orders, policy_file, budget, mailings, as_of, suppress, columns, overrides)
+        with step("Valuing every customer" + (f" (at {draws} draws of the parameters)" if draws else "") + ", solving the stop table and plan, backtesting and simulating"):
+            results = report_page.collect(model_file, orders, policy_file, budget, mailings, as_of, suppress, columns, overrides, draws, seed)
         with step("Drawing the figures"):
             write_text_atomic(out, report_page.report_html(results), force)
     console.print(f"Report written to {out}.")

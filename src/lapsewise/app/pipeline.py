@@ -21,14 +21,14 @@ from lapsewise.budget.control_cell import ControlCell, check_precision, draw_con
 from lapsewise.budget.control_reading import CellCounts, ControlReading, cell_counts, read_control_cell
 from lapsewise.budget.integer_program import Plan, make_plan
 from lapsewise.budget.mail_list import mail_list
-from lapsewise.budget.values import CustomerValues, band_program, band_program_bytes, band_values, customer_order_values, customer_values, valued_states
+from lapsewise.budget.values import CustomerValues, averaged_values, band_program, band_program_bytes, band_values, customer_order_values, customer_values, valued_states
 from lapsewise.data.histories import compress
 from lapsewise.data.panel import Panel, panel_from_files
 from lapsewise.data.summary import CustomerSummary, summarize
 from lapsewise.data.suppression import Suppression, match_suppression
 from lapsewise.decide.order_values import spend_bands, typical_order_value
 from lapsewise.decide.program import check_unmailed_purchases, decision_process, program_bytes, workers
-from lapsewise.decide.stop_table import StopTable, build_stop_table
+from lapsewise.decide.stop_table import StopTable, build_stop_table, with_ranges, with_sensitivity
 from lapsewise.errors import InputError
 from lapsewise.machine import available_memory
 from lapsewise.evaluate.policies import Simulation, simulate_policies
@@ -39,6 +39,7 @@ from lapsewise.model.fitted import Model, fit_model, load_model
 from lapsewise.model.process import Process
 from lapsewise.model.posterior import posterior
 from lapsewise.model.scores import lapse_curves
+from lapsewise.model.uncertainty import Draws, model_draws, shifted_models
 
 
 def two_at_a_time(function: Callable, items) -> list:
@@ -112,13 +113,27 @@ def fit(panel: Panel, seasons: bool = True) -> Fitted:
 # ---------------------------------------------------------------- decisions
 
 
-def stop_table(model: Model, policy: Policy) -> StopTable:
-    """The stop table, the spend bands' programs two at a time when memory allows."""
+def stop_table(model: Model, policy: Policy, draws: int = 0, seed: int = 0, sensitivity: bool = False) -> StopTable:
+    """The stop table, the spend bands' programs two at a time when memory allows.
+
+    With ``draws``, the range of each stop point over that many draws of the parameters
+    (:func:`~lapsewise.model.uncertainty.model_draws`, seeded); with ``sensitivity``, how many stop points move
+    when each parameter is two standard errors lower or higher.
+    """
     economics = policy.economics
     size = program_bytes(economics.horizon_quarters, 2 * economics.horizon_quarters, 0, 0, economics.horizon_quarters)
-    return build_stop_table(
-        model.churn, model.spend, economics, policy.segments.spend_bands, each=side_by_side_if_they_fit([size]), rho_estimable=model.rho_estimable, policy_source=policy.source
-    )
+
+    def table(fitted: Model) -> StopTable:
+        return build_stop_table(
+            fitted.churn, fitted.spend, economics, policy.segments.spend_bands, each=side_by_side_if_they_fit([size]), rho_estimable=model.rho_estimable, policy_source=policy.source
+        )
+
+    point = table(model)
+    if draws:
+        point = with_ranges(point, [table(drawn) for drawn in model_draws(model, draws, seed).models])
+    if sensitivity:
+        point = with_sensitivity(point, [(name, error, table(lower), table(higher)) for name, error, lower, higher in shifted_models(model)])
+    return point
 
 
 def simulation(model: Model, policy: Policy, customers: int, quarters: int | None, seed: int) -> Simulation:
@@ -138,7 +153,13 @@ def simulation(model: Model, policy: Policy, customers: int, quarters: int | Non
 
 
 def value_customers(
-    model: Model, panel: Panel, policy: Policy, suppressed: np.ndarray | None = None, attribute: np.ndarray | None = None, budget_price: float = 0.0
+    model: Model,
+    panel: Panel,
+    policy: Policy,
+    suppressed: np.ndarray | None = None,
+    attribute: np.ndarray | None = None,
+    budget_price: float = 0.0,
+    draws: Draws | None = None,
 ) -> CustomerValues:
     """Every customer's value of mailing this quarter, per version.
 
@@ -146,36 +167,50 @@ def value_customers(
     the spend bands' programs (a band's program needs only the band's states; its
     values wait for the posterior); the programs two at a time when memory allows.
     ``budget_price`` is added to the cost of every later quarter's piece (a recurring budget's shadow price).
+    With ``draws``, the values are the mean over the drawn models, each valued the same way, and keep each
+    draw's difference from that mean (:func:`~lapsewise.budget.values.averaged_values`).
     """
     economics = policy.economics
-    process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
     with workers() as pool:
         summary_job = pool.submit(summarize, panel)
         histories = compress(panel)
         check_unmailed_purchases(model.churn, economics.unmailed_response, histories, policy.source)
-        posterior_job = pool.submit(posterior, process, histories)
         summary = summary_job.result()
-        bands = spend_bands(model.spend, economics, policy.segments.spend_bands)
-        states = valued_states(histories, bands, customer_order_values(model.spend, policy, summary))
-        values = np.empty((len(states.history), len(policy.versions)))
-        members = [states.in_band(index) for index in range(len(bands))]
+        states, values, post = _state_values(model, policy, histories, summary, pool, budget_price)
+        point = values[states.inverse]
+        drawn = [_state_values(fitted, policy, histories, summary, pool, budget_price) for fitted in (draws.models if draws else ())]
+    if draws:
+        point, spread = averaged_values(point, [values[states_d.inverse] for states_d, values, _ in drawn])
+    else:
+        spread = None
+    return customer_values(panel.customer_ids, summary, policy, histories, post, point, suppressed, attribute, spread)
 
-        def value_band(index: int) -> None:
-            if not members[index].any():
-                return
-            program = band_program(process, policy, bands[index].order_value, states, members[index], budget_price)
-            alive = posterior_job.result().alive_now[states.history[members[index]]]
-            values[members[index]] = band_values(program, policy, states, members[index], alive)
 
-        sizes = [band_program_bytes(process, policy, states, band) for band in members if band.any()]
-        if side_by_side_if_they_fit(sizes) is two_at_a_time:
-            for job in [pool.submit(value_band, index) for index in range(len(bands))]:
-                job.result()
-        else:
-            for index in range(len(bands)):
-                value_band(index)
-        post = posterior_job.result()
-    return customer_values(panel.customer_ids, summary, policy, histories, post, states, values, suppressed, attribute)
+def _state_values(model: Model, policy: Policy, histories, summary: CustomerSummary, pool, budget_price: float):
+    """The distinct (history, band) states, their values per version, and the posterior, under ``model``'s parameters."""
+    economics = policy.economics
+    process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
+    posterior_job = pool.submit(posterior, process, histories)
+    bands = spend_bands(model.spend, economics, policy.segments.spend_bands)
+    states = valued_states(histories, bands, customer_order_values(model.spend, policy, summary))
+    values = np.empty((len(states.history), len(policy.versions)))
+    members = [states.in_band(index) for index in range(len(bands))]
+
+    def value_band(index: int) -> None:
+        if not members[index].any():
+            return
+        program = band_program(process, policy, bands[index].order_value, states, members[index], budget_price)
+        alive = posterior_job.result().alive_now[states.history[members[index]]]
+        values[members[index]] = band_values(program, policy, states, members[index], alive)
+
+    sizes = [band_program_bytes(process, policy, states, band) for band in members if band.any()]
+    if side_by_side_if_they_fit(sizes) is two_at_a_time:
+        for job in [pool.submit(value_band, index) for index in range(len(bands))]:
+            job.result()
+    else:
+        for index in range(len(bands)):
+            value_band(index)
+    return states, values, posterior_job.result()
 
 
 def plan(values: CustomerValues, policy: Policy, budget: float | None, frontier_points: int = 0) -> Plan:
@@ -227,13 +262,20 @@ def budget_plan(inputs: "PlanInputs", budget: float | None, recurring: bool, fro
         return plan(inputs.values, inputs.policy, budget, frontier_points), None
     if budget is None:
         raise InputError("--recurring-budget: a budget that binds every quarter needs --budget, the quarter's amount")
-    recurring_result = recurring_budget_plan(inputs.model, inputs.panel, inputs.policy, budget, inputs.values, inputs.suppressed, inputs.attribute)
+    recurring_result = recurring_budget_plan(inputs.model, inputs.panel, inputs.policy, budget, inputs.values, inputs.suppressed, inputs.attribute, inputs.draws)
     chosen = recurring_result.plan if not frontier_points else plan(recurring_result.values, inputs.policy, budget, frontier_points)
     return chosen, recurring_result
 
 
 def recurring_budget_plan(
-    model: Model, panel: Panel, policy: Policy, budget: float, values: CustomerValues, suppressed: np.ndarray | None = None, attribute: np.ndarray | None = None
+    model: Model,
+    panel: Panel,
+    policy: Policy,
+    budget: float,
+    values: CustomerValues,
+    suppressed: np.ndarray | None = None,
+    attribute: np.ndarray | None = None,
+    draws: Draws | None = None,
 ) -> RecurringBudget:
     """Plan with a budget that binds every quarter: later pieces cost piece cost plus the budget's shadow price.
 
@@ -245,7 +287,7 @@ def recurring_budget_plan(
     price = max(float(plain.shadow_price or 0.0), 0.0)
     prices, current, current_values, settled = [price], plain, values, price == 0.0
     for _ in range(MAX_PRICE_ROUNDS if not settled else 0):
-        current_values = value_customers(model, panel, policy, suppressed, attribute, budget_price=price)
+        current_values = value_customers(model, panel, policy, suppressed, attribute, budget_price=price, draws=draws)
         current = plan(current_values, policy, budget)
         found = max(float(current.shadow_price or 0.0), 0.0)
         settled = abs(found - price) <= max(PRICE_TOLERANCE * price, 0.001)
@@ -269,6 +311,7 @@ class PlanInputs:
     values: CustomerValues
     suppression: Suppression | None
     attribute: np.ndarray | None = None
+    draws: Draws | None = None
 
     @property
     def suppressed(self) -> np.ndarray | None:
@@ -286,8 +329,11 @@ def plan_inputs(
     segment_column: str | None,
     columns: dict,
     overrides: dict | None,
+    draws: int = 0,
+    seed: int = 0,
 ) -> PlanInputs:
-    """Load everything a plan needs and value every customer (the stages, in order)."""
+    """Load everything a plan needs and value every customer (the stages, in order), averaged over ``draws`` draws
+    of the parameters (seeded; 0: at the estimates)."""
     model = load_model(model_file)
     policy = read_policy(policy_file, overrides)
     panel = read_panel(orders, mailings, as_of, model.fiscal_year_start, columns)
@@ -295,7 +341,8 @@ def plan_inputs(
     suppression = read_suppression(panel, suppress, columns["id_column"], str(orders), side)
     attribute = attribute_values(panel, attributes, segment_column, columns["id_column"], side)
     flags = None if suppression is None else suppression.flags
-    return PlanInputs(model, policy, panel, value_customers(model, panel, policy, flags, attribute), suppression, attribute)
+    drawn = model_draws(model, draws, seed) if draws else None
+    return PlanInputs(model, policy, panel, value_customers(model, panel, policy, flags, attribute, draws=drawn), suppression, attribute, drawn)
 
 
 # ---------------------------------------------------------------- the control cell

@@ -338,13 +338,15 @@ def print_stop_table(console: Console, table, model) -> None:
             grid.add_row(*line)
         console.print(grid)
         compare = Table(title=f"'{band.label}' spend: stop after ... silent quarters", title_justify="left")
-        for column in ("x, t_x", "Optimal", "Breakeven rule", "Optimal minus breakeven"):
+        headings = ["x, t_x", "Optimal"] + ([f"Range over {table.draws} draws", "Draws agreeing"] if table.draws else []) + ["Breakeven rule", "Optimal minus breakeven"]
+        for column in headings:
             compare.add_column(column, justify="left" if column.startswith("x") else "right")
         for x, t_x in shown:
             row = rows.loc[(band.label, x, t_x)]
             optimal, breakeven = int(row.stop_after), int(row.breakeven_stop_after)
             extra = "-" if optimal < 0 or breakeven < 0 else f"{optimal - breakeven:+d}"
-            compare.add_row(f"{x}, {t_x}", _stop_text(optimal, horizon), _stop_text(breakeven, horizon), extra)
+            spread = [_stop_range_text(int(row.stop_after_low), int(row.stop_after_high), horizon), f"{row.agreement:.0%}"] if table.draws else []
+            compare.add_row(f"{x}, {t_x}", _stop_text(optimal, horizon), *spread, _stop_text(breakeven, horizon), extra)
         console.print(compare)
         one_time = rows.loc[(band.label, 0, 0)]
         console.print(
@@ -356,6 +358,37 @@ def print_stop_table(console: Console, table, model) -> None:
         "covers the piece cost. The optimal rule also counts the future an order buys and, when held customers still order, "
         "only the orders the piece adds."
     )
+    if table.draws:
+        firm = float((table.rows["agreement"] >= 0.9).mean())
+        console.print(
+            f"Range = 5th to 95th percentile of the stop point over {table.draws} draws of the parameters from the fit's standard errors; "
+            f"{firm:.0%} of the stop points are firm (at least 90% of draws agree). Where they are not, more data (or a control cell, for rho) would settle them."
+        )
+    if table.sensitivity is not None:
+        print_stop_sensitivity(console, table.sensitivity)
+
+
+def print_stop_sensitivity(console: Console, sensitivity) -> None:
+    """How many stop points move when each parameter is two standard errors lower or higher."""
+    grid = Table(title="Stop points that move with each estimate (two standard errors either way)", title_justify="left")
+    for column in ("Parameter", "Standard error", "Moved when lower", "Moved when higher", "Of stop points"):
+        grid.add_column(column, justify="left" if column == "Parameter" else "right")
+    for row in sensitivity.itertuples():
+        grid.add_row(row.parameter, f"{row.std_error:.4g}", f"{row.moved_lower:,}", f"{row.moved_higher:,}", f"{row.stop_points:,}")
+    console.print(grid)
+    if len(sensitivity):
+        top = sensitivity.assign(moved=sensitivity.moved_lower + sensitivity.moved_higher).sort_values("moved", ascending=False, kind="stable").iloc[0]
+        console.print(
+            f"The decisions hang most on {top.parameter} ({int(top.moved):,} stop points move); firm it up first"
+            + (" (a randomised no-mail control cell measures rho)." if top.parameter == "rho" else " (more customers or a longer history).")
+        )
+
+
+def _stop_range_text(low: int, high: int, horizon: int) -> str:
+    """The range of a stop point over the draws, in silent quarters: one number when the ends agree, else low-high
+    ("all" for mailed throughout the horizon)."""
+    low_text, high_text = ("all" if v < 0 else str(v) for v in (low, high))
+    return low_text if low == high else f"{low_text}-{high_text}"
 
 
 def stop_table_json(table, model) -> dict:
@@ -375,8 +408,21 @@ def stop_table_json(table, model) -> dict:
                 "last_purchase_quarter": int(r.last_purchase_quarter),
                 "stop_after": None if r.stop_after < 0 else int(r.stop_after),
                 "breakeven_stop_after": None if r.breakeven_stop_after < 0 else int(r.breakeven_stop_after),
+                **(
+                    {
+                        "stop_after_low": None if r.stop_after_low < 0 else int(r.stop_after_low),
+                        "stop_after_high": None if r.stop_after_high < 0 else int(r.stop_after_high),
+                        "agreement": round(float(r.agreement), 4),
+                    }
+                    if table.draws
+                    else {}
+                ),
             }
             for r in table.rows.itertuples()
+        ],
+        "draws": table.draws,
+        "sensitivity": None if table.sensitivity is None else [
+            {k: (round(float(v), 6) if k == "std_error" else v) for k, v in row.items()} for row in table.sensitivity.to_dict(orient="records")
         ],
     }
 
@@ -468,6 +514,12 @@ def print_plan(console: Console, plan, panel, values) -> None:
         f"Spend {money(solution.spent)} of {money(plan.budget)} for an expected {money(plan.expected_profit)} over what holding would earn; "
         f"one more unit of budget is worth about {plan.shadow_price:.2f} (the budget's shadow price, by re-solving)."
     )
+    if plan.profit_range is not None:
+        low, high = plan.profit_range
+        console.print(
+            f"Over {len(plan.drawn_profits)} draws of the parameters the plan's value ranges from {money(low)} to {money(high)} "
+            f"(5th to 95th percentile); the decisions use the value averaged over the draws (--plug-in: the estimates alone)."
+        )
     if plan.frontier is not None:
         frontier = compact_table()
         frontier.add_column("Budget", justify="right")

@@ -111,9 +111,12 @@ def collect(
     suppress: str | Path | None,
     columns: dict,
     overrides: dict | None,
+    draws: int = 0,
+    seed: int = 0,
 ) -> ReportResults:
-    """Run the stages the report shows, through the pipeline, on the commands' inputs."""
-    inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, None, None, columns, overrides)
+    """Run the stages the report shows, through the pipeline, on the commands' inputs (the values averaged over
+    ``draws`` draws of the parameters, as ``plan`` does)."""
+    inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, None, None, columns, overrides, draws, seed)
     model, policy, panel = inputs.model, inputs.policy, inputs.panel
     return ReportResults(
         orders=str(orders),
@@ -391,6 +394,10 @@ def frontier_section(results: ReportResults) -> str:
         ["Shadow price (per unit of budget)", _number("plan.shadow_price", "-" if plan.shadow_price is None else f"{plan.shadow_price:.4f}")],
         ["Customers suppressed (never mailed)", _number("plan.suppressed", f"{results.values.suppressed_count:,}")],
     ]
+    if plan.profit_range is not None:
+        low, high = plan.profit_range
+        facts.append([f"Expected value, 5th to 95th percentile over {len(plan.drawn_profits)} draws of the parameters",
+                      _number("plan.expected_profit_range", f"{_money(low)} to {_money(high)}")])
     beside = _table(["The plan", "Currency units"], facts) + _table(["Budget", "Expected value"], rows, "The frontier (currency units)")
     if plan.budget is None:
         reading = f"Without a budget limit everyone worth mailing is mailed, for {_money(plan.solution.spent)} and an expected {_money(plan.expected_profit)}."
@@ -400,6 +407,9 @@ def frontier_section(results: ReportResults) -> str:
             f"holding; one more unit of budget is worth about {plan.shadow_price:.2f}."
         )
     note = "Expected value is net of piece costs and counts the future an order buys; each budget is a full solve of the budget program."
+    if plan.profit_range is not None:
+        note += (f" The values are averaged over {len(plan.drawn_profits)} draws of the parameters from the fit's standard errors "
+                 "(the frontier too); the range shows how far the plan's value could lie from its expectation.")
     return _section("frontier", frontier_figure(plan), html.escape(reading), beside, note)
 
 

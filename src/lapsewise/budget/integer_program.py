@@ -45,6 +45,7 @@ import pulp
 from lapsewise.budget.segments import categorical, grouped, segment_codes
 from lapsewise.budget.values import CustomerValues
 from lapsewise.errors import PlanError
+from lapsewise.model.uncertainty import RANGE
 from lapsewise.files.policy_file import Policy
 
 CHUNKS = 40
@@ -278,6 +279,15 @@ class Plan:
     assignment: np.ndarray  # per customer: version index, or -1
     setup_total: float
     rule: np.ndarray | None = None  # per customer: index into RULES of the rule that puts them out of value order
+    drawn_profits: np.ndarray | None = None  # per draw of the parameters: the plan's value under it (None at the estimates)
+
+    @property
+    def profit_range(self) -> tuple[float, float] | None:
+        """The 5th and 95th percentile of the plan's value over the draws of the parameters (None without draws)."""
+        if self.drawn_profits is None:
+            return None
+        low, high = np.quantile(self.drawn_profits, RANGE)
+        return float(low), float(high)
 
     @property
     def expected_profit(self) -> float:
@@ -297,6 +307,9 @@ class Plan:
             "expected_profit": round(self.expected_profit, 4),
             "shadow_price": None if self.shadow_price is None else round(self.shadow_price, 6),
             "solver": {"status": self.solution.status, "gap_tolerance": self.solution.gap_tolerance},
+            "draws": 0 if self.drawn_profits is None else len(self.drawn_profits),
+            "expected_profit_low": None if self.profit_range is None else round(self.profit_range[0], 4),
+            "expected_profit_high": None if self.profit_range is None else round(self.profit_range[1], 4),
             "segments": [
                 {
                     "segment": r.segment,
@@ -453,7 +466,9 @@ def make_plan(values: CustomerValues, policy: Policy, budget: float | None, fron
     frontier = None
     if frontier_points:
         frontier = budget_frontier(problem, frontier_points, budget)
-    return Plan(budget, solution, report, shadow, frontier, assigned.version, float(problem.setup_cost[solution.used].sum()), assigned.rule)
+    setup = float(problem.setup_cost[solution.used].sum())
+    drawn = float(report["expected_profit"].sum() - setup) + values.drawn_offsets(assigned.version) if values.draws else None
+    return Plan(budget, solution, report, shadow, frontier, assigned.version, setup, assigned.rule, drawn)
 
 
 def budget_frontier(problem: PlanProblem, points: int, budget: float | None = None) -> pd.DataFrame:

@@ -20,6 +20,11 @@ DECISIONS = ("mail", "stop", "over-budget", "suppressed")
 def mail_list(values: CustomerValues, assignment: np.ndarray, rule: np.ndarray | None = None) -> pd.DataFrame:
     """One row per customer: customer_id, segment, version, p_alive, p_buy, value_of_mailing, decision, rule.
 
+    With values averaged over draws of the parameters, ``value_of_mailing`` is their
+    mean and three columns follow it: ``value_low`` and ``value_high``, the 5th and
+    95th percentiles over the draws, and ``may_flip``, True where the range spans 0
+    (the sign of the value, so the mail-or-stop decision, turns within it).
+
     The version shown is the one assigned, or for customers not mailed the version
     with the highest value. ``stop``: no version is worth mailing; ``over-budget``:
     worth mailing but the budget ran out; ``suppressed``: on the suppression list.
@@ -37,18 +42,22 @@ def mail_list(values: CustomerValues, assignment: np.ndarray, rule: np.ndarray |
         [DECISIONS.index("suppressed"), DECISIONS.index("mail"), DECISIONS.index("over-budget")],
         DECISIONS.index("stop"),
     )
-    return pd.DataFrame(
-        {
-            "customer_id": values.customer_ids,
-            "segment": categorical(values.segment),
-            "version": pd.Categorical.from_codes(version_index, categories=list(values.versions)),
-            "p_alive": values.p_alive,
-            "p_buy": values.p_buy * values.responses[version_index],
-            "value_of_mailing": value,
-            "decision": pd.Categorical.from_codes(decision, categories=list(DECISIONS)),
-            "rule": pd.Categorical.from_codes(np.zeros(len(decision), dtype=np.int64) if rule is None else rule, categories=list(RULES)),
-        }
+    columns = {
+        "customer_id": values.customer_ids,
+        "segment": categorical(values.segment),
+        "version": pd.Categorical.from_codes(version_index, categories=list(values.versions)),
+        "p_alive": values.p_alive,
+        "p_buy": values.p_buy * values.responses[version_index],
+        "value_of_mailing": value,
+    }
+    if values.draws:
+        low, high = values.value_range(version_index)
+        columns.update(value_low=low, value_high=high, may_flip=(low < 0) & (high > 0))
+    columns.update(
+        decision=pd.Categorical.from_codes(decision, categories=list(DECISIONS)),
+        rule=pd.Categorical.from_codes(np.zeros(len(decision), dtype=np.int64) if rule is None else rule, categories=list(RULES)),
     )
+    return pd.DataFrame(columns)
 
 
 def decision_counts(rows: pd.DataFrame) -> dict[str, int]:

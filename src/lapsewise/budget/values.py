@@ -27,6 +27,7 @@ from lapsewise.files.policy_file import Policy
 from lapsewise.model.posterior import Posterior
 from lapsewise.model.process import Process
 from lapsewise.model.spend import SpendFit, expected_order_value
+from lapsewise.model.uncertainty import RANGE
 
 
 @dataclass(frozen=True)
@@ -46,10 +47,28 @@ class CustomerValues:
     suppressed: np.ndarray
     versions: tuple[str, ...]
     responses: np.ndarray
+    spread: np.ndarray | None = None
 
     @property
     def suppressed_count(self) -> int:
         return int(self.suppressed.sum())
+
+    @property
+    def draws(self) -> int:
+        """How many draws of the parameters the values average over (0: valued at the estimates)."""
+        return 0 if self.spread is None else self.spread.shape[0]
+
+    def value_range(self, version_index: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Each customer's 5th and 95th percentile of the value of mailing the given version, over the draws."""
+        rows = np.arange(len(version_index))
+        low, high = np.quantile(self.spread[:, rows, version_index], RANGE, axis=0)
+        centre = self.values[rows, version_index]
+        return centre + low, centre + high
+
+    def drawn_offsets(self, assignment: np.ndarray) -> np.ndarray:
+        """Per draw, how far the summed value of mailing the assigned versions lies from the summed ``values``."""
+        mailed = np.flatnonzero(assignment >= 0)
+        return self.spread[:, mailed, assignment[mailed]].astype(np.float64).sum(axis=1)
 
 
 def reference_piece_cost(policy: Policy) -> float:
@@ -137,25 +156,38 @@ def band_values(program: Program, policy: Policy, states: ValuedStates, members:
     return np.column_stack([version_mail_value(program, *args, v.response, v.piece_cost) - hold for v in policy.versions])
 
 
+def averaged_values(point: np.ndarray, drawn: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """The mean of the drawn values, and each draw's difference from it (draws, customers, versions; float32).
+
+    The mean is taken as ``point`` plus the mean of the draws' differences from
+    ``point`` (the same number, rounded less), so draws that all equal the point
+    values give the point values exactly.
+    """
+    offsets = np.stack([values - point for values in drawn]).astype(np.float32)
+    shift = offsets.mean(axis=0, dtype=np.float64)
+    return point + shift, offsets - shift.astype(np.float32)[None]
+
+
 def customer_values(
     customer_ids: np.ndarray,
     summary: CustomerSummary,
     policy: Policy,
     histories: Histories,
     post: Posterior,
-    states: ValuedStates,
-    state_values: np.ndarray,
+    values: np.ndarray,
     suppressed: np.ndarray | None = None,
     attribute: np.ndarray | None = None,
+    spread: np.ndarray | None = None,
 ) -> CustomerValues:
-    """Spread the values of the distinct states, and the posterior of the distinct histories, back to the customers."""
+    """The customers' values (customers, versions), with the posterior of the distinct histories spread back to them."""
     return CustomerValues(
         customer_ids=customer_ids,
         segment=segment_labels(summary, policy.segments, attribute),
         p_alive=post.p_alive[histories.inverse],
         p_buy=post.p_buy[histories.inverse],
-        values=state_values[states.inverse],
+        values=values,
         suppressed=np.zeros(len(customer_ids), dtype=bool) if suppressed is None else suppressed,
         versions=tuple(v.name for v in policy.versions),
         responses=np.array([v.response for v in policy.versions]),
+        spread=spread,
     )

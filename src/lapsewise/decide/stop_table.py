@@ -9,6 +9,7 @@ at which holding beats mailing.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 from typing import Callable
 
@@ -24,6 +25,7 @@ from lapsewise.model.churn import ChurnFit
 from lapsewise.model.posterior import posterior
 from lapsewise.model.process import Process
 from lapsewise.model.spend import SpendFit
+from lapsewise.model.uncertainty import RANGE
 
 
 @dataclass(frozen=True)
@@ -43,6 +45,12 @@ class StopTable:
     bands: tuple[SpendBand, ...]
     rows: pd.DataFrame
     cells: pd.DataFrame
+    draws: int = 0
+    sensitivity: pd.DataFrame | None = None
+
+    @property
+    def stop_points(self) -> np.ndarray:
+        return self.rows["stop_after"].to_numpy()
 
 
 def all_states(horizon: int) -> tuple[np.ndarray, np.ndarray]:
@@ -115,3 +123,43 @@ def _first_false(flags: np.ndarray) -> np.ndarray:
     """Per row, the index of the first False (-1 when every entry is True)."""
     stopped = ~flags
     return np.where(stopped.any(axis=1), stopped.argmax(axis=1), -1)
+
+
+def with_ranges(point: StopTable, drawn: list[StopTable]) -> StopTable:
+    """The stop table at the estimates with, per row, the 5th-95th percentile range of the stop point over the
+    draws (``stop_after_low``, ``stop_after_high``) and the share of draws whose stop point equals the estimate's
+    (``agreement``).
+
+    A stop point of -1 (mailed throughout the horizon) counts as later than any other. The percentiles are taken
+    outward (the draw at or below the 5th, at or above the 95th), so the range holds at least 90% of the draws.
+    """
+    horizon = point.economics.horizon_quarters
+    rows = point.rows.copy()
+    if not drawn:
+        return point
+    points = np.stack([table.stop_points for table in drawn])
+    later = np.where(points < 0, horizon + 1, points)
+    low = np.quantile(later, RANGE[0], axis=0, method="lower")
+    high = np.quantile(later, RANGE[1], axis=0, method="higher")
+    rows["stop_after_low"] = np.where(low > horizon, -1, low).astype(np.int64)
+    rows["stop_after_high"] = np.where(high > horizon, -1, high).astype(np.int64)
+    rows["agreement"] = (points == point.stop_points[None, :]).mean(axis=0)
+    return dataclasses.replace(point, rows=rows, draws=len(drawn))
+
+
+def with_sensitivity(point: StopTable, shifted: list[tuple[str, float, StopTable, StopTable]]) -> StopTable:
+    """The stop table with, per parameter, how many stop points move when it is two standard errors lower or higher.
+
+    ``shifted`` holds (parameter, standard error, table with it lower, table with it higher).
+    """
+    rows = [
+        {
+            "parameter": name,
+            "std_error": error,
+            "moved_lower": int((lower.stop_points != point.stop_points).sum()),
+            "moved_higher": int((higher.stop_points != point.stop_points).sum()),
+            "stop_points": len(point.rows),
+        }
+        for name, error, lower, higher in shifted
+    ]
+    return dataclasses.replace(point, sensitivity=pd.DataFrame(rows, columns=["parameter", "std_error", "moved_lower", "moved_higher", "stop_points"]))

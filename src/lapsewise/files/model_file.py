@@ -25,6 +25,9 @@ CHURN_RANGE = (1e-4, 1e5)
 SPEND_RANGE = {"p": (1e-5, 1e5), "q": (1e-5, 1e5), "gamma": (1e-9, 1e12)}
 """The order-value model's p, q and gamma (gamma is in currency units)."""
 MAX_FILE_BYTES = 10_000_000
+CHURN_NAMES = ("alpha", "beta", "gamma", "delta", "rho", "season_1", "season_2", "season_3", "season_4")
+SPEND_NAMES = ("p", "q", "gamma")
+"""The parameters a model file's covariance tables may name (:mod:`lapsewise.model.uncertainty`)."""
 
 
 class _Check:
@@ -64,6 +67,30 @@ class _Check:
             if error is not None:
                 self.number(errors, name, 0.0, math.inf, f"{where}std_errors.")
 
+    def covariance(self, data: dict, where: str, names: tuple[str, ...]) -> None:
+        """The optional ``covariance`` table: ``parameters`` (distinct names of the model's parameters) and a square,
+        symmetric ``matrix`` of finite numbers with no negative variance."""
+        table = data.get("covariance")
+        if table is None:
+            return
+        key = f"{where}covariance"
+        if not isinstance(table, dict):
+            self.fail(key, "is not a table with parameters and matrix")
+        parameters, matrix = table.get("parameters"), table.get("matrix")
+        if not isinstance(parameters, list) or len(set(map(str, parameters))) != len(parameters) or not all(p in names for p in parameters):
+            self.fail(f"{key}.parameters", f"= {_shown(parameters)} is not a list of distinct names from {', '.join(names)}")
+        size = len(parameters)
+        if not isinstance(matrix, list) or len(matrix) != size or not all(isinstance(row, list) and len(row) == size for row in matrix):
+            self.fail(f"{key}.matrix", f"is not a {size} x {size} table of numbers")
+        for i, row in enumerate(matrix):
+            for j, value in enumerate(row):
+                self.number({"v": value}, "v", -math.inf, math.inf, f"{key}.matrix[{i}][{j}] ")
+        for i in range(size):
+            if matrix[i][i] < 0:
+                self.fail(f"{key}.matrix[{i}][{i}]", f"= {_shown(matrix[i][i])} is a negative variance")
+            for j in range(i):
+                if abs(matrix[i][j] - matrix[j][i]) > 1e-9 * max(1.0, abs(matrix[i][j])):
+                    self.fail(f"{key}.matrix", f"is not symmetric at [{i}][{j}]")
 
     def seasons(self, churn: dict) -> None:
         """``churn.seasons``: absent or null (no seasons), or four multipliers in (0, 1], the largest 1."""
@@ -131,12 +158,14 @@ def read_model_file(path: str | Path) -> tuple[dict, str]:
     check.number(churn, "rho", 0.0, 1.0, "churn.", optional=True)
     check.errors(churn, "churn.")
     check.seasons(churn)
+    check.covariance(churn, "churn.", CHURN_NAMES)
     spend = data.get("spend")
     if spend is not None:
         spend = check.table(data, "spend")
         for name, (low, high) in SPEND_RANGE.items():
             check.number(spend, name, low, high, "spend.", optional=name == "q")
         check.errors(spend, "spend.")
+        check.covariance(spend, "spend.", SPEND_NAMES)
         check.number(spend, "frequency_value_correlation", -1.0, 1.0, "spend.", optional=True)
         check.number(spend, "log_likelihood", -math.inf, math.inf, "spend.", optional=True)
         check.integer(spend, "customers", 0, 10**12)

@@ -34,6 +34,7 @@ from lapsewise.data.histories import Histories
 from lapsewise.model import optimum
 from lapsewise.model.moments import MomentTerms, history_sums, log_p_moments, theta_factors
 from lapsewise.model.process import Process
+from lapsewise.model.uncertainty import Covariance
 
 PARAMETERS = ("alpha", "beta", "gamma", "delta", "rho")
 _LOG_BOUNDS = (math.log(1e-3), math.log(1e4))
@@ -73,6 +74,9 @@ class ChurnFit:
     season_test : dict or None
         The likelihood-ratio test of the seasons against none: ``statistic``,
         ``degrees_of_freedom``, ``p_value``, ``log_likelihood_without``.
+    covariance : Covariance or None
+        The free parameters' asymptotic covariance on unconstrained scales
+        (:mod:`lapsewise.model.uncertainty`); None in model files written before it was kept.
     """
 
     alpha: float
@@ -88,6 +92,7 @@ class ChurnFit:
     warnings: tuple[str, ...] = ()
     seasons: tuple[float, float, float, float] | None = None
     season_test: dict | None = None
+    covariance: Covariance | None = None
 
     @classmethod
     def of(cls, process: Process, **facts) -> "ChurnFit":
@@ -123,6 +128,7 @@ class ChurnFit:
             "warnings": list(self.warnings),
             "seasons": [1.0] * 4 if self.seasons is None else list(self.seasons),
             "season_test": None if self.season_test is None else dict(self.season_test),
+            "covariance": None if self.covariance is None else self.covariance.to_dict(),
         }
 
     @classmethod
@@ -141,6 +147,7 @@ class ChurnFit:
             warnings=tuple(data.get("warnings", ())),
             seasons=_seasons_or_none(data.get("seasons")),
             season_test=None if data.get("season_test") is None else dict(data["season_test"]),
+            covariance=Covariance.from_dict(data.get("covariance")),
         )
 
 
@@ -405,7 +412,8 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
         unidentified.append("rho")
         warnings.append("no customer has an unmailed quarter, so rho is not identified by the data")
     free = [name not in on_bound + unidentified for name in names]
-    errors = optimum.standard_errors(best.hessian, best.x, customers, logged=[name != "rho" for name in names], free=free)
+    logged = [name != "rho" for name in names]
+    errors = optimum.standard_errors(best.hessian, best.x, customers, logged=logged, free=free)
     repeaters = int(histories.count[histories.x > 0].sum())
     if repeaters < 100:
         warnings.append(f"only {repeaters} customers have a repeat purchase; the estimates rest on thin data")
@@ -419,7 +427,25 @@ def fit_churn(histories: Histories, mailing_history: bool) -> ChurnFit:
         histories=histories.size,
         converged=best.converged,
         warnings=tuple(warnings),
+        covariance=fit_covariance(best.hessian, customers, names, fitted, logged, free),
     )
+
+
+def fit_covariance(curvature, customers: float, names, process: Process, logged, free) -> Covariance | None:
+    """The free parameters' covariance on unconstrained scales from the search's curvature (None when it has none)."""
+    matrix = optimum.covariance(curvature, customers, free)
+    if matrix is None:
+        return None
+    kept = [i for i, is_free in enumerate(free) if is_free]
+    values = [parameter_value(process, names[i]) for i in kept]
+    return Covariance.from_search([names[i] for i in kept], values, matrix, [logged[i] for i in kept])
+
+
+def parameter_value(process: Process, name: str) -> float:
+    """A parameter of the process by its name in the model file (``season_1`` to ``season_4`` for the multipliers)."""
+    if name.startswith("season_"):
+        return float(process.seasons[int(name[-1]) - 1])
+    return float(getattr(process, name))
 
 
 def _objective(expansion: Expansion, mailing_history: bool) -> optimum.Objective:

@@ -64,7 +64,7 @@ class Model:
         return {
             "format": MODEL_FORMAT,
             "version": MODEL_VERSION,
-            "churn": {k: churn[k] for k in ("alpha", "beta", "gamma", "delta", "rho", "seasons", "std_errors")},
+            "churn": {k: churn[k] for k in ("alpha", "beta", "gamma", "delta", "rho", "seasons", "std_errors", "covariance")},
             "season_test": churn["season_test"],
             "spend": None if self.spend is None else self.spend.to_dict(),
             "log_likelihood": churn["log_likelihood"],
@@ -181,6 +181,7 @@ def _without_rho(churn: ChurnFit) -> ChurnFit:
         churn,
         rho=None,
         std_errors={name: error for name, error in churn.std_errors.items() if name != "rho"},
+        covariance=None if churn.covariance is None else churn.covariance.without("rho"),
         warnings=tuple(w for w in churn.warnings if not (w.startswith("rho ") or "rho is not identified" in w)),
     )
 

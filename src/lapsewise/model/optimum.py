@@ -240,25 +240,38 @@ def _line_search(
     return None
 
 
+def covariance(curvature: np.ndarray | None, customers: float, free: Sequence[bool]) -> np.ndarray | None:
+    """The asymptotic covariance of the free search coordinates: the inverse of the observed information.
+
+    The observed information of the free coordinates is ``customers * curvature``
+    (``curvature`` the Hessian of the per-customer objective). None when there is
+    no free coordinate or the information is not positive definite.
+    """
+    index = np.flatnonzero(free)
+    if curvature is None or index.size == 0:
+        return None
+    factor = _positive_definite(customers * curvature[np.ix_(index, index)])
+    if factor is None:
+        return None
+    matrix = linalg.cho_solve(factor, np.eye(index.size))
+    return (matrix + matrix.T) / 2.0
+
+
 def standard_errors(curvature: np.ndarray | None, x: np.ndarray, customers: float, logged: Sequence[bool], free: Sequence[bool]) -> list[float | None]:
     """Standard errors of the natural parameters from the Hessian of the per-customer objective in search coordinates.
 
-    The observed information of the free coordinates is ``customers * curvature``;
-    its inverse is their covariance. A coordinate that is the logarithm of its
-    parameter gives that parameter the standard error ``exp(x) * se(x)`` (the
-    delta method); the others are the parameters themselves. None for
-    coordinates that are not free, or when the information is not positive definite.
+    The square roots of :func:`covariance`'s diagonal. A coordinate that is the
+    logarithm of its parameter gives that parameter the standard error
+    ``exp(x) * se(x)`` (the delta method); the others are the parameters
+    themselves. None for coordinates that are not free, or when the information
+    is not positive definite.
     """
     errors: list[float | None] = [None] * len(x)
-    index = np.flatnonzero(free)
-    if curvature is None or index.size == 0:
+    matrix = covariance(curvature, customers, free)
+    if matrix is None:
         return errors
-    factor = _positive_definite(customers * curvature[np.ix_(index, index)])
-    if factor is None:
-        return errors
-    variances = np.diag(linalg.cho_solve(factor, np.eye(index.size)))
-    for position, i in enumerate(index):
-        variance = variances[position]
+    for position, i in enumerate(np.flatnonzero(free)):
+        variance = matrix[position, position]
         if np.isfinite(variance) and variance > 0:
             error = math.sqrt(variance)
             errors[i] = float(math.exp(x[i]) * error) if logged[i] else float(error)

@@ -48,7 +48,7 @@ from scipy import linalg, sparse, special, stats
 
 from lapsewise.data.histories import Histories, season_quarters
 from lapsewise.model import optimum
-from lapsewise.model.churn import ChurnFit, bound_warnings, has_unmailed_quarter, on_bounds, sample_histories
+from lapsewise.model.churn import ChurnFit, bound_warnings, fit_covariance, has_unmailed_quarter, on_bounds, sample_histories
 from lapsewise.model.moments import history_sums, theta_factors
 from lapsewise.model.process import Process
 
@@ -537,7 +537,8 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: ChurnFit) ->
     # A multiplier that ends at 1 equals the reference's: held there, like the reference, with no standard error.
     unidentified += [name for name in names if name.startswith("season") and process.seasons[int(name[-1]) - 1] >= 1.0 - 1e-9]
     free = [name not in on_bound + unidentified for name in names]
-    errors = dict(zip(names, optimum.standard_errors(best.hessian, best.x, customers, logged=[i < 4 for i in range(len(names))], free=free)))
+    logged = [i < 4 for i in range(len(names))]
+    errors = dict(zip(names, optimum.standard_errors(best.hessian, best.x, customers, logged=logged, free=free)))
     log_likelihood = -best.fun * customers
     statistic = max(2.0 * (log_likelihood - plain.log_likelihood), 0.0)
     test = {
@@ -556,4 +557,5 @@ def fit_seasons(histories: Histories, mailing_history: bool, plain: ChurnFit) ->
         converged=best.converged,
         warnings=tuple(warnings),
         season_test=test,
+        covariance=fit_covariance(best.hessian, customers, names, process, logged, free),
     )

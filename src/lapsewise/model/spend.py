@@ -43,6 +43,7 @@ from scipy.special import digamma, gammaln
 
 from lapsewise.errors import InputError
 from lapsewise.model import optimum
+from lapsewise.model.uncertainty import Covariance
 
 PARAMETER_NAMES = ("p", "q", "gamma")
 
@@ -192,6 +193,9 @@ class SpendFit:
         (NaN when it is undefined). The model assumes it is zero.
     warnings : tuple of str
         One line each on anything that makes the estimates less trustworthy.
+    covariance : Covariance or None
+        The free parameters' asymptotic covariance on the log scale
+        (:mod:`lapsewise.model.uncertainty`); None in model files written before it was kept.
 
     References
     ----------
@@ -209,6 +213,7 @@ class SpendFit:
     converged: bool = False
     frequency_value_correlation: float = math.nan
     warnings: tuple[str, ...] = ()
+    covariance: Covariance | None = None
 
     @property
     def population_mean(self) -> float:
@@ -229,6 +234,7 @@ class SpendFit:
             "converged": bool(self.converged),
             "frequency_value_correlation": _number_or_none(self.frequency_value_correlation),
             "warnings": list(self.warnings),
+            "covariance": None if self.covariance is None else self.covariance.to_dict(),
         }
 
     @classmethod
@@ -244,6 +250,7 @@ class SpendFit:
             converged=bool(data["converged"]),
             frequency_value_correlation=_number(data["frequency_value_correlation"]),
             warnings=tuple(data["warnings"]),
+            covariance=Covariance.from_dict(data.get("covariance")),
         )
 
 
@@ -335,7 +342,11 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
         for name, value, (low, high) in zip(PARAMETER_NAMES, best.x, log_bounds)
         if value - low < _ON_BOUND or high - value < _ON_BOUND
     ]
-    errors = optimum.standard_errors(best.hessian, best.x, x.size, logged=[True] * 3, free=[name not in on_bound for name in PARAMETER_NAMES])
+    free = [name not in on_bound for name in PARAMETER_NAMES]
+    errors = optimum.standard_errors(best.hessian, best.x, x.size, logged=[True] * 3, free=free)
+    # gamma was searched in units of the median spend: on the log scale that is a shift, so its variance is the same.
+    search_covariance = optimum.covariance(best.hessian, x.size, free)
+    covariance = None if search_covariance is None else Covariance(tuple(n for n, f in zip(PARAMETER_NAMES, free) if f), search_covariance)
     if errors[2] is not None:
         errors[2] *= scale  # gamma was searched in units of the median spend
     std_errors = dict(zip(PARAMETER_NAMES, errors))
@@ -382,6 +393,7 @@ def fit_spend(x: np.ndarray, m_x: np.ndarray) -> SpendFit:
         converged=best.converged,
         frequency_value_correlation=correlation,
         warnings=tuple(warnings),
+        covariance=covariance,
     )
 
 
