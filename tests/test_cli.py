@@ -80,6 +80,48 @@ def test_stop_table_json_lists_every_state(demo_dir):
     assert data["economics"]["horizon_quarters"] == 8
 
 
+def test_stop_table_ranges_over_draws_are_seeded_and_in_the_json(demo_dir):
+    args = ("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 6, "--draws", 6, "--seed", 4, "--json")
+    first, again = run(*args), run(*args)
+    assert first.returncode == 0, first.stderr
+    assert first.stdout == again.stdout  # seeded: the same draws, the same bytes
+    data = json.loads(first.stdout)
+    assert data["draws"] == 6 and data["sensitivity"] is None
+    for row in data["rows"]:
+        assert {"stop_after_low", "stop_after_high", "agreement"} <= set(row)
+        assert 0.0 <= row["agreement"] <= 1.0
+        # the estimate's stop point lies in its range unless most draws disagree (None = mailed throughout, the latest)
+        late = lambda v: 10**6 if v is None else v  # noqa: E731
+        assert late(row["stop_after_low"]) <= late(row["stop_after_high"])
+    plain = json.loads(run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 6, "--draws", 0, "--json").stdout)
+    assert plain["draws"] == 0 and "agreement" not in plain["rows"][0]
+    assert [r["stop_after"] for r in plain["rows"]] == [r["stop_after"] for r in data["rows"]]
+
+
+def test_stop_table_sensitivity_counts_moved_stop_points_per_parameter(demo_dir):
+    result = run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 4, "--draws", 0, "--sensitivity", "--json")
+    assert result.returncode == 0, result.stderr
+    data = json.loads(result.stdout)
+    names = [row["parameter"] for row in data["sensitivity"]]
+    assert names[:5] == ["alpha", "beta", "gamma", "delta", "rho"] and "spend p" in names
+    assert all(0 <= row["moved_lower"] <= row["stop_points"] == len(data["rows"]) for row in data["sensitivity"])
+    text = run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 4, "--draws", 0, "--sensitivity").stdout
+    assert "two standard errors either way" in text and "The decisions hang most on" in text
+
+
+def test_plan_reports_its_value_range_and_plug_in_leaves_it_out(demo_dir, tmp_path):
+    common = ("plan", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--policy", POLICY,
+              "--budget", 400, "--horizon-quarters", 6, "--json")
+    drawn = json.loads(run(*common, "--draws", 8).stdout)
+    assert drawn["draws"] == 8 and drawn["expected_profit_low"] <= drawn["expected_profit_high"]
+    plug_in = json.loads(run(*common, "--draws", 8, "--plug-in").stdout)
+    assert plug_in["draws"] == 0 and plug_in["expected_profit_low"] is None
+    out = tmp_path / "list.csv"
+    result = run("mail-list", *common[1:7], "--horizon-quarters", 6, "--plug-in", "--out", out)
+    assert result.returncode == 0, result.stderr
+    assert "value_low" not in pd.read_csv(out).columns
+
+
 def test_stop_table_prints_optimal_beside_breakeven(demo_dir):
     result = run("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 8, "--order-value", 50)
     assert result.returncode == 0, result.stderr

@@ -372,6 +372,7 @@ def plan(
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_suppression(console, inputs.suppression)
+    render.print_draw_notes(console, inputs.draws.notes() if inputs.draws else ())
     render.print_plan(console, result, panel, inputs.values if recurring_result is None else recurring_result.values)
     render.print_recurring_budget(console, recurring_result)
     render.print_caution(console)
@@ -414,8 +415,9 @@ def mail_list_command(
     if not inputs.panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_suppression(console, inputs.suppression)
+    render.print_draw_notes(console, inputs.draws.notes() if inputs.draws else ())
     render.print_recurring_budget(console, recurring_result)
-    render.print_mail_list(console, decision_counts(rows), result, out)
+    render.print_mail_list(console, decision_counts(rows), result, out, int(rows["may_flip"].sum()) if "may_flip" in rows else 0)
     render.print_caution(console)
 
 

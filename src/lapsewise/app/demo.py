@@ -22,6 +22,7 @@ from lapsewise.errors import InputError
 from lapsewise.evaluate.backtest import run_backtest
 from lapsewise.evaluate.scenario import SCENARIO_NAME, DemoData, compare_with_truth, simulate_base
 from lapsewise.files.writing import check_writable, dumps_stable, save_csv, write_text_atomic
+from lapsewise.model.uncertainty import model_draws
 
 DEMO_BUDGET = 3000.0
 SIMULATED_CUSTOMERS = 10_000
@@ -55,6 +56,10 @@ def write_demo_files(folder: Path, data: DemoData, force: bool) -> dict[str, Pat
     write_text_atomic(paths["truth"], dumps_stable(truth), force)
     write_text_atomic(paths["policy"], demo_policy_text(), force)
     return paths
+
+
+DEMO_DRAWS = 10
+"""Draws of the parameters behind the demo's plan and mail list (the commands default to more; fewer keep the demo quick)."""
 
 
 def run_demo(console: Console, folder: Path, customers: int, quarters: int, seed: int, force: bool) -> None:
@@ -98,12 +103,12 @@ def run_demo(console: Console, folder: Path, customers: int, quarters: int, seed
     render.print_simulation(console, simulation, policy.economics)
 
     console.rule(f"This quarter's plan at a sample budget of {DEMO_BUDGET:,.0f}")
-    values = pipeline.value_customers(model, panel, policy)
+    values = pipeline.value_customers(model, panel, policy, draws=model_draws(model, DEMO_DRAWS, seed))
     plan = pipeline.plan(values, policy, DEMO_BUDGET, report.FRONTIER_POINTS)
     render.print_plan(console, plan, panel, values)
     rows = pipeline.mail_list_rows(values, plan)
     save_csv(paths["mail_list"], rows, force)
-    render.print_mail_list(console, decision_counts(rows), plan, paths["mail_list"])
+    render.print_mail_list(console, decision_counts(rows), plan, paths["mail_list"], int(rows["may_flip"].sum()))
 
     results = report.ReportResults(
         str(paths["orders"]), str(paths["policy"]), panel, base, model, fitted.curves, policy, stop_table, backtest, simulation, values, plan, None

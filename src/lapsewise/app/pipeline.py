@@ -130,7 +130,8 @@ def stop_table(model: Model, policy: Policy, draws: int = 0, seed: int = 0, sens
 
     point = table(model)
     if draws:
-        point = with_ranges(point, [table(drawn) for drawn in model_draws(model, draws, seed).models])
+        drawn = model_draws(model, draws, seed)
+        point = with_ranges(point, [table(fitted) for fitted in drawn.models], tuple(drawn.notes()))
     if sensitivity:
         point = with_sensitivity(point, [(name, error, table(lower), table(higher)) for name, error, lower, higher in shifted_models(model)])
     return point

@@ -358,6 +358,7 @@ def print_stop_table(console: Console, table, model) -> None:
         "covers the piece cost. The optimal rule also counts the future an order buys and, when held customers still order, "
         "only the orders the piece adds."
     )
+    print_draw_notes(console, table.notes)
     if table.draws:
         firm = float((table.rows["agreement"] >= 0.9).mean())
         console.print(
@@ -366,6 +367,12 @@ def print_stop_table(console: Console, table, model) -> None:
         )
     if table.sensitivity is not None:
         print_stop_sensitivity(console, table.sensitivity)
+
+
+def print_draw_notes(console: Console, notes) -> None:
+    """How the parameter draws were made, where it departs from the fit's full covariance (one line each)."""
+    for note in notes:
+        console.print(f"Draws: {note}.")
 
 
 def print_stop_sensitivity(console: Console, sensitivity) -> None:
@@ -542,7 +549,7 @@ def print_recurring_budget(console: Console, recurring) -> None:
     )
 
 
-def print_mail_list(console: Console, counts: dict[str, int], plan, out) -> None:
+def print_mail_list(console: Console, counts: dict[str, int], plan, out, flips: int = 0) -> None:
     """Customers per decision (:func:`lapsewise.budget.mail_list.decision_counts`) and where the list is."""
     table = compact_table()
     table.add_column("Decision")
@@ -555,6 +562,13 @@ def print_mail_list(console: Console, counts: dict[str, int], plan, out) -> None
         f"With {budget}, mail {counts['mail']:,} customers for {money(plan.solution.spent)}; "
         f"the list, one row per customer, is in {out}. Cells that a spreadsheet would run as formulas start with a quote."
     )
+    if plan.profit_range is not None:
+        low, high = plan.profit_range
+        console.print(
+            f"Decided on the value of mailing averaged over {len(plan.drawn_profits)} draws of the parameters; the list's value_low and "
+            f"value_high are its 5th and 95th percentiles, and may_flip marks the {flips:,} customers whose value changes sign within "
+            f"them. The plan is worth {money(low)} to {money(high)} over the draws."
+        )
 
 
 @contextmanager

@@ -47,6 +47,7 @@ class StopTable:
     cells: pd.DataFrame
     draws: int = 0
     sensitivity: pd.DataFrame | None = None
+    notes: tuple[str, ...] = ()
 
     @property
     def stop_points(self) -> np.ndarray:
@@ -125,10 +126,10 @@ def _first_false(flags: np.ndarray) -> np.ndarray:
     return np.where(stopped.any(axis=1), stopped.argmax(axis=1), -1)
 
 
-def with_ranges(point: StopTable, drawn: list[StopTable]) -> StopTable:
+def with_ranges(point: StopTable, drawn: list[StopTable], notes: tuple[str, ...] = ()) -> StopTable:
     """The stop table at the estimates with, per row, the 5th-95th percentile range of the stop point over the
     draws (``stop_after_low``, ``stop_after_high``) and the share of draws whose stop point equals the estimate's
-    (``agreement``).
+    (``agreement``); ``notes`` say how the draws were made (:meth:`lapsewise.model.uncertainty.Draws.notes`).
 
     A stop point of -1 (mailed throughout the horizon) counts as later than any other. The percentiles are taken
     outward (the draw at or below the 5th, at or above the 95th), so the range holds at least 90% of the draws.
@@ -144,7 +145,7 @@ def with_ranges(point: StopTable, drawn: list[StopTable]) -> StopTable:
     rows["stop_after_low"] = np.where(low > horizon, -1, low).astype(np.int64)
     rows["stop_after_high"] = np.where(high > horizon, -1, high).astype(np.int64)
     rows["agreement"] = (points == point.stop_points[None, :]).mean(axis=0)
-    return dataclasses.replace(point, rows=rows, draws=len(drawn))
+    return dataclasses.replace(point, rows=rows, draws=len(drawn), notes=notes)
 
 
 def with_sensitivity(point: StopTable, shifted: list[tuple[str, float, StopTable, StopTable]]) -> StopTable:
