@@ -142,3 +142,24 @@ def test_value_of_a_version_matches_brute_force(rho, response, version_cost):
     ours = version_mail_value(program, np.array([n]), np.array([x]), np.array([b]), np.array([alive]), response, version_cost)[0]
     expected = brute_force_version(process, purchased, mailed, horizon, margin, cost, response, version_cost)
     assert_allclose(ours, expected, rtol=1e-9, atol=1e-9)
+
+
+def test_the_best_plan_in_blocks_equals_the_maximum_of_the_summed_plan_values(monkeypatch):
+    """The fast best_plan (blocks of rows, no states x plans array for all states) against its plain twin."""
+    from lapsewise.decide import decisions
+
+    process = Process(1.2, 2.5, 0.7, 4.0, 0.3)
+    program = solve(process, 20.0, 0.9, DISCOUNT, 6, n_max=12, b_max=4, n_min=2, x_max=8)
+    rng = np.random.default_rng(4)
+    size = 1000
+    n = rng.integers(3, 13, size)
+    x = np.minimum(rng.integers(0, 9, size), n - 1)
+    b = np.minimum(rng.integers(0, 5, size), n - x)
+    alive, total = rng.uniform(0.05, 1.0, size), rng.uniform(0.5, 1.0, size)
+    held = rng.uniform(0.0, 0.5, size)
+    monkeypatch.setattr(decisions, "BEST_PLAN_ROWS", 77)  # many blocks, the last one short
+    plain = decisions.stretch_plan_values(program, n, x, b, alive, total, 5) + decisions.stretch_plan_values(program, n, x, b + 1, held, np.zeros(size), 5)
+    fast = decisions.best_plan(program, 5, (n, x, b, alive, total), (n, x, b + 1, held, np.zeros(size)))
+    assert_allclose(fast, plain.max(axis=1), rtol=1e-13, atol=1e-13)
+    one = decisions.best_plan(program, 5, (n, x, b, alive, total), first=1)
+    assert_allclose(one, decisions.stretch_plan_values(program, n, x, b, alive, total, 5)[:, 1:].max(axis=1), rtol=1e-13, atol=1e-13)

@@ -146,22 +146,21 @@ def run_mail_list_stages(meter: Meter, paths: dict[str, Path], meta: dict, refit
 
     with contextlib.ExitStack() as stack:
         parts = {
-            name: stack.enter_context(CountedCalls(module, name, keep_arguments=name in ("solve", "hold_now_value")))
+            name: stack.enter_context(CountedCalls(module, name, keep_arguments=name in ("chances", "hold_now_value")))
             for module, name in (
-                (pipeline, "compress"), (pipeline, "posterior"), (pipeline, "summarize"),
-                (values_module, "solve"), (values_module, "hold_now_value"), (values_module, "version_mail_value"),
+                (pipeline, "compress"), (pipeline, "posterior"), (pipeline, "summarize"), (values_module, "chances"),
+                (pipeline, "solve_with"), (values_module, "hold_now_value"), (values_module, "version_mail_value"),
             )
         }
         values = meter.run("customer values", pipeline.value_customers, model, panel, policy)
     meter.stages[-1].note = "inside (the bands' calls run two at a time, so their seconds add up to more than they took): " + ", ".join(
         f"{name} {counter.seconds:.2f} s" + (f" ({counter.calls} calls)" if counter.calls != 1 else "") for name, counter in parts.items()
     )
-    solves = parts["solve"]
-    out["solve_calls"] = [(kwargs, seconds) for (_, kwargs), seconds in zip(solves.arguments, solves.durations)]
+    shared, per_band = parts["chances"], parts["solve_with"]
+    out["solve_calls"] = [(kwargs, seconds) for (_, kwargs), seconds in zip(shared.arguments, shared.durations)] + [("one band", s) for s in per_band.durations]
     out["program_states"] = sum(len(args[1]) for args, _ in parts["hold_now_value"].arguments)
-    slowest = int(np.argmax(solves.durations))
-    args, kwargs = solves.arguments[slowest]
-    meter.run("program.solve (one spend band)", program_module.solve, *args, note=f"the slowest band's call again: {_size(kwargs)}", **kwargs)
+    (process_used, piece, discount, horizon), kwargs = shared.arguments[0]
+    meter.run("program.solve (one spend band)", program_module.solve, process_used, MARGIN, piece, discount, horizon, note=f"the bands' states: {_size(kwargs)}", **kwargs)
     out["mail_list_size"] = kwargs
 
     plans = {}
@@ -198,10 +197,10 @@ def run_stop_rule(meter: Meter, mail_list_size: dict, model, policy) -> list[Sta
         for where, size in (("stop-table size", STOP_TABLE_SIZE), ("mail-list size", mail_list_size)):
             meter.run(f"solve rho={rho:g}, {where}", program_module.solve, process, MARGIN, PIECE_COST, DISCOUNT, HORIZON, note=_size(size), **size)
             solves.append(meter.stages[-1])
-    with CountedCalls(stop_table_module, "solve") as inside:
+    with CountedCalls(stop_table_module, "solve_with") as inside:
         meter.run("stop table (full catalog)", pipeline.stop_table, model, policy)
     meter.stages[-1].note = f"{inside.calls} solve calls, {inside.seconds:.2f} s in them; horizon {policy.economics.horizon_quarters}, rho {model.churn.rho}"
-    with CountedCalls(stop_table_module, "solve") as inside:
+    with CountedCalls(stop_table_module, "solve_with") as inside:
         meter.run(f"stop table, {DRAWS} draws (the command's default)", pipeline.stop_table, model, policy, DRAWS, 1)
     meter.stages[-1].note = f"{inside.calls} solve calls, {inside.seconds:.2f} s in them"
     return solves
@@ -343,7 +342,9 @@ def main() -> None:
         "order rows / mailing rows": f"{meta['order_rows']:,} / {meta['mailing_rows']:,}",
         "distinct histories": f"{out['histories']:,}",
         "distinct (history, spend band) states valued": f"{out['program_states']:,}",
-        "stop-rule solves in customer values": "; ".join(f"{_size(kwargs)}: {seconds:.2f} s" for kwargs, seconds in out["solve_calls"]),
+        "stop-rule program in customer values (shared tables, then each band)": "; ".join(
+            f"{kwargs if isinstance(kwargs, str) else _size(kwargs)}: {seconds:.2f} s" for kwargs, seconds in out["solve_calls"]
+        ),
         "segments in the mail-list plan": f"{out['segments']}",
         "mail list decisions": ", ".join(f"{k} {v:,}" for k, v in sorted(out["decisions"].items())),
         "floor (both files)": f"{floor:.2f} s",

@@ -21,13 +21,13 @@ from lapsewise.budget.control_cell import ControlCell, check_precision, draw_con
 from lapsewise.budget.control_reading import CellCounts, ControlReading, cell_counts, read_control_cell
 from lapsewise.budget.integer_program import Plan, make_plan
 from lapsewise.budget.mail_list import mail_list
-from lapsewise.budget.values import CustomerValues, averaged_values, band_program, band_program_bytes, band_values, customer_order_values, customer_values, valued_states
+from lapsewise.budget.values import CustomerValues, averaged_values, band_program_bytes, band_values, customer_order_values, customer_values, value_chances, valued_states
 from lapsewise.data.histories import compress
 from lapsewise.data.panel import Panel, panel_from_files
 from lapsewise.data.summary import CustomerSummary, summarize
 from lapsewise.data.suppression import Suppression, match_suppression
 from lapsewise.decide.order_values import spend_bands, typical_order_value
-from lapsewise.decide.program import check_unmailed_purchases, decision_process, program_bytes, workers
+from lapsewise.decide.program import check_unmailed_purchases, decision_process, program_bytes, solve_with, workers
 from lapsewise.decide.stop_table import StopTable, build_stop_table, with_ranges, with_sensitivity
 from lapsewise.errors import InputError
 from lapsewise.machine import available_memory
@@ -35,6 +35,7 @@ from lapsewise.evaluate.policies import Simulation, simulate_policies
 from lapsewise.files.inputs import ID_COLUMN, load_attributes, load_control_cell, load_id_list
 from lapsewise.files.tables import Reading
 from lapsewise.files.policy_file import Policy, load_policy
+from lapsewise.model.churn import expand
 from lapsewise.model.fitted import Model, fit_model, load_model
 from lapsewise.model.process import Process
 from lapsewise.model.posterior import posterior
@@ -177,9 +178,11 @@ def value_customers(
         histories = compress(panel)
         check_unmailed_purchases(model.churn, economics.unmailed_response, histories, policy.source)
         summary = summary_job.result()
-        states, values, post = _state_values(model, policy, histories, summary, pool, budget_price)
+        # The posterior's layout of the histories does not depend on the parameters: the draws share it.
+        expansion = expand(histories) if draws else None
+        states, values, post = _state_values(model, policy, histories, summary, pool, budget_price, expansion)
         point = values[states.inverse]
-        drawn = [_state_values(fitted, policy, histories, summary, pool, budget_price) for fitted in (draws.models if draws else ())]
+        drawn = [_state_values(fitted, policy, histories, summary, pool, budget_price, expansion) for fitted in (draws.models if draws else ())]
     if draws:
         point, spread = averaged_values(point, [values[states_d.inverse] for states_d, values, _ in drawn])
     else:
@@ -187,20 +190,23 @@ def value_customers(
     return customer_values(panel.customer_ids, summary, policy, histories, post, point, suppressed, attribute, spread)
 
 
-def _state_values(model: Model, policy: Policy, histories, summary: CustomerSummary, pool, budget_price: float):
-    """The distinct (history, band) states, their values per version, and the posterior, under ``model``'s parameters."""
+def _state_values(model: Model, policy: Policy, histories, summary: CustomerSummary, pool, budget_price: float, expansion=None):
+    """The distinct (history, band) states, their values per version, and the posterior, under ``model``'s parameters
+    (``expansion``: the histories' :func:`~lapsewise.model.churn.expand`, when shared between draws)."""
     economics = policy.economics
     process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
-    posterior_job = pool.submit(posterior, process, histories)
+    posterior_job = pool.submit(posterior, process, histories, expansion)
     bands = spend_bands(model.spend, economics, policy.segments.spend_bands)
     states = valued_states(histories, bands, customer_order_values(model.spend, policy, summary))
     values = np.empty((len(states.history), len(policy.versions)))
     members = [states.in_band(index) for index in range(len(bands))]
+    # The bands' programs share the tables that do not depend on the margin, built once for all their states.
+    shared = value_chances(process, policy, states, np.ones(len(states.history), dtype=bool), budget_price)
 
     def value_band(index: int) -> None:
         if not members[index].any():
             return
-        program = band_program(process, policy, bands[index].order_value, states, members[index], budget_price)
+        program = solve_with(shared, economics.margin(bands[index].order_value))
         alive = posterior_job.result().alive_now[states.history[members[index]]]
         values[members[index]] = band_values(program, policy, states, members[index], alive)
 

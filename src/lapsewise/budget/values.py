@@ -22,7 +22,7 @@ from lapsewise.data.histories import Histories
 from lapsewise.data.summary import CustomerSummary
 from lapsewise.decide.decisions import hold_now_value, version_mail_value
 from lapsewise.decide.order_values import SpendBand, band_index
-from lapsewise.decide.program import Program, program_bytes, solve
+from lapsewise.decide.program import Chances, Program, chances, program_bytes, solve_with
 from lapsewise.files.policy_file import Policy
 from lapsewise.model.posterior import Posterior
 from lapsewise.model.process import Process
@@ -128,16 +128,21 @@ def _band_extent(states: ValuedStates, members: np.ndarray) -> dict[str, int]:
     }
 
 
-def band_program(process: Process, policy: Policy, order_value: float, states: ValuedStates, members: np.ndarray, budget_price: float = 0.0) -> Program:
-    """The stop-rule program at a band's order value, solved for the states of its members (no more).
+def value_chances(process: Process, policy: Policy, states: ValuedStates, members: np.ndarray, budget_price: float = 0.0) -> Chances:
+    """The margin-free part of the stop-rule program (:func:`~lapsewise.decide.program.chances`) for the states of
+    ``members`` (one band, or several whose programs then share it).
 
     Later quarters' pieces cost the full piece's cost plus ``budget_price``, the shadow price of a budget that
     binds every quarter (0: the budget is this quarter's alone).
     """
     economics = policy.economics
-    margin = economics.margin(order_value)
     future_piece = reference_piece_cost(policy) + budget_price
-    return solve(process, margin, future_piece, economics.discount, economics.horizon_quarters, **_band_extent(states, members))
+    return chances(process, future_piece, economics.discount, economics.horizon_quarters, **_band_extent(states, members))
+
+
+def band_program(process: Process, policy: Policy, order_value: float, states: ValuedStates, members: np.ndarray, budget_price: float = 0.0) -> Program:
+    """The stop-rule program at a band's order value, solved for the states of its members (no more)."""
+    return solve_with(value_chances(process, policy, states, members, budget_price), policy.economics.margin(order_value))
 
 
 def band_program_bytes(process: Process, policy: Policy, states: ValuedStates, members: np.ndarray) -> int:

@@ -66,12 +66,43 @@ def stretch_plan_values(program: Program, n, x, b, alive, total, horizon: int) -
     ``total`` less the purchases. A plan's value is ``alive * A_J - total * costs_J``;
     ``A_J`` depends only on (n, x, b), so it is computed once per distinct state.
     """
+    per_alive, inverse, costs = _stretch_parts(program, n, x, b, horizon)
+    return np.asarray(alive)[:, None] * per_alive[inverse] - np.asarray(total)[:, None] * costs[None, :]
+
+
+def _stretch_parts(program: Program, n, x, b, horizon: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``A_J`` per distinct state, each state's row in it, and ``costs_J`` (:func:`stretch_plan_values`)."""
     n, x, b = _states(n, x, b)
     keys = (b * program.log_moment.shape[1] + x) * program.log_moment.shape[2] + n
     _, first, inverse = np.unique(keys, return_index=True, return_inverse=True)
     per_alive = _plan_values_per_alive(program, n[first], x[first], b[first], horizon)
     costs = program.piece_cost * np.concatenate([[0.0], np.cumsum(program.discount ** np.arange(1, horizon + 1))])
-    return np.asarray(alive)[:, None] * per_alive[inverse.ravel()] - np.asarray(total)[:, None] * costs[None, :]
+    return per_alive, inverse.ravel(), costs
+
+
+BEST_PLAN_ROWS = 8192
+"""Rows per block in :func:`best_plan`: a block's states x plans arrays stay in the processor's cache."""
+
+
+def best_plan(program: Program, horizon: int, *parts, first: int = 0) -> np.ndarray:
+    """The best plan's value, ``max over J >= first`` of the sum over ``parts`` of :func:`stretch_plan_values`.
+
+    Each part is ``(n, x, b, alive, total)`` for the same silent customers. The same
+    numbers as summing the parts' ``stretch_plan_values`` and taking the maximum
+    (the tests compare them), in blocks of rows so that no states x plans array is
+    built for all the states at once.
+    """
+    prepared = [(_stretch_parts(program, n, x, b, horizon), np.asarray(alive, dtype=float), np.asarray(total, dtype=float)) for n, x, b, alive, total in parts]
+    rows = len(prepared[0][1])
+    out = np.empty(rows)
+    for start in range(0, rows, BEST_PLAN_ROWS):
+        block = slice(start, start + BEST_PLAN_ROWS)
+        summed = None
+        for (per_alive, inverse, costs), alive, total in prepared:
+            value = alive[block, None] * per_alive[inverse[block], first:] - total[block, None] * costs[None, first:]
+            summed = value if summed is None else summed + value
+        out[block] = summed.max(axis=1)
+    return out
 
 
 def _plan_values_per_alive(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, horizon: int) -> np.ndarray:
@@ -116,8 +147,8 @@ def decide(program: Program, n, x, b, alive) -> Decisions:
     """
     n, x, b = _states(n, x, b)
     alive = np.asarray(alive, dtype=float)
-    mail_plans = stretch_plan_values(program, n, x, b, alive, np.ones_like(alive), program.horizon)
-    return Decisions(mail_plans[:, 1:].max(axis=1), hold_now_value(program, n, x, b, alive))
+    mail_value = best_plan(program, program.horizon, (n, x, b, alive, np.ones_like(alive)), first=1)
+    return Decisions(mail_value, hold_now_value(program, n, x, b, alive))
 
 
 def hold_now_value(program: Program, n, x, b, alive) -> np.ndarray:
@@ -131,9 +162,9 @@ def hold_now_value(program: Program, n, x, b, alive) -> np.ndarray:
     here = program.log_moment[b, x, n]
     silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[b + 1, x, n + 1] - here)
     if rho == 0:
-        return d * stretch_plan_values(program, n + 1, x, b + 1, silent_alive, np.ones_like(alive), horizon - 1).max(axis=1)
+        return d * best_plan(program, horizon - 1, (n + 1, x, b + 1, silent_alive, np.ones_like(alive)))
     buy = alive * rho * np.exp(program.log_alive[n, 1] + program.log_moment[b, x + 1, n + 1] - here)
-    later = stretch_plan_values(program, n + 1, x, b + 1, silent_alive, 1.0 - buy, horizon - 1).max(axis=1)
+    later = best_plan(program, horizon - 1, (n + 1, x, b + 1, silent_alive, 1.0 - buy))
     return d * buy * (program.margin + program.after_purchase_at(horizon - 1, b, x + 1, n + 1)) + d * later
 
 
@@ -172,7 +203,7 @@ def version_mail_value(program: Program, n, x, b, alive, response: float, piece_
         return value
     mailed_part = alive * survive * mix * np.exp(program.log_moment[b, x, n + 1] - here)
     held_part = alive * survive * (1.0 - mix) * np.exp(program.log_moment[b + 1, x, n + 1] - here)
-    plans = stretch_plan_values(program, n + 1, x, b, mailed_part, 1.0 - buy, horizon - 1)
+    parts = [(n + 1, x, b, mailed_part, 1.0 - buy)]
     if mix != 1.0:
-        plans = plans + stretch_plan_values(program, n + 1, x, b + 1, held_part, np.zeros_like(alive), horizon - 1)
-    return value + d * plans.max(axis=1)
+        parts.append((n + 1, x, b + 1, held_part, np.zeros_like(alive)))
+    return value + d * best_plan(program, horizon - 1, *parts)

@@ -66,6 +66,7 @@ Policies. Management Science, 52(5), 683-696.
 
 from __future__ import annotations
 
+import dataclasses
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -246,7 +247,7 @@ def program_bytes(horizon: int, n_max: int, b_max: int, n_min: int = 0, x_max: i
         b_last = min(b_max + horizon - h + 1, depth - 2) if rho > 0 else depth - 2
         last = n_max + horizon - h
         x_last = min(last + 1, x_top + horizon - h + 1)
-        cells += (2 + (rho > 0)) * (b_last + 1) * (x_last + 1) * (last + 1 - n_min)
+        cells += (4 + (rho > 0)) * (b_last + 1) * (x_last + 1) * (last + 1 - n_min)  # d^i f_i, orders, pieces, K_i (d^i s_i)
     cells += 2 * horizon * depth * columns * (n_max - n_min + 2)
     return 8 * cells
 
@@ -261,6 +262,87 @@ def check_program_memory(size: int, horizon: int, n_max: int) -> None:
             "grows with the fourth power of horizon plus history), use a shorter history (--as-of, or drop the oldest orders), "
             "or run on a larger machine"
         )
+
+
+@dataclass(frozen=True)
+class Chances:
+    """The part of the program that does not depend on the margin, shared by the programs of several order values.
+
+    For i = 1..horizon, on the states reachable with i or more quarters left: ``purchase_after[i]`` is ``d^i f_i``,
+    ``silent_after[i]`` is ``d^i s_i`` (rho > 0 only), ``orders_ahead[i]`` is ``sum_{l<=i} d^l f_l`` and
+    ``pieces_ahead[i]`` is ``c sum_{l<=i} d^l (1 - sum_{k<l} f_k)``, so that the plans' margins and costs are
+    ``K_i = m orders_ahead[i] - pieces_ahead[i]`` at any margin m. ``held_buy`` and ``held_silent`` are ``g`` and
+    ``q`` on the whole grid (None with rho 0). Built by :func:`chances`, used by :func:`solve_with`.
+    """
+
+    process: Process
+    piece_cost: float
+    discount: float
+    horizon: int
+    n_max: int
+    b_max: int
+    n_min: int
+    x_top: int
+    log_moment: np.ndarray
+    log_alive: np.ndarray
+    purchase_after: list
+    silent_after: list
+    orders_ahead: list
+    pieces_ahead: list
+    held_buy: np.ndarray | None
+    held_silent: np.ndarray | None
+
+    def reach(self, h: int) -> _Reach:
+        """The states reachable with h quarters left (see :func:`solve`)."""
+        shape = self.log_moment.shape
+        b_last = min(self.b_max + self.horizon - h + 1, shape[0] - 2) if self.process.rho > 0 else shape[0] - 2
+        last = self.n_max + self.horizon - h
+        return _Reach(max(self.n_min + self.horizon - h - 1, 0), last, min(last + 1, self.x_top + self.horizon - h + 1), b_last)
+
+
+def chances(process: Process, piece_cost: float, discount: float, horizon: int, n_max: int, b_max: int, n_min: int = 0, x_max: int | None = None) -> Chances:
+    """The margin-free tables of :func:`solve` for these states (its arguments less the margin).
+
+    ``f_i`` and ``s_i`` are products of one-quarter chances along n, built up over i in running tables updated in
+    place; the i-th tables keep only the states reachable with i or more quarters left. Their columns start at
+    ``n_min`` (the first n reachable with at most horizon - 1 quarters left): column j is quarter n_min + j.
+    """
+    rho = float(process.rho)
+    check_program_memory(program_bytes(horizon, n_max, b_max, n_min, x_max, rho), horizon, n_max)
+    # Held quarters add to b; with rho = 0 nothing is learnt from them but n still grows.
+    b_grid = b_max + 1 + (horizon if rho > 0 else 0)
+    n_grid = n_max + horizon + 1
+    x_top = n_max if x_max is None else x_max
+    # x never exceeds the largest x asked about plus one per quarter ahead (and one more for x + 1).
+    log_moment = log_moment_grid(process, n_grid + 1, b_grid + 1, x_top + horizon + 3)
+    log_alive = log_alive_ahead(process.gamma, process.delta, log_moment.shape[2], horizon + 1)
+    tables = Chances(process, piece_cost, discount, horizon, n_max, b_max, n_min, x_top, log_moment, log_alive, [None], [None], [None], [None], None, None)
+    mailed_buy = one_quarter_chance(log_moment, log_alive, 1, 0)  # f_1
+    mailed_silent = one_quarter_chance(log_moment, log_alive, 0, 0)  # s_1
+    later = (slice(None), slice(None), slice(n_min, None))
+    no_purchase_yet = np.ones_like(log_moment[later])  # 1 - sum_{l<i} f_l
+    orders, pieces = np.zeros_like(no_purchase_yet), np.zeros_like(no_purchase_yet)
+    still_silent = np.ones_like(no_purchase_yet)  # s_{i-1}
+    first_purchase = np.empty_like(no_purchase_yet)  # f_i
+    scratch = np.empty_like(no_purchase_yet)
+    for i in range(1, horizon + 1):
+        kept_reach = tables.reach(min(i, horizon - 1))
+        kept = (slice(0, kept_reach.b_last + 1), slice(0, kept_reach.x_last + 1), slice(0, kept_reach.last + 1 - n_min))
+        _times_shifted(still_silent, mailed_buy[later], i - 1, first_purchase)  # f_i = s_{i-1} f_1(n + i - 1)
+        np.multiply(first_purchase, discount**i, out=scratch)
+        orders += scratch
+        np.multiply(no_purchase_yet, discount**i * piece_cost, out=scratch)
+        pieces += scratch
+        no_purchase_yet -= first_purchase
+        tables.purchase_after.append(first_purchase[kept] * discount**i)
+        tables.orders_ahead.append(orders[kept].copy())
+        tables.pieces_ahead.append(pieces[kept].copy())
+        _times_shifted(still_silent, mailed_silent[later], i - 1, still_silent)  # s_i = s_{i-1} s_1(n + i - 1)
+        if rho > 0:
+            tables.silent_after.append(still_silent[kept] * discount**i)
+    if rho > 0:
+        tables = dataclasses.replace(tables, held_buy=rho * mailed_buy, held_silent=one_quarter_chance(log_moment, log_alive, 0, 1))  # g, q
+    return tables
 
 
 def solve(
@@ -284,61 +366,29 @@ def solve(
 
     How: the chances ``f_i`` and ``s_i`` and the plans' margins and costs,
     ``K_J = sum_{i<=J} d^i [m f_i - c (1 - sum_{l<i} f_l)]``, do not depend on h, so
-    they are tabulated once (``f_i`` and ``s_i`` as products of one-quarter chances
-    along n). Then for each h the J-th plan's value is
+    they are tabulated once (:func:`chances`; the margin-free parts of K_J too, so that
+    programs at several order values share them, :func:`solve_with`). Then for each h the J-th plan's value is
     ``K_J + sum_{i<=J} d^i f_i W_{h-i}(n+i, x+1, b) + d^J s_J H_{h-J}(n+J, x, b)``,
     built up over J and maximised as it goes, a few numpy operations over the
     reachable part of the grid per (h, J), in blocks of b that two threads share.
     :mod:`lapsewise.decide.reference` computes the same tables state by state.
     """
+    return solve_with(chances(process, piece_cost, discount, horizon, n_max, b_max, n_min, x_max), margin)
+
+
+def solve_with(prepared: Chances, margin: float) -> Program:
+    """:func:`solve` at margin ``margin`` on tables built by :func:`chances` (which may serve several margins)."""
+    process, discount, horizon, n_min = prepared.process, prepared.discount, prepared.horizon, prepared.n_min
     rho = float(process.rho)
-    check_program_memory(program_bytes(horizon, n_max, b_max, n_min, x_max, rho), horizon, n_max)
-    # Held quarters add to b; with rho = 0 nothing is learnt from them but n still grows.
-    b_grid = b_max + 1 + (horizon if rho > 0 else 0)
-    n_grid = n_max + horizon + 1
-    x_top = n_max if x_max is None else x_max
-    # x never exceeds the largest x asked about plus one per quarter ahead (and one more for x + 1).
-    log_moment = log_moment_grid(process, n_grid + 1, b_grid + 1, x_top + horizon + 3)
+    log_moment = prepared.log_moment
     shape = log_moment.shape
-    log_alive = log_alive_ahead(process.gamma, process.delta, shape[2], horizon + 1)
-
-    def reach(h: int) -> _Reach:
-        b_last = min(b_max + horizon - h + 1, shape[0] - 2) if rho > 0 else shape[0] - 2
-        last = n_max + horizon - h
-        return _Reach(max(n_min + horizon - h - 1, 0), last, min(last + 1, x_top + horizon - h + 1), b_last)
-
-    # The tables below are read only at n >= n_min (the first n reachable with at most horizon - 1 quarters
-    # left), so they start there: their column j is quarter n_min + j. The i-th is read only with i or more
-    # quarters left, so it keeps only the states reachable then. Running tables are updated in place.
-    mailed_buy = one_quarter_chance(log_moment, log_alive, 1, 0)  # f_1
-    mailed_silent = one_quarter_chance(log_moment, log_alive, 0, 0)  # s_1
-    later = (slice(None), slice(None), slice(n_min, None))
-    purchase_after, silent_after, known_part = [None], [None], [None]  # d^i f_i, d^i s_i, K_i
-    no_purchase_yet = np.ones_like(log_moment[later])  # 1 - sum_{l<i} f_l
-    margins_and_costs = np.zeros_like(no_purchase_yet)
-    still_silent = np.ones_like(no_purchase_yet)  # s_{i-1}
-    first_purchase = np.empty_like(no_purchase_yet)  # f_i
-    scratch = np.empty_like(no_purchase_yet)
-    for i in range(1, horizon + 1):
-        kept_reach = reach(min(i, horizon - 1))
-        kept = (slice(0, kept_reach.b_last + 1), slice(0, kept_reach.x_last + 1), slice(0, kept_reach.last + 1 - n_min))
-        _times_shifted(still_silent, mailed_buy[later], i - 1, first_purchase)  # f_i = s_{i-1} f_1(n + i - 1)
-        np.multiply(first_purchase, discount**i * margin, out=scratch)
-        margins_and_costs += scratch
-        np.multiply(no_purchase_yet, discount**i * piece_cost, out=scratch)
-        margins_and_costs -= scratch
-        no_purchase_yet -= first_purchase
-        purchase_after.append(first_purchase[kept] * discount**i)
-        known_part.append(margins_and_costs[kept].copy())
-        _times_shifted(still_silent, mailed_silent[later], i - 1, still_silent)  # s_i = s_{i-1} s_1(n + i - 1)
-        if rho > 0:
-            silent_after.append(still_silent[kept] * discount**i)
-    del no_purchase_yet, margins_and_costs, still_silent, first_purchase, scratch
-    if rho > 0:
-        held_buy = rho * mailed_buy  # g
-        held_silent = one_quarter_chance(log_moment, log_alive, 0, 1)  # q
+    purchase_after, silent_after = prepared.purchase_after, prepared.silent_after
+    known_part = [None] + [margin * orders - pieces for orders, pieces in zip(prepared.orders_ahead[1:], prepared.pieces_ahead[1:])]  # K_i
+    held_buy, held_silent = prepared.held_buy, prepared.held_silent
+    reach = prepared.reach
+    x_top, b_max = prepared.x_top, prepared.b_max
     first_n = [reach(h).first for h in range(horizon)]
-    band = n_max - n_min + 2  # the reachable band of n, the same width for every h
+    band = prepared.n_max - n_min + 2  # the reachable band of n, the same width for every h
     after_purchase = [np.zeros((shape[0], shape[1], band))]
     hold_throughout = [np.zeros((shape[0], shape[1], band))]
     with workers() as pool:
@@ -392,4 +442,4 @@ def solve(
             for rows, block in zip(blocks, pool.map(best_plan, blocks)):  # two blocks at a time
                 at(values, now.first, rows=rows)[...] = block
             after_purchase.append(values)
-    return Program(process, margin, piece_cost, discount, horizon, log_moment, log_alive, after_purchase, hold_throughout, tuple(first_n))
+    return Program(process, margin, prepared.piece_cost, discount, horizon, log_moment, prepared.log_alive, after_purchase, hold_throughout, tuple(first_n))

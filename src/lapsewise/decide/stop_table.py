@@ -19,7 +19,7 @@ import pandas as pd
 from lapsewise.data.histories import mailed_silent_histories
 from lapsewise.decide.decisions import Decisions, decide
 from lapsewise.decide.order_values import SpendBand, spend_bands
-from lapsewise.decide.program import decision_process, solve
+from lapsewise.decide.program import chances, decision_process, solve_with
 from lapsewise.files.policy_file import Economics
 from lapsewise.model.churn import ChurnFit
 from lapsewise.model.posterior import posterior
@@ -82,8 +82,11 @@ def build_stop_table(
     post = posterior(process, histories)
     alive, p_buy = post.alive_now[histories.inverse], post.p_buy[histories.inverse]
 
+    # The bands' programs share the tables that do not depend on the margin.
+    shared = chances(process, economics.piece_cost, economics.discount, horizon, n_max=2 * horizon, b_max=0, n_min=0, x_max=horizon)
+
     def band_decisions(band: SpendBand) -> Decisions:
-        program = solve(process, economics.margin(band.order_value), economics.piece_cost, economics.discount, horizon, n_max=2 * horizon, b_max=0, n_min=0, x_max=horizon)
+        program = solve_with(shared, economics.margin(band.order_value))
         return decide(program, t_x + k, x, np.zeros_like(x), alive)
 
     row_frames, cell_frames = [], []

@@ -15,7 +15,7 @@ import numpy as np
 from scipy import special
 
 from lapsewise.data.histories import Histories, mailed_silent_histories
-from lapsewise.model.churn import evaluate, expand, log_unmailed_factor
+from lapsewise.model.churn import Expansion, evaluate, expand, log_unmailed_factor
 from lapsewise.model.moments import log_survival
 from lapsewise.model.seasons import evaluate_seasonal, expand_seasonal, purchase_factor
 from lapsewise.model.process import Process
@@ -55,14 +55,16 @@ class Posterior:
         return np.asarray(self.seasons)[(self.next_season[:, None] + np.arange(quarters)[None, :]) % 4]
 
 
-def posterior(process: Process, histories: Histories) -> Posterior:
+def posterior(process: Process, histories: Histories, expansion: Expansion | None = None) -> Posterior:
     """P(alive), P(buy next quarter if mailed) and the log-likelihood of each distinct history.
 
     A seasonal process needs histories compressed with seasons (:func:`lapsewise.data.histories.compress`).
+    ``expansion`` is :func:`~lapsewise.model.churn.expand` of the (plain) histories when the caller has it: it does
+    not depend on the parameters, so posteriors under many draws of them share one.
     """
     if process.seasonal:
         return _seasonal_posterior(process, histories)
-    expansion = expand(histories)
+    expansion = expand(histories) if expansion is None else expansion
     log_l, moments = evaluate(expansion, process)
     unmailed = log_unmailed_factor(histories, process.rho)
     n = histories.n.astype(float)
