@@ -286,7 +286,7 @@ def targets(stages: dict[str, Stage], floor: float, fit: dict, solves: list[Stag
     for name in (f"lapsewise mail-list (subprocess, {DRAWS} draws)", "lapsewise mail-list --plug-in (subprocess)"):
         command = stages.get(name) or stages["sum of mail-list stages"]
         rows.append(("mail-list within 3x floor", f"{command.seconds / floor:.1f}x ({command.seconds:.1f} s, {command.name})", _verdict(command.seconds / floor, TARGET_RATIO)))
-    commands = [s for s in stages.values() if s.name.endswith("(subprocess)")] or [stages["sum of mail-list stages"]]
+    commands = [s for s in stages.values() if "(subprocess" in s.name] or [stages["sum of mail-list stages"]]
     peak = max(commands, key=lambda s: s.peak_mb)
     rows.append(("peak memory under 4 GB", f"{peak.peak_mb:,.0f} MB ({peak.name})", _verdict(peak.peak_mb, TARGET_PEAK_MB)))
     after = fit["after_compression_seconds"]
