@@ -270,3 +270,33 @@ def test_deciding_on_the_average_over_draws_earns_at_least_the_plug_in_decision(
     total, error = differences.sum(), differences.std(ddof=1) * np.sqrt(len(differences))
     assert total >= -2 * error, f"averaged minus plug-in {total:.2f} (se {error:.2f})"
     assert (differences != 0).any()  # the two decisions do differ on some replications
+
+
+def test_draws_that_would_not_fit_in_memory_are_refused_before_any_work(monkeypatch):
+    monkeypatch.setattr(pipeline, "available_memory", lambda: 10_000_000)  # 10 MB free
+    with pytest.raises(InputError, match=r"--draws 1000: .* use --draws 6 or fewer, or --plug-in"):
+        pipeline.check_draws_memory(1000, 100_000, 2)
+    pipeline.check_draws_memory(6, 100_000, 2)  # 9.6 MB: fits
+
+
+def test_a_seasonal_model_draws_its_multipliers_and_its_stop_table_takes_ranges():
+    from builders import seasonal_panel
+    from lapsewise.model.fitted import fit_model
+
+    model = fit_model(seasonal_panel(3000, 2))
+    covariance = model.churn.covariance
+    reference = model.churn.seasons.index(1.0)
+    assert f"season_{reference + 1}" not in covariance.parameters  # held at 1 by the scaling: no error, not drawn
+    assert {f"season_{q + 1}" for q in range(4) if q != reference} <= set(covariance.parameters)
+    drawn = np.array([m.churn.seasons for m in model_draws(model, 60, 1).models])
+    assert drawn.max() <= 1.0 and (drawn[:, reference] == 1.0).all()
+    spread = drawn.std(axis=0)
+    i = covariance.parameters.index("rho")
+    assert all(spread[q] > 0 for q in range(4) if q != reference)
+    for q in range(4):
+        if q != reference and model.churn.seasons[q] < 0.8:  # far from the cap at 1: the spread is the standard error's
+            assert_allclose(spread[q], model.churn.std_errors[f"season_{q + 1}"], rtol=0.35)
+    assert covariance.matrix[i, i] > 0
+    policy = Policy(Economics(0.45, 4.0, 0.9, 0.10, 4), POLICY.versions, Segments(spend_bands=1), "test")
+    table = pipeline.stop_table(model, policy, draws=3, seed=1)
+    assert table.draws == 3 and table.rows["agreement"].between(0, 1).all()

@@ -30,7 +30,7 @@ from lapsewise.decide.order_values import spend_bands, typical_order_value
 from lapsewise.decide.program import check_unmailed_purchases, decision_process, program_bytes, solve_with, workers
 from lapsewise.decide.stop_table import StopTable, build_stop_table, with_ranges, with_sensitivity
 from lapsewise.errors import InputError
-from lapsewise.machine import available_memory
+from lapsewise.machine import available_memory, gigabytes
 from lapsewise.evaluate.policies import Simulation, simulate_policies
 from lapsewise.files.inputs import ID_COLUMN, load_attributes, load_control_cell, load_id_list
 from lapsewise.files.tables import Reading
@@ -173,6 +173,8 @@ def value_customers(
     draw's difference from that mean (:func:`~lapsewise.budget.values.averaged_values`).
     """
     economics = policy.economics
+    if draws:
+        check_draws_memory(len(draws), panel.customers, len(policy.versions))
     with workers() as pool:
         summary_job = pool.submit(summarize, panel)
         histories = compress(panel)
@@ -188,6 +190,22 @@ def value_customers(
     else:
         spread = None
     return customer_values(panel.customer_ids, summary, policy, histories, post, point, suppressed, attribute, spread)
+
+
+def check_draws_memory(draws: int, customers: int, versions: int) -> None:
+    """Refuse, before any work, draws whose per-customer values would not fit in the memory this machine has free.
+
+    The values keep each draw's difference for every customer and version (4 bytes each) for the percentiles, with
+    room for one copy as they are taken.
+    """
+    size = 2 * 4 * draws * customers * versions
+    free = available_memory()
+    if size > free:
+        fits = max(int(free // (2 * 4 * customers * versions)), 0)
+        raise InputError(
+            f"--draws {draws}: keeping every draw's value for {customers:,} customers and {versions} version(s) needs about "
+            f"{gigabytes(size)} of memory and {gigabytes(free)} is free; use --draws {fits} or fewer, or --plug-in"
+        )
 
 
 def _state_values(model: Model, policy: Policy, histories, summary: CustomerSummary, pool, budget_price: float, expansion=None):
