@@ -300,3 +300,18 @@ def test_a_seasonal_model_draws_its_multipliers_and_its_stop_table_takes_ranges(
     policy = Policy(Economics(0.45, 4.0, 0.9, 0.10, 4), POLICY.versions, Segments(spend_bands=1), "test")
     table = pipeline.stop_table(model, policy, draws=3, seed=1)
     assert table.draws == 3 and table.rows["agreement"].between(0, 1).all()
+
+
+def test_the_ranges_are_sampling_error_only_and_miss_the_truth_of_a_world_the_model_leaves_out():
+    """Out of the model's world: seasonal demand with mailing aimed at the peak (the setting of SEASONAL_TRUTH). A fit
+    without seasons credits the peak's orders to the mailing and its rho draws sit far below the true 0.6; with seasons
+    they cover it. The ranges measure how sure the fit is of its own model, not whether the model is right."""
+    from builders import SEASONAL_TRUTH, seasonal_panel
+    from lapsewise.model.fitted import fit_model
+
+    panel = seasonal_panel(6000, 3)
+    for seasons, covers in ((False, False), (True, True)):
+        model = fit_model(panel, seasons=seasons)
+        rhos = np.array([m.churn.rho for m in model_draws(model, 200, 5).models])
+        low, high = np.quantile(rhos, RANGE)
+        assert (low <= SEASONAL_TRUTH["rho"] <= high) == covers, f"seasons={seasons}: rho range {low:.3f}-{high:.3f}"
