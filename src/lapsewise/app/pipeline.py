@@ -185,10 +185,9 @@ def value_customers(
         states, values, post = _state_values(model, policy, histories, summary, pool, budget_price, expansion)
         point = values[states.inverse]
         drawn = [_state_values(fitted, policy, histories, summary, pool, budget_price, expansion) for fitted in (draws.models if draws else ())]
+    spread = None
     if draws:
-        point, spread = averaged_values(point, [values[states_d.inverse] for states_d, values, _ in drawn])
-    else:
-        spread = None
+        point, spread = averaged_values(point, [draw_values[draw_states.inverse] for draw_states, draw_values, _ in drawn])
     return customer_values(panel.customer_ids, summary, policy, histories, post, point, suppressed, attribute, spread)
 
 

@@ -345,7 +345,7 @@ def print_stop_table(console: Console, table, model) -> None:
             row = rows.loc[(band.label, x, t_x)]
             optimal, breakeven = int(row.stop_after), int(row.breakeven_stop_after)
             extra = "-" if optimal < 0 or breakeven < 0 else f"{optimal - breakeven:+d}"
-            spread = [_stop_range_text(int(row.stop_after_low), int(row.stop_after_high), horizon), f"{row.agreement:.0%}"] if table.draws else []
+            spread = [_stop_range_text(int(row.stop_after_low), int(row.stop_after_high)), f"{row.agreement:.0%}"] if table.draws else []
             compare.add_row(f"{x}, {t_x}", _stop_text(optimal, horizon), *spread, _stop_text(breakeven, horizon), extra)
         console.print(compare)
         one_time = rows.loc[(band.label, 0, 0)]
@@ -391,7 +391,7 @@ def print_stop_sensitivity(console: Console, sensitivity) -> None:
         )
 
 
-def _stop_range_text(low: int, high: int, horizon: int) -> str:
+def _stop_range_text(low: int, high: int) -> str:
     """The range of a stop point over the draws, in silent quarters: one number when the ends agree, else low-high
     ("all" for mailed throughout the horizon)."""
     low_text, high_text = ("all" if v < 0 else str(v) for v in (low, high))

@@ -33,6 +33,7 @@ each segment and reports their own values.
 
 from __future__ import annotations
 
+import dataclasses
 import time
 import warnings
 from dataclasses import dataclass
@@ -45,8 +46,8 @@ import pulp
 from lapsewise.budget.segments import categorical, grouped, segment_codes
 from lapsewise.budget.values import CustomerValues
 from lapsewise.errors import PlanError
-from lapsewise.model.uncertainty import RANGE
 from lapsewise.files.policy_file import Policy
+from lapsewise.model.uncertainty import RANGE
 
 CHUNKS = 40
 GAP_TOLERANCE = 1e-9  # CBC's relative optimality gap: the plan is the optimum of its model
@@ -466,9 +467,10 @@ def make_plan(values: CustomerValues, policy: Policy, budget: float | None, fron
     frontier = None
     if frontier_points:
         frontier = budget_frontier(problem, frontier_points, budget)
-    setup = float(problem.setup_cost[solution.used].sum())
-    drawn = float(report["expected_profit"].sum() - setup) + values.drawn_offsets(assigned.version) if values.draws else None
-    return Plan(budget, solution, report, shadow, frontier, assigned.version, setup, assigned.rule, drawn)
+    chosen = Plan(budget, solution, report, shadow, frontier, assigned.version, float(problem.setup_cost[solution.used].sum()), assigned.rule)
+    if values.draws:  # the plan's value under each draw: its expected value plus the draw's offset on the customers mailed
+        chosen = dataclasses.replace(chosen, drawn_profits=chosen.expected_profit + values.drawn_offsets(assigned.version))
+    return chosen
 
 
 def budget_frontier(problem: PlanProblem, points: int, budget: float | None = None) -> pd.DataFrame:

@@ -137,10 +137,10 @@ def with_ranges(point: StopTable, drawn: list[StopTable], notes: tuple[str, ...]
     A stop point of -1 (mailed throughout the horizon) counts as later than any other. The percentiles are taken
     outward (the draw at or below the 5th, at or above the 95th), so the range holds at least 90% of the draws.
     """
-    horizon = point.economics.horizon_quarters
-    rows = point.rows.copy()
     if not drawn:
         return point
+    horizon = point.economics.horizon_quarters
+    rows = point.rows.copy()
     points = np.stack([table.stop_points for table in drawn])
     later = np.where(points < 0, horizon + 1, points)
     low = np.quantile(later, RANGE[0], axis=0, method="lower")
