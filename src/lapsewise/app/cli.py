@@ -149,7 +149,8 @@ DrawsOption = typer.Option(
     DEFAULT_DRAWS, "--draws", min=0, max=1000,
     help="Draws of the parameters from the fit's standard errors (normal on log and logit scales); 0 uses the estimates alone.",
 )
-DrawSeedOption = typer.Option(1, "--seed", min=0, max=2**32 - 1, help="Seed of the parameter draws (0 to 4294967295).")
+DEFAULT_DRAW_SEED = 1
+DrawSeedOption = typer.Option(DEFAULT_DRAW_SEED, "--seed", min=0, max=2**32 - 1, help="Seed of the parameter draws (0 to 4294967295).")
 PlugInOption = typer.Option(False, "--plug-in", help="Decide at the parameter estimates alone (no draws): faster, blind to how sure they are.")
 
 
@@ -436,6 +437,8 @@ def control_cell_command(
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
     seed: int = typer.Option(DEFAULT_SEED, "--seed", min=0, max=2**32 - 1, help=f"Seed of the cell's random draw (0 to 4294967295; default {DEFAULT_SEED})."),
+    draws: int = DrawsOption,
+    plug_in: bool = PlugInOption,
     columns: dict | None = None,
     json_output: bool = JsonOption,
     force: bool = ForceOption,
@@ -445,9 +448,13 @@ def control_cell_command(
     check_writable(out, force)
     pipeline.check_precision(precision)
     console = _console(json_output)
+    draws = 0 if plug_in else draws
     with render.progress(console, 2, not json_output) as step:
-        with step("Reading the files and valuing a mailing to every customer"):
-            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides)
+        with step(_valuing_step(draws)):
+            # The parameter draws take mail-list's default seed, so the customers worth mailing are the same as its.
+            inputs = pipeline.plan_inputs(
+                model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, DEFAULT_DRAW_SEED
+            )
         with step("Sizing and drawing the control cell"):
             cell = pipeline.control_cell(inputs, precision, seed)
             save_csv(out, cell.rows(), force)
