@@ -5,12 +5,12 @@ import pytest
 from numpy.testing import assert_allclose
 
 from builders import PROCESS, SPEND, small_panel
-from lapsewise.budget.values import band_program, band_values, customer_order_values, valued_states
+from lapsewise.budget.values import band_values, customer_order_values, value_chances, valued_states
 from lapsewise.data.histories import compress
 from lapsewise.data.summary import summarize
 from lapsewise.decide.decisions import decide
 from lapsewise.decide.order_values import spend_bands
-from lapsewise.decide.program import solve
+from lapsewise.decide.program import solve, solve_with
 from lapsewise.files.policy_file import Economics, Policy, Segments, Version
 from lapsewise.model.posterior import posterior
 
@@ -27,7 +27,7 @@ def test_each_state_is_valued_as_a_program_solved_for_it_alone(versions):
     rng = np.random.default_rng(0)
     for band in range(3):
         members = states.in_band(band)
-        program = band_program(PROCESS, policy, bands[band].order_value, states, members)
+        program = solve_with(value_chances(PROCESS, policy, states, members), policy.economics.margin(bands[band].order_value))
         values = band_values(program, policy, states, members, alive[states.history[members]])
         for row in rng.choice(np.flatnonzero(members), 5, replace=False):
             n, x, b = int(states.n[row]), int(states.x[row]), int(states.b[row])

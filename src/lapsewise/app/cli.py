@@ -145,13 +145,21 @@ OrdersArgument = typer.Argument(..., help="Orders file (CSV or Parquet): custome
 ForceOption = typer.Option(False, "--force", help="Overwrite the output file if it exists.")
 JsonOption = typer.Option(False, "--json", help="Print machine-readable JSON instead of tables.")
 DEFAULT_DRAWS = 20
-DrawsOption = typer.Option(
+DEFAULT_DRAW_SEED = 1
+_DRAWS = ("draws", int, typer.Option(
     DEFAULT_DRAWS, "--draws", min=0, max=1000,
     help="Draws of the parameters from the fit's standard errors (normal on log and logit scales); 0 uses the estimates alone.",
-)
-DEFAULT_DRAW_SEED = 1
-DrawSeedOption = typer.Option(DEFAULT_DRAW_SEED, "--seed", min=0, max=2**32 - 1, help="Seed of the parameter draws (0 to 4294967295).")
-PlugInOption = typer.Option(False, "--plug-in", help="Decide at the parameter estimates alone (no draws): faster, blind to how sure they are.")
+))
+_DRAW_SEED = ("draw_seed", int, typer.Option(DEFAULT_DRAW_SEED, "--seed", min=0, max=2**32 - 1, help="Seed of the parameter draws (0 to 4294967295)."))
+_PLUG_IN = ("plug_in", bool, typer.Option(False, "--plug-in", help="Decide at the parameter estimates alone (no draws): faster, blind to how sure they are."))
+parameter_draws = option_group("drawing", [_DRAWS, _DRAW_SEED, _PLUG_IN])
+parameter_draws_seeded_by_default = option_group("drawing", [_DRAWS, _PLUG_IN])
+"""For a command whose --seed means something else: the draws take the default seed (mail-list's, by default)."""
+
+
+def _drawn(drawing: dict) -> tuple[int, int]:
+    """(draws, seed) from a command's draw options: none with --plug-in; the default seed where the command has no --seed for them."""
+    return (0 if drawing["plug_in"] else drawing["draws"]), drawing.get("draw_seed", DEFAULT_DRAW_SEED)
 
 
 NoSeasonsOption = typer.Option(False, "--no-seasons", help="Fit the model without multipliers by quarter of the year.")
@@ -262,20 +270,21 @@ PolicyOption = typer.Option(..., "--policy", help="Policy file (TOML); see polic
 
 @app.command("stop-table")
 @economics_overrides
+@parameter_draws
 def stop_table(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     policy_file: Path = PolicyOption,
-    draws: int = DrawsOption,
-    seed: int = DrawSeedOption,
     sensitivity: bool = typer.Option(
         False, "--sensitivity", help="Also count the stop points that move when each parameter is two standard errors lower or higher (two tables per parameter)."
     ),
     json_output: bool = JsonOption,
     overrides: dict | None = None,
+    drawing: dict | None = None,
 ) -> None:
     """When to stop mailing a silent customer: the optimal stop point beside the breakeven rule's, with its range over draws of the parameters."""
     from lapsewise.model.fitted import load_model
 
+    draws, seed = _drawn(drawing)
     model = load_model(model_file)
     policy = pipeline.read_policy(policy_file, overrides)
     console = _console(json_output)
@@ -336,6 +345,7 @@ SegmentColumnOption = typer.Option(None, "--segment-column", help="Column of the
 @app.command()
 @column_names
 @economics_overrides
+@parameter_draws
 def plan(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     orders: Path = OrdersArgument,
@@ -348,16 +358,14 @@ def plan(
     segment_column: Optional[str] = SegmentColumnOption,
     frontier: bool = typer.Option(False, "--frontier", help="Also show expected value over a range of budgets."),
     recurring: bool = RecurringOption,
-    draws: int = DrawsOption,
-    seed: int = DrawSeedOption,
-    plug_in: bool = PlugInOption,
     columns: dict | None = None,
     json_output: bool = JsonOption,
     overrides: dict | None = None,
+    drawing: dict | None = None,
 ) -> None:
     """Spread a fixed mail budget across segments and versions (an integer program)."""
     console = _console(json_output)
-    draws = 0 if plug_in else draws
+    draws, seed = _drawn(drawing)
     with render.progress(console, 2, not json_output) as step:
         with step(_valuing_step(draws)):
             inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, seed)
@@ -382,6 +390,7 @@ def plan(
 @app.command("mail-list")
 @column_names
 @economics_overrides
+@parameter_draws
 def mail_list_command(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     orders: Path = OrdersArgument,
@@ -394,17 +403,15 @@ def mail_list_command(
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
     recurring: bool = RecurringOption,
-    draws: int = DrawsOption,
-    seed: int = DrawSeedOption,
-    plug_in: bool = PlugInOption,
     columns: dict | None = None,
     force: bool = ForceOption,
     overrides: dict | None = None,
+    drawing: dict | None = None,
 ) -> None:
     """Write this quarter's mail list: one row per customer with the decision."""
     check_writable(out, force)
     console = _console()
-    draws = 0 if plug_in else draws
+    draws, seed = _drawn(drawing)
     with render.progress(console, 3) as step:
         with step(_valuing_step(draws)):
             inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, seed)
@@ -425,6 +432,7 @@ def mail_list_command(
 @app.command("control-cell")
 @column_names
 @economics_overrides
+@parameter_draws_seeded_by_default
 def control_cell_command(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     orders: Path = OrdersArgument,
@@ -437,23 +445,22 @@ def control_cell_command(
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
     seed: int = typer.Option(DEFAULT_SEED, "--seed", min=0, max=2**32 - 1, help=f"Seed of the cell's random draw (0 to 4294967295; default {DEFAULT_SEED})."),
-    draws: int = DrawsOption,
-    plug_in: bool = PlugInOption,
     columns: dict | None = None,
     json_output: bool = JsonOption,
     force: bool = ForceOption,
     overrides: dict | None = None,
+    drawing: dict | None = None,
 ) -> None:
     """Draw a random no-mail control cell among this quarter's mailable customers, sized to estimate rho to +-PRECISION."""
     check_writable(out, force)
     pipeline.check_precision(precision)
     console = _console(json_output)
-    draws = 0 if plug_in else draws
+    draws, draw_seed = _drawn(drawing)
     with render.progress(console, 2, not json_output) as step:
         with step(_valuing_step(draws)):
-            # The parameter draws take mail-list's default seed, so the customers worth mailing are the same as its.
+            # The parameter draws take mail-list's default seed (--seed is the cell's), so the customers worth mailing are its.
             inputs = pipeline.plan_inputs(
-                model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, DEFAULT_DRAW_SEED
+                model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, draw_seed
             )
         with step("Sizing and drawing the control cell"):
             cell = pipeline.control_cell(inputs, precision, seed)
@@ -471,6 +478,7 @@ def control_cell_command(
 @app.command()
 @column_names
 @economics_overrides
+@parameter_draws
 def report(
     model_file: Path = typer.Argument(..., metavar="MODEL", help="Model file written by 'lapsewise fit'."),
     orders: Path = OrdersArgument,
@@ -480,19 +488,17 @@ def report(
     mailings: Optional[Path] = MailingsOption,
     as_of: Optional[str] = AsOfOption,
     suppress: Optional[Path] = SuppressOption,
-    draws: int = DrawsOption,
-    seed: int = DrawSeedOption,
-    plug_in: bool = PlugInOption,
     columns: dict | None = None,
     force: bool = ForceOption,
     overrides: dict | None = None,
+    drawing: dict | None = None,
 ) -> None:
     """Write an HTML report with a figure per result: base, lapse curve, stop table, budget frontier, backtest, policies."""
     from lapsewise.app import report as report_page
 
     check_writable(out, force)
     console = _console()
-    draws = 0 if plug_in else draws
+    draws, seed = _drawn(drawing)
     with render.progress(console, 2) as step:
         with step("Valuing every customer" + (f" (at {draws} draws of the parameters)" if draws else "") + ", solving the stop table and plan, backtesting and simulating"):
             results = report_page.collect(model_file, orders, policy_file, budget, mailings, as_of, suppress, columns, overrides, draws, seed)

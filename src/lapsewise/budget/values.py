@@ -5,7 +5,8 @@ which already includes what an order buys in later quarters; with versions, one
 value per version. A customer's value depends only on their distinct history
 and the spend band of their expected order value, so the work is done once per
 distinct (history, band) pair (:func:`valued_states`), one program per band
-(:func:`band_program`, :func:`band_values`), and spread back to the customers
+(the bands sharing its margin-free tables, :func:`value_chances`; then
+:func:`~lapsewise.decide.program.solve_with` and :func:`band_values`), and spread back to the customers
 (:func:`customer_values`). The stages are pure; which of them run side by side
 is the pipeline's business (:mod:`lapsewise.app.pipeline`).
 """
@@ -22,7 +23,7 @@ from lapsewise.data.histories import Histories
 from lapsewise.data.summary import CustomerSummary
 from lapsewise.decide.decisions import hold_now_value, version_mail_value
 from lapsewise.decide.order_values import SpendBand, band_index
-from lapsewise.decide.program import Chances, Program, chances, program_bytes, solve_with
+from lapsewise.decide.program import Chances, Program, chances, program_bytes
 from lapsewise.files.policy_file import Policy
 from lapsewise.model.posterior import Posterior
 from lapsewise.model.process import Process
@@ -140,13 +141,9 @@ def value_chances(process: Process, policy: Policy, states: ValuedStates, member
     return chances(process, future_piece, economics.discount, economics.horizon_quarters, **_band_extent(states, members))
 
 
-def band_program(process: Process, policy: Policy, order_value: float, states: ValuedStates, members: np.ndarray, budget_price: float = 0.0) -> Program:
-    """The stop-rule program at a band's order value, solved for the states of its members (no more)."""
-    return solve_with(value_chances(process, policy, states, members, budget_price), policy.economics.margin(order_value))
-
 
 def band_program_bytes(process: Process, policy: Policy, states: ValuedStates, members: np.ndarray) -> int:
-    """The memory :func:`band_program` takes for these members."""
+    """The memory one band's program takes for these members (its tables and recursion, as if not shared)."""
     return program_bytes(policy.economics.horizon_quarters, rho=float(process.rho), **_band_extent(states, members))
 
 

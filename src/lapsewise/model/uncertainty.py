@@ -126,9 +126,9 @@ def draw_parameters(estimates: dict[str, float], covariance: Covariance, draws: 
     names = [name for name in covariance.parameters if name in estimates]
     index = [covariance.parameters.index(name) for name in names]
     matrix = covariance.matrix[np.ix_(index, index)]
-    z = rng.standard_normal((draws, len(names)))
     if not names:
         return [dict(estimates) for _ in range(draws)]
+    z = rng.standard_normal((draws, len(names)))
     eigenvalues, eigenvectors = np.linalg.eigh(matrix)
     root = eigenvectors * np.sqrt(np.clip(eigenvalues, 0.0, None))[None, :]
     offsets = z @ root.T
