@@ -152,12 +152,27 @@ def test_plan_json_has_its_keys_and_is_stable(demo_dir):
     assert first.returncode == 0, first.stderr
     assert first.stdout == second.stdout
     data = json.loads(first.stdout)
-    for key in ("budget", "spent", "expected_profit", "shadow_price", "segments"):
+    for key in ("budget", "spent", "expected_profit", "shadow_price", "segments", "value_precision"):
         assert key in data
     assert data["spent"] <= 400
+    precision = data["value_precision"]
+    assert set(precision) == {"programs", "certified_share", "largest_bound", "refined", "draw_margins"} and not precision["refined"]
+    assert 0 < precision["certified_share"] <= 1 and precision["programs"] >= 2
     segment = data["segments"][0]
     assert set(segment) == {"segment", "version", "customers", "mailed", "cost", "expected_orders", "expected_profit"}
     assert sum(s["customers"] for s in data["segments"]) == json.loads((demo_dir / "model.json").read_text())["customers"]
+
+
+def test_certified_values_prove_every_value_and_say_so(demo_dir):
+    # --certify-values refines the order values solved until every customer's value is proved within tolerance.
+    common = ("plan", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--policy", POLICY,
+              "--budget", 400, "--horizon-quarters", 8, "--plug-in")
+    plain, certified = run(*common, "--json"), run(*common, "--json", "--certify-values")
+    assert plain.returncode == 0 and certified.returncode == 0, certified.stderr
+    before, after = json.loads(plain.stdout)["value_precision"], json.loads(certified.stdout)["value_precision"]
+    assert after["refined"] and after["certified_share"] == 1.0 and after["programs"] > before["programs"]
+    human = run(*common, "--certify-values")
+    assert "every one proved within 1% (or 0.01)" in " ".join(human.stdout.split())
 
 
 def test_plan_with_versions_and_frontier(demo_dir):

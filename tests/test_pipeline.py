@@ -7,11 +7,10 @@ from numpy.testing import assert_allclose
 from builders import MODEL, POLICY, SPEND, small_panel
 from lapsewise.app import pipeline
 from lapsewise.budget.integer_program import make_plan
-from lapsewise.budget.values import band_values, customer_order_values, customer_values, value_chances, valued_states
+from lapsewise.budget.values import customer_order_values, customer_values, state_values, value_chances, valued_states
 from lapsewise.data.histories import compress
 from lapsewise.data.summary import summarize
-from lapsewise.decide.order_values import spend_bands
-from lapsewise.decide.program import decision_process, solve_with
+from lapsewise.decide.program import decision_process
 from lapsewise.decide.stop_table import build_stop_table
 from lapsewise.files.policy_file import Economics, Policy, Segments
 from lapsewise.model.posterior import posterior
@@ -23,16 +22,12 @@ def test_customer_values_side_by_side_equal_the_stages_in_turn():
     process = decision_process(MODEL.churn, None)
     histories, summary = compress(panel), summarize(panel)
     post = posterior(process, histories)
-    bands = spend_bands(SPEND, POLICY.economics, 3)
-    states = valued_states(histories, bands, customer_order_values(SPEND, POLICY, summary))
-    values = np.zeros((len(states.history), 2))
-    for index, band in enumerate(bands):
-        members = states.in_band(index)
-        program = solve_with(value_chances(process, POLICY, states, members), POLICY.economics.margin(band.order_value))
-        values[members] = band_values(program, POLICY, states, members, post.alive_now[states.history[members]])
-    theirs = customer_values(panel.customer_ids, summary, POLICY, histories, post, values[states.inverse])
+    states = valued_states(histories, POLICY.economics.margin(customer_order_values(SPEND, POLICY, summary)))
+    valued = state_values(value_chances(process, POLICY, states), POLICY, states, lambda: post.alive_now)
+    theirs = customer_values(panel.customer_ids, summary, POLICY, histories, post, valued.values[states.inverse])
     assert_allclose(ours.values, theirs.values, rtol=0, atol=0)
     assert (ours.segment == theirs.segment).all() and np.array_equal(ours.p_buy, theirs.p_buy)
+    assert ours.precision.programs == valued.solved and not ours.precision.refined
 
 
 def test_stop_table_and_plan_side_by_side_equal_them_in_turn():

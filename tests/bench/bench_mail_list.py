@@ -16,8 +16,9 @@ What it does (the data, the floor, the Meter and the table come from bench_fit.p
    --mailings M --policy policies/full-catalog.toml --out LIST.csv``: read model and
    policy, read orders, read mailings, build panel, compress, posterior,
    customer values (which compresses and computes the posterior again, then solves
-   the stop-rule program once per spend band; one of those ``program.solve`` calls
-   is repeated on its own), plan without a budget and with a budget of 200,000,
+   the stop-rule program, with its slopes, at each margin of the grid the
+   customers' own order values are read between; one ``program.solve`` at the
+   customers' states is repeated on its own), plan without a budget and with a budget of 200,000,
    mail list assembly and the CSV write. Then runs ``lapsewise fit`` and
    ``lapsewise mail-list`` as subprocesses (wall time and peak RSS), the latter
    with its default 20 draws of the parameters and with ``--plug-in``.
@@ -55,6 +56,7 @@ from lapsewise.budget import integer_program as plan_module  # noqa: E402
 from lapsewise.budget import values as values_module
 from lapsewise.data import histories as histories_module  # noqa: E402
 from lapsewise.data import panel as panel_module
+from lapsewise.decide import own_margins as own_margins_module
 from lapsewise.decide import program as program_module  # noqa: E402
 from lapsewise.decide import stop_table as stop_table_module
 from lapsewise.files import policy_file  # noqa: E402
@@ -149,18 +151,18 @@ def run_mail_list_stages(meter: Meter, paths: dict[str, Path], meta: dict, refit
             name: stack.enter_context(CountedCalls(module, name, keep_arguments=name in ("chances", "hold_now_value")))
             for module, name in (
                 (pipeline, "compress"), (pipeline, "posterior"), (pipeline, "summarize"), (values_module, "chances"),
-                (pipeline, "solve_with"), (values_module, "hold_now_value"), (values_module, "version_mail_value"),
+                (own_margins_module, "solve_with"), (values_module, "hold_now_value"), (values_module, "version_mail_value"),
             )
         }
         values = meter.run("customer values", pipeline.value_customers, model, panel, policy)
-    meter.stages[-1].note = "inside (the bands' calls run two at a time, so their seconds add up to more than they took): " + ", ".join(
+    meter.stages[-1].note = "inside (the posterior runs beside the first programs, so the seconds add up to more than they took): " + ", ".join(
         f"{name} {counter.seconds:.2f} s" + (f" ({counter.calls} calls)" if counter.calls != 1 else "") for name, counter in parts.items()
     )
-    shared, per_band = parts["chances"], parts["solve_with"]
-    out["solve_calls"] = [(kwargs, seconds) for (_, kwargs), seconds in zip(shared.arguments, shared.durations)] + [("one band", s) for s in per_band.durations]
+    shared, per_margin = parts["chances"], parts["solve_with"]
+    out["solve_calls"] = [(kwargs, seconds) for (_, kwargs), seconds in zip(shared.arguments, shared.durations)] + [("one margin", s) for s in per_margin.durations]
     out["program_states"] = sum(len(args[1]) for args, _ in parts["hold_now_value"].arguments)
     (process_used, piece, discount, horizon), kwargs = shared.arguments[0]
-    meter.run("program.solve (one spend band)", program_module.solve, process_used, MARGIN, piece, discount, horizon, note=f"the bands' states: {_size(kwargs)}", **kwargs)
+    meter.run("program.solve (one margin)", program_module.solve, process_used, MARGIN, piece, discount, horizon, note=f"the customers' states: {_size(kwargs)}", **kwargs)
     out["mail_list_size"] = kwargs
 
     plans = {}

@@ -337,6 +337,10 @@ def _valuing_step(draws: int) -> str:
 RecurringOption = typer.Option(
     False, "--recurring-budget", help="The budget binds every quarter: value later pieces at piece cost plus its shadow price (re-solved until it settles)."
 )
+CertifyOption = typer.Option(
+    False, "--certify-values",
+    help="Refine the order values solved until every customer's value of mailing is proved within 1% (or 0.01) of a program solved at their own order value; slower.",
+)
 SuppressOption = typer.Option(None, "--suppress", help="Suppression list (customer_id column): never mailed.")
 AttributesOption = typer.Option(None, "--attributes", help="Customer attributes file to cross segments with (needs --segment-column).")
 SegmentColumnOption = typer.Option(None, "--segment-column", help="Column of the attributes file to cross segments with.")
@@ -358,6 +362,7 @@ def plan(
     segment_column: Optional[str] = SegmentColumnOption,
     frontier: bool = typer.Option(False, "--frontier", help="Also show expected value over a range of budgets."),
     recurring: bool = RecurringOption,
+    certify: bool = CertifyOption,
     columns: dict | None = None,
     json_output: bool = JsonOption,
     overrides: dict | None = None,
@@ -368,7 +373,7 @@ def plan(
     draws, seed = _drawn(drawing)
     with render.progress(console, 2, not json_output) as step:
         with step(_valuing_step(draws)):
-            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, seed)
+            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, seed, certify)
         with step("Solving the budget integer program"):
             result, recurring_result = pipeline.budget_plan(inputs, budget, recurring, frontier_points=10 if frontier else 0)
     panel = inputs.panel
@@ -376,12 +381,14 @@ def plan(
         suppression = None if inputs.suppression is None else inputs.suppression.to_dict()
         extra = {"mailing_history": panel.mailing_history, "suppression": suppression}
         extra["recurring_budget"] = None if recurring_result is None else recurring_result.to_dict()
+        extra["value_precision"] = inputs.values.precision.to_dict()
         typer.echo(dumps_stable({**result.to_dict(), **extra}), nl=False)
         return
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
     render.print_suppression(console, inputs.suppression)
     render.print_draw_notes(console, inputs.draws.notes() if inputs.draws else ())
+    render.print_value_precision(console, inputs.values.precision)
     render.print_plan(console, result, panel, inputs.values if recurring_result is None else recurring_result.values)
     render.print_recurring_budget(console, recurring_result)
     render.print_caution(console)
@@ -403,6 +410,7 @@ def mail_list_command(
     attributes: Optional[Path] = AttributesOption,
     segment_column: Optional[str] = SegmentColumnOption,
     recurring: bool = RecurringOption,
+    certify: bool = CertifyOption,
     columns: dict | None = None,
     force: bool = ForceOption,
     overrides: dict | None = None,
@@ -414,7 +422,7 @@ def mail_list_command(
     draws, seed = _drawn(drawing)
     with render.progress(console, 3) as step:
         with step(_valuing_step(draws)):
-            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, seed)
+            inputs = pipeline.plan_inputs(model_file, orders, policy_file, mailings, as_of, suppress, attributes, segment_column, columns, overrides, draws, seed, certify)
         with step("Solving the budget integer program"):
             result, recurring_result = pipeline.budget_plan(inputs, budget, recurring)
         with step("Writing the mail list"):
@@ -424,6 +432,7 @@ def mail_list_command(
         console.print(render.ALL_MAILED_NOTE)
     render.print_suppression(console, inputs.suppression)
     render.print_draw_notes(console, inputs.draws.notes() if inputs.draws else ())
+    render.print_value_precision(console, inputs.values.precision)
     render.print_recurring_budget(console, recurring_result)
     render.print_mail_list(console, decision_counts(rows), result, out, int(rows["may_flip"].sum()) if "may_flip" in rows else 0)
     render.print_caution(console)

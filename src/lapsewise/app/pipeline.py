@@ -21,13 +21,13 @@ from lapsewise.budget.control_cell import ControlCell, check_precision, draw_con
 from lapsewise.budget.control_reading import CellCounts, ControlReading, cell_counts, read_control_cell
 from lapsewise.budget.integer_program import Plan, make_plan
 from lapsewise.budget.mail_list import mail_list
-from lapsewise.budget.values import CustomerValues, averaged_values, band_program_bytes, band_values, customer_order_values, customer_values, value_chances, valued_states
+from lapsewise.budget.values import CustomerValues, ValuePrecision, averaged_values, customer_order_values, customer_values, state_values, value_chances, valued_states
 from lapsewise.data.histories import compress
 from lapsewise.data.panel import Panel, panel_from_files
 from lapsewise.data.summary import CustomerSummary, summarize
 from lapsewise.data.suppression import Suppression, match_suppression
-from lapsewise.decide.order_values import spend_bands, typical_order_value
-from lapsewise.decide.program import check_unmailed_purchases, decision_process, program_bytes, solve_with, workers
+from lapsewise.decide.order_values import typical_order_value
+from lapsewise.decide.program import check_unmailed_purchases, decision_process, program_bytes, workers
 from lapsewise.decide.stop_table import StopTable, build_stop_table, with_ranges, with_sensitivity
 from lapsewise.errors import InputError
 from lapsewise.machine import available_memory, gigabytes
@@ -162,15 +162,20 @@ def value_customers(
     attribute: np.ndarray | None = None,
     budget_price: float = 0.0,
     draws: Draws | None = None,
+    certify: bool = False,
 ) -> CustomerValues:
     """Every customer's value of mailing this quarter, per version.
 
     On two workers: the summary beside the compression, then the posterior beside
-    the spend bands' programs (a band's program needs only the band's states; its
-    values wait for the posterior); the programs two at a time when memory allows.
+    the first programs. Each customer is valued at their own margin per order
+    (:mod:`lapsewise.decide.own_margins`): on a grid of margins with a certified
+    bound per value, or, with ``certify``, refined until every value is within 1%
+    (or 0.01 currency units) of a program solved at the customer's own margin.
     ``budget_price`` is added to the cost of every later quarter's piece (a recurring budget's shadow price).
-    With ``draws``, the values are the mean over the drawn models, each valued the same way, and keep each
-    draw's difference from that mean (:func:`~lapsewise.budget.values.averaged_values`).
+    With ``draws``, the values are the mean over the drawn models and keep each
+    draw's difference from that mean (:func:`~lapsewise.budget.values.averaged_values`). A draw's values are
+    the estimates' values plus the draw's difference from them, both read on a coarser grid of margins
+    (:data:`DRAW_GRID_MARGINS`); with ``certify`` every draw is certified on its own instead.
     """
     economics = policy.economics
     if draws:
@@ -182,13 +187,26 @@ def value_customers(
         summary = summary_job.result()
         # The posterior's layout of the histories does not depend on the parameters: the draws share it.
         expansion = expand(histories) if draws else None
-        states, values, post = _state_values(model, policy, histories, summary, pool, budget_price, expansion)
-        point = values[states.inverse]
-        drawn = [_state_values(fitted, policy, histories, summary, pool, budget_price, expansion) for fitted in (draws.models if draws else ())]
-    spread = None
-    if draws:
-        point, spread = averaged_values(point, [draw_values[draw_states.inverse] for draw_states, draw_values, _ in drawn])
-    return customer_values(panel.customer_ids, summary, policy, histories, post, point, suppressed, attribute, spread)
+        states, valued, post = _state_values(model, policy, histories, summary, pool, budget_price, expansion, refine=certify)
+        point = valued.values[states.inverse]
+        spread = None
+        if draws and certify:
+            # Every draw certified too: the draws' values themselves.
+            drawn = [_customer_state_values(fitted, policy, histories, summary, pool, budget_price, expansion, refine=True) for fitted in draws.models]
+            point, spread = averaged_values(point, drawn)
+        elif draws:
+            # Each draw's difference from the estimates' values, both on the draws' coarser grid of margins.
+            coarse = _customer_state_values(model, policy, histories, summary, pool, budget_price, expansion, grid_margins=DRAW_GRID_MARGINS)
+            drawn = [point + (_customer_state_values(fitted, policy, histories, summary, pool, budget_price, expansion, grid_margins=DRAW_GRID_MARGINS) - coarse) for fitted in draws.models]
+            point, spread = averaged_values(point, drawn)
+    precision = ValuePrecision.of(valued, states.inverse, certify, DRAW_GRID_MARGINS if draws and not certify else None)
+    return customer_values(panel.customer_ids, summary, policy, histories, post, point, suppressed, attribute, spread, precision)
+
+
+def _customer_state_values(model: Model, policy: Policy, histories, summary: CustomerSummary, pool, budget_price: float, expansion, **grid) -> np.ndarray:
+    """Every customer's values under ``model`` (:func:`_state_values` spread back to the customers)."""
+    states, valued, _ = _state_values(model, policy, histories, summary, pool, budget_price, expansion, **grid)
+    return valued.values[states.inverse]
 
 
 def check_draws_memory(draws: int, customers: int, versions: int) -> None:
@@ -207,34 +225,24 @@ def check_draws_memory(draws: int, customers: int, versions: int) -> None:
         )
 
 
-def _state_values(model: Model, policy: Policy, histories, summary: CustomerSummary, pool, budget_price: float, expansion=None):
-    """The distinct (history, band) states, their values per version, and the posterior, under ``model``'s parameters
-    (``expansion``: the histories' :func:`~lapsewise.model.churn.expand`, when shared between draws)."""
+DRAW_GRID_MARGINS = 9
+"""Margins each draw of the parameters is solved at: a draw's values enter only as its difference from the estimates'
+values on the same grid (:func:`value_customers`), in which much of a coarser grid's error cancels."""
+
+
+def _state_values(model: Model, policy: Policy, histories, summary: CustomerSummary, pool, budget_price: float, expansion=None, **grid):
+    """The distinct (history, margin) states, their values per version at their own margins
+    (:func:`~lapsewise.budget.values.state_values`, which takes ``grid``'s keywords), and the posterior, under
+    ``model``'s parameters (``expansion``: the histories' :func:`~lapsewise.model.churn.expand`, when shared between
+    draws). The posterior is computed beside the first programs."""
     economics = policy.economics
     process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
     posterior_job = pool.submit(posterior, process, histories, expansion)
-    bands = spend_bands(model.spend, economics, policy.segments.spend_bands)
-    states = valued_states(histories, bands, customer_order_values(model.spend, policy, summary))
-    values = np.empty((len(states.history), len(policy.versions)))
-    members = [states.in_band(index) for index in range(len(bands))]
-    # The bands' programs share the tables that do not depend on the margin, built once for all their states.
-    shared = value_chances(process, policy, states, np.ones(len(states.history), dtype=bool), budget_price)
-
-    def value_band(index: int) -> None:
-        if not members[index].any():
-            return
-        program = solve_with(shared, economics.margin(bands[index].order_value))
-        alive = posterior_job.result().alive_now[states.history[members[index]]]
-        values[members[index]] = band_values(program, policy, states, members[index], alive)
-
-    sizes = [band_program_bytes(process, policy, states, band) for band in members if band.any()]
-    if side_by_side_if_they_fit(sizes) is two_at_a_time:
-        for job in [pool.submit(value_band, index) for index in range(len(bands))]:
-            job.result()
-    else:
-        for index in range(len(bands)):
-            value_band(index)
-    return states, values, posterior_job.result()
+    typical_order_value(model.spend, economics)  # refuses a model without a usable order-value model
+    states = valued_states(histories, economics.margin(customer_order_values(model.spend, policy, summary)))
+    shared = value_chances(process, policy, states, budget_price)
+    valued = state_values(shared, policy, states, lambda: posterior_job.result().alive_now, **grid)
+    return states, valued, posterior_job.result()
 
 
 def plan(values: CustomerValues, policy: Policy, budget: float | None, frontier_points: int = 0) -> Plan:
@@ -286,7 +294,7 @@ def budget_plan(inputs: "PlanInputs", budget: float | None, recurring: bool, fro
         return plan(inputs.values, inputs.policy, budget, frontier_points), None
     if budget is None:
         raise InputError("--recurring-budget: a budget that binds every quarter needs --budget, the quarter's amount")
-    recurring_result = recurring_budget_plan(inputs.model, inputs.panel, inputs.policy, budget, inputs.values, inputs.suppressed, inputs.attribute, inputs.draws)
+    recurring_result = recurring_budget_plan(inputs.model, inputs.panel, inputs.policy, budget, inputs.values, inputs.suppressed, inputs.attribute, inputs.draws, inputs.certify)
     chosen = recurring_result.plan if not frontier_points else plan(recurring_result.values, inputs.policy, budget, frontier_points)
     return chosen, recurring_result
 
@@ -300,6 +308,7 @@ def recurring_budget_plan(
     suppressed: np.ndarray | None = None,
     attribute: np.ndarray | None = None,
     draws: Draws | None = None,
+    certify: bool = False,
 ) -> RecurringBudget:
     """Plan with a budget that binds every quarter: later pieces cost piece cost plus the budget's shadow price.
 
@@ -311,7 +320,7 @@ def recurring_budget_plan(
     price = max(float(plain.shadow_price or 0.0), 0.0)
     prices, current, current_values, settled = [price], plain, values, price == 0.0
     for _ in range(MAX_PRICE_ROUNDS if not settled else 0):
-        current_values = value_customers(model, panel, policy, suppressed, attribute, budget_price=price, draws=draws)
+        current_values = value_customers(model, panel, policy, suppressed, attribute, budget_price=price, draws=draws, certify=certify)
         current = plan(current_values, policy, budget)
         found = max(float(current.shadow_price or 0.0), 0.0)
         settled = abs(found - price) <= max(PRICE_TOLERANCE * price, 0.001)
@@ -336,6 +345,7 @@ class PlanInputs:
     suppression: Suppression | None
     attribute: np.ndarray | None = None
     draws: Draws | None = None
+    certify: bool = False
 
     @property
     def suppressed(self) -> np.ndarray | None:
@@ -355,9 +365,10 @@ def plan_inputs(
     overrides: dict | None,
     draws: int = 0,
     seed: int = 0,
+    certify: bool = False,
 ) -> PlanInputs:
     """Load everything a plan needs and value every customer (the stages, in order), averaged over ``draws`` draws
-    of the parameters (seeded; 0: at the estimates)."""
+    of the parameters (seeded; 0: at the estimates); ``certify`` refines the values until each is certified."""
     model = load_model(model_file)
     policy = read_policy(policy_file, overrides)
     panel = read_panel(orders, mailings, as_of, model.fiscal_year_start, columns)
@@ -366,7 +377,8 @@ def plan_inputs(
     attribute = attribute_values(panel, attributes, segment_column, columns["id_column"], side)
     flags = None if suppression is None else suppression.flags
     drawn = model_draws(model, draws, seed) if draws else None
-    return PlanInputs(model, policy, panel, value_customers(model, panel, policy, flags, attribute, draws=drawn), suppression, attribute, drawn)
+    values = value_customers(model, panel, policy, flags, attribute, draws=drawn, certify=certify)
+    return PlanInputs(model, policy, panel, values, suppression, attribute, drawn, certify)
 
 
 # ---------------------------------------------------------------- the control cell

@@ -375,6 +375,30 @@ def print_draw_notes(console: Console, notes) -> None:
         console.print(f"Draws: {note}.")
 
 
+def print_value_precision(console: Console, precision) -> None:
+    """One line: how close the values at the estimates are to programs solved at each customer's own order value."""
+    if precision is None:
+        return
+    if precision.largest_bound == 0:
+        console.print(f"Values of mailing solved exactly at each of the {precision.programs:,} order values the customers hold.")
+    elif precision.refined and precision.certified == 1.0:
+        console.print(
+            f"Values of mailing at each customer's own order value, from {precision.programs:,} order values solved: every one proved within "
+            "1% (or 0.01) of a program solved at that customer's order value."
+        )
+    else:
+        console.print(
+            f"Values of mailing at each customer's own order value, read between {precision.programs:,} order values solved: "
+            f"{precision.certified:.1%} proved within 1% (or 0.01) of a program solved at that order value, none further than "
+            f"{precision.largest_bound:.2f}; --certify-values proves every one."
+        )
+    if precision.draw_margins:
+        console.print(
+            f"Each draw of the parameters enters as its difference from the values at the estimates, read between {precision.draw_margins} "
+            "order values (measured within about 0.02 of solving every draw in full)."
+        )
+
+
 def print_stop_sensitivity(console: Console, sensitivity) -> None:
     """How many stop points move when each parameter is two standard errors lower or higher."""
     grid = Table(title="Stop points that move with each estimate (two standard errors either way)", title_justify="left")

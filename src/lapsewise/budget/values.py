@@ -3,27 +3,27 @@
 For every customer the program gives ``value_of_mailing = Q(mail) - Q(hold)``,
 which already includes what an order buys in later quarters; with versions, one
 value per version. A customer's value depends only on their distinct history
-and the spend band of their expected order value, so the work is done once per
-distinct (history, band) pair (:func:`valued_states`), one program per band
-(the bands sharing its margin-free tables, :func:`value_chances`; then
-:func:`~lapsewise.decide.program.solve_with` and :func:`band_values`), and spread back to the customers
-(:func:`customer_values`). The stages are pure; which of them run side by side
+and their margin per order (from their own expected order value), so the work is
+done once per distinct (history, margin) pair (:func:`valued_states`), at each
+pair's own margin from programs solved at a few margins that share their
+margin-free tables (:func:`value_chances`, :func:`state_values`), and spread back
+to the customers (:func:`customer_values`). The stages are pure; which of them run side by side
 is the pipeline's business (:mod:`lapsewise.app.pipeline`).
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 
 from lapsewise.budget.segments import segment_labels
-from lapsewise.data.codes import integer_codes
 from lapsewise.data.histories import Histories
 from lapsewise.data.summary import CustomerSummary
 from lapsewise.decide.decisions import hold_now_value, version_mail_value
-from lapsewise.decide.order_values import SpendBand, band_index
-from lapsewise.decide.program import Chances, Program, chances, program_bytes
+from lapsewise.decide.own_margins import OwnMarginValues, own_margin_values
+from lapsewise.decide.program import Chances, chances
 from lapsewise.files.policy_file import Policy
 from lapsewise.model.posterior import Posterior
 from lapsewise.model.process import Process
@@ -49,6 +49,7 @@ class CustomerValues:
     versions: tuple[str, ...]
     responses: np.ndarray
     spread: np.ndarray | None = None
+    precision: ValuePrecision | None = None
 
     @property
     def suppressed_count(self) -> int:
@@ -87,75 +88,107 @@ def customer_order_values(spend: SpendFit | None, policy: Policy, summary: Custo
 
 @dataclass(frozen=True)
 class ValuedStates:
-    """The distinct (history, spend band) pairs to value, their program states, and each customer's pair.
+    """The distinct (history, margin) pairs to value, their program states, and each customer's pair.
 
-    ``history`` and ``band`` index the pair's history and spend band; ``n``, ``x``, ``b``
-    are its program state (quarters observed, repeat purchases, unmailed silent quarters).
+    ``history`` indexes the pair's history and ``margin`` is its margin per order
+    (from the customer's own expected order value); ``n``, ``x``, ``b`` are its
+    program state (quarters observed, repeat purchases, unmailed silent quarters).
     """
 
     history: np.ndarray
-    band: np.ndarray
+    margin: np.ndarray
     n: np.ndarray
     x: np.ndarray
     b: np.ndarray
     inverse: np.ndarray
 
-    def in_band(self, index: int) -> np.ndarray:
-        return self.band == index
 
-
-def valued_states(histories: Histories, bands: tuple[SpendBand, ...], order_values: np.ndarray) -> ValuedStates:
-    """Compress customers into distinct (history, spend band) pairs."""
-    key = histories.inverse * len(bands) + band_index(bands, order_values)
-    distinct, inverse = integer_codes(key, histories.size * len(bands))
-    history = distinct // len(bands)
+def valued_states(histories: Histories, margins: np.ndarray) -> ValuedStates:
+    """Compress customers into distinct (history, margin) pairs: one sort by history, then margin."""
+    margins = np.asarray(margins, dtype=float)
+    order = np.lexsort((margins, histories.inverse))
+    history, margin = histories.inverse[order], margins[order]
+    new = np.ones(len(order), dtype=bool)
+    new[1:] = (history[1:] != history[:-1]) | (margin[1:] != margin[:-1])
+    inverse = np.empty(len(order), dtype=np.int64)
+    inverse[order] = np.cumsum(new) - 1
+    history, margin = history[new], margin[new]
     return ValuedStates(
         history=history,
-        band=distinct % len(bands),
+        margin=margin,
         n=histories.n[history],
         x=histories.x[history],
         b=histories.unmailed_quarters[history],
-        inverse=inverse.ravel(),
+        inverse=inverse,
     )
 
 
-def _band_extent(states: ValuedStates, members: np.ndarray) -> dict[str, int]:
-    """The range of program states a band's members occupy."""
-    return {
-        "n_max": int(states.n[members].max()),
-        "b_max": int(states.b[members].max()),
-        "n_min": int(states.n[members].min()),
-        "x_max": int(states.x[members].max()),
-    }
-
-
-def value_chances(process: Process, policy: Policy, states: ValuedStates, members: np.ndarray, budget_price: float = 0.0) -> Chances:
-    """The margin-free part of the stop-rule program (:func:`~lapsewise.decide.program.chances`) for the states of
-    ``members`` (one band, or several whose programs then share it).
+def value_chances(process: Process, policy: Policy, states: ValuedStates, budget_price: float = 0.0) -> Chances:
+    """The margin-free part of the stop-rule program (:func:`~lapsewise.decide.program.chances`) for these states,
+    shared by the programs at every margin.
 
     Later quarters' pieces cost the full piece's cost plus ``budget_price``, the shadow price of a budget that
     binds every quarter (0: the budget is this quarter's alone).
     """
     economics = policy.economics
     future_piece = reference_piece_cost(policy) + budget_price
-    return chances(process, future_piece, economics.discount, economics.horizon_quarters, **_band_extent(states, members))
+    return chances(
+        process, future_piece, economics.discount, economics.horizon_quarters,
+        n_max=int(states.n.max()), b_max=int(states.b.max()), n_min=int(states.n.min()), x_max=int(states.x.max()),
+    )
 
 
+def state_value_parts(program, policy: Policy, states: ValuedStates, rows: np.ndarray, alive: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """At the given states: the value of mailing each version this quarter (rows, versions) and of holding (rows,)
+    (each with a first axis of two, the bounds from above and below, from a Between's bracket).
 
-def band_program_bytes(process: Process, policy: Policy, states: ValuedStates, members: np.ndarray) -> int:
-    """The memory one band's program takes for these members (its tables and recursion, as if not shared)."""
-    return program_bytes(policy.economics.horizon_quarters, rho=float(process.rho), **_band_extent(states, members))
-
-
-def band_values(program: Program, policy: Policy, states: ValuedStates, members: np.ndarray, alive: np.ndarray) -> np.ndarray:
-    """The value of mailing each version this quarter at the members' states, (members, versions).
-
-    ``alive`` is each member's chance of being alive through quarter n. After this
-    quarter a customer is valued as if mailed with the full piece (response 1).
+    ``alive`` is each row's chance of being alive through quarter n. After this quarter a customer is valued as
+    if mailed with the full piece (response 1). ``program`` is a Program (every row at its margin) or a
+    :class:`~lapsewise.decide.decisions.Between` (each row at its own margin).
     """
-    args = (states.n[members], states.x[members], states.b[members], alive)
+    args = (states.n[rows], states.x[rows], states.b[rows], alive)
     hold = hold_now_value(program, *args)
-    return np.column_stack([version_mail_value(program, *args, v.response, v.piece_cost) - hold for v in policy.versions])
+    return np.stack([version_mail_value(program, *args, v.response, v.piece_cost) for v in policy.versions], axis=-1), hold
+
+
+def state_values(prepared: Chances, policy: Policy, states: ValuedStates, alive: Callable[[], np.ndarray], **grid) -> OwnMarginValues:
+    """Every state's value of mailing each version at its own margin (:func:`~lapsewise.decide.own_margins.own_margin_values`,
+    which takes ``grid``'s keywords).
+
+    ``alive()`` gives every state's chance of being alive through quarter n; it is asked for only once the first
+    program is solved, so that the posterior can be computed beside it.
+    """
+    return own_margin_values(prepared, states.margin, lambda program, rows: state_value_parts(program, policy, states, rows, alive()[states.history[rows]]), **grid)
+
+
+@dataclass(frozen=True)
+class ValuePrecision:
+    """How close the values at the estimates are to programs solved at each customer's own order value.
+
+    ``programs``: margins solved; ``certified``: share of customers whose every value of mailing is proved within
+    1% (or 0.01 currency units, whichever is larger) of such a solve; ``largest_bound``: the largest proved
+    distance (currency units); ``refined``: the grid was refined until every value was certified (with draws, every
+    draw's too); ``draw_margins``: with draws and no refining, the margins each draw's difference from the estimates'
+    values is read between (None otherwise).
+    """
+
+    programs: int
+    certified: float
+    largest_bound: float
+    refined: bool
+    draw_margins: int | None = None
+
+    @classmethod
+    def of(cls, valued: OwnMarginValues, inverse: np.ndarray, refined: bool, draw_margins: int | None = None) -> "ValuePrecision":
+        counts = np.bincount(inverse, minlength=len(valued.bound))
+        certified = float(counts[valued.certified()].sum() / max(counts.sum(), 1))
+        return cls(valued.solved, certified, float(np.max(valued.bound)) if len(valued.bound) else 0.0, refined, draw_margins)
+
+    def to_dict(self) -> dict:
+        return {
+            "programs": self.programs, "certified_share": round(self.certified, 6), "largest_bound": round(self.largest_bound, 6),
+            "refined": self.refined, "draw_margins": self.draw_margins,
+        }
 
 
 def averaged_values(point: np.ndarray, drawn: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
@@ -180,6 +213,7 @@ def customer_values(
     suppressed: np.ndarray | None = None,
     attribute: np.ndarray | None = None,
     spread: np.ndarray | None = None,
+    precision: "ValuePrecision | None" = None,
 ) -> CustomerValues:
     """The customers' values (customers, versions), with the posterior of the distinct histories spread back to them."""
     return CustomerValues(
@@ -192,4 +226,5 @@ def customer_values(
         versions=tuple(v.name for v in policy.versions),
         responses=np.array([v.response for v in policy.versions]),
         spread=spread,
+        precision=precision,
     )

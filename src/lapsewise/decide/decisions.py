@@ -54,6 +54,102 @@ class Decisions:
         return np.maximum(self.mail_value, self.hold_value)
 
 
+SIDES = ("chord", "below", "above", "bracket")
+OUTER = ("slopes", "margins")
+
+
+@dataclass(frozen=True)
+class Between:
+    """The program read at each row's own margin, from programs solved at margins around it.
+
+    Every value the program gives is, state by state, the best of a finite set of
+    plans, and each plan's value is linear in the margin m (its orders times m, less
+    its pieces). As a function of m every value is therefore convex and piecewise
+    linear. ``programs[1]`` and ``programs[2]`` are solved at margins ``m1 < m2`` and
+    ``margin`` holds each row's own margin, in ``[m1, m2]``. For a row at margin m
+    a reading of any table is:
+
+    * ``side="chord"``: the chord through the readings at m1 and m2. It lies above
+      the value and equals it at m1 and m2; this is the estimate.
+    * ``side="below"``: the larger of two lines that lie below a convex function,
+      extended to m. With ``outer="slopes"``, ``programs[0]`` and ``programs[3]``
+      are the slope programs at m1 and m2 (:meth:`~lapsewise.decide.program.Program.slopes`:
+      the chosen plans' discounted orders, a subgradient) and the lines are the
+      tangents there. With ``outer="margins"`` they are the programs solved at the
+      next margins out, ``m0 < m1`` and ``m3 > m2``, and the lines are the secants
+      through (m0, m1) and (m2, m3): a secant of a convex function lies below it
+      outside its own interval. A missing outer program leaves its line out (the
+      chord where neither exists).
+    * ``side="above"``: the chord again.
+    * ``side="bracket"``: both bounds at once, stacked on a new first axis
+      (above, below), so that the decisions read each table once.
+
+    The decisions add readings with nonnegative weights (chances of being alive),
+    except a version whose response is below rho, which gives a belief part a
+    negative weight. For such rows (``negative``) the two bounds swap their
+    readings. Any sum of readings and its best over plans then lies between its
+    ``below`` and ``above`` evaluations, with the ``chord`` evaluation inside.
+    The rows stay in the order the decisions ask about them: every array read for
+    them lines up with ``margin``.
+    """
+
+    programs: tuple
+    margin: np.ndarray
+    side: str = "chord"
+    outer: str = "slopes"
+
+    def __post_init__(self) -> None:
+        if self.side not in SIDES or self.outer not in OUTER:
+            raise ValueError(f"side must be one of {SIDES} and outer one of {OUTER}")
+
+    def __getattr__(self, name: str):
+        # The margin-free parts (discount, piece cost, rho, horizon, the chance grids) are the same in every program.
+        if name in ("discount", "piece_cost", "rho", "horizon", "log_moment", "log_alive", "process"):
+            return getattr(self.programs[1], name)
+        raise AttributeError(name)
+
+    def after_purchase_at(self, h: int, b, x, n) -> np.ndarray:
+        return self.combine([node.after_purchase_at(h, b, x, n) if node is not None else None for node in self.programs])
+
+    def hold_throughout_at(self, h: int, b, x, n) -> np.ndarray:
+        return self.combine([node.hold_throughout_at(h, b, x, n) if node is not None else None for node in self.programs])
+
+    def combine(self, readings: list, block: slice = slice(None), negative: np.ndarray | None = None) -> np.ndarray:
+        """The rows' readings at their own margins from the readings in each program (rows first, as ``margin[block]``;
+        with ``side="bracket"`` a first axis of two more)."""
+        low, high = self.programs[1], self.programs[2]
+        margin = self.margin[block]
+        first, second = readings[1], readings[2]
+        shape = (len(margin),) + (1,) * (np.ndim(first) - 1)
+        step = (margin - low.margin).reshape(shape)
+        chord = first + (second - first) * (step / (high.margin - low.margin))
+        if negative is not None and not np.any(negative):
+            negative = None
+        if self.side == "chord" or (self.side == "above" and negative is None):
+            return chord
+        lines = []
+        beyond = (margin - high.margin).reshape(shape)
+        if self.outer == "slopes":
+            if readings[0] is not None:
+                lines.append(first + readings[0] * step)
+            if readings[3] is not None:
+                lines.append(second + readings[3] * beyond)
+        else:
+            if readings[0] is not None:
+                lines.append(first + (first - readings[0]) * (step / (low.margin - self.programs[0].margin)))
+            if readings[3] is not None:
+                lines.append(second + (readings[3] - second) * (beyond / (self.programs[3].margin - high.margin)))
+        envelope = np.minimum(np.maximum.reduce(lines), chord) if lines else chord
+        if negative is None:
+            above, below = chord, envelope
+        else:
+            swapped = np.asarray(negative).reshape(shape)
+            above, below = np.where(swapped, envelope, chord), np.where(swapped, chord, envelope)
+        if self.side == "bracket":
+            return np.stack([above, below])
+        return above if self.side == "above" else below
+
+
 def _states(n, x, b) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return tuple(np.asarray(v, dtype=np.int64) for v in (n, x, b))
 
@@ -76,33 +172,54 @@ def _stretch_parts(program: Program, n, x, b, horizon: int) -> tuple[np.ndarray,
     keys = (b * program.log_moment.shape[1] + x) * program.log_moment.shape[2] + n
     _, first, inverse = np.unique(keys, return_index=True, return_inverse=True)
     per_alive = _plan_values_per_alive(program, n[first], x[first], b[first], horizon)
-    costs = program.piece_cost * np.concatenate([[0.0], np.cumsum(program.discount ** np.arange(1, horizon + 1))])
-    return per_alive, inverse.ravel(), costs
+    return per_alive, inverse.ravel(), _plan_costs(program, horizon)
 
 
 BEST_PLAN_ROWS = 8192
 """Rows per block in :func:`best_plan`: a block's states x plans arrays stay in the processor's cache."""
 
 
-def best_plan(program: Program, horizon: int, *parts, first: int = 0) -> np.ndarray:
+def best_plan(program, horizon: int, *parts, first: int = 0) -> np.ndarray:
     """The best plan's value, ``max over J >= first`` of the sum over ``parts`` of :func:`stretch_plan_values`.
 
     Each part is ``(n, x, b, alive, total)`` for the same silent customers. The same
     numbers as summing the parts' ``stretch_plan_values`` and taking the maximum
     (the tests compare them), in blocks of rows so that no states x plans array is
-    built for all the states at once.
+    built for all the states at once. ``program`` is a :class:`~lapsewise.decide.program.Program`
+    or a :class:`Between` (each row at its own margin).
     """
-    prepared = [(_stretch_parts(program, n, x, b, horizon), np.asarray(alive, dtype=float), np.asarray(total, dtype=float)) for n, x, b, alive, total in parts]
+    prepared = [(_plan_reader(program, n, x, b, horizon), np.asarray(alive, dtype=float), np.asarray(total, dtype=float)) for n, x, b, alive, total in parts]
     rows = len(prepared[0][1])
-    out = np.empty(rows)
+    costs = _plan_costs(program, horizon)[first:]
+    out = None
     for start in range(0, rows, BEST_PLAN_ROWS):
         block = slice(start, start + BEST_PLAN_ROWS)
         summed = None
-        for (per_alive, inverse, costs), alive, total in prepared:
-            value = alive[block, None] * per_alive[inverse[block], first:] - total[block, None] * costs[None, first:]
+        for read, alive, total in prepared:
+            value = alive[block, None] * read(block, alive[block] < 0)[..., first:] - total[block, None] * costs[None, :]
             summed = value if summed is None else summed + value
-        out[block] = summed.max(axis=1)
-    return out
+        if out is None:  # a Between's bracket adds a first axis
+            out = np.empty(summed.shape[:-2] + (rows,))
+        out[..., block] = summed.max(axis=-1)
+    return out if out is not None else np.empty(0)
+
+
+def _plan_costs(program, horizon: int) -> np.ndarray:
+    """``costs_J``: the pieces of "mail J quarters, then hold" paid whether the customer is alive or not, J = 0..horizon."""
+    return program.piece_cost * np.concatenate([[0.0], np.cumsum(program.discount ** np.arange(1, horizon + 1))])
+
+
+def _plan_reader(program, n, x, b, horizon: int):
+    """A function of (block of rows, rows whose weight is negative) giving those rows' ``A_J`` (J = 0..horizon).
+
+    ``A_J`` is computed once per distinct state; a :class:`Between` computes it in each of its programs and combines
+    the rows' readings at their own margins.
+    """
+    if isinstance(program, Between):
+        readers = [_plan_reader(node, n, x, b, horizon) if node is not None else None for node in program.programs]
+        return lambda block, negative: program.combine([read(block, negative) if read else None for read in readers], block, negative)
+    per_alive, inverse, _ = _stretch_parts(program, n, x, b, horizon)
+    return lambda block, negative: per_alive[inverse[block]]
 
 
 def _plan_values_per_alive(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, horizon: int) -> np.ndarray:

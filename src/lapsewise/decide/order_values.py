@@ -1,9 +1,12 @@
-"""The order values the stop-rule program is solved at: the policy's fixed value, or bands of the spend model.
+"""The order values the stop table shows: the policy's fixed value, or bands of the spend model.
 
 The program's margin is ``gross_margin * order_value - order_cost``, so it is
-solved once per order value. With ``order_value`` in the policy there is one;
-otherwise the fitted gamma-gamma population of mean order values is cut into
-bands of equal share, each solved at its median.
+solved once per order value. The stop table shows one table per band: with
+``order_value`` in the policy there is one; otherwise the fitted gamma-gamma
+population of mean order values is cut into bands of equal share, each solved
+at its median and labelled with it. The values of mailing behind the plan and
+the mail list use each customer's own order value instead
+(:mod:`lapsewise.decide.own_margins`).
 """
 
 from __future__ import annotations
@@ -37,7 +40,7 @@ def spend_bands(spend: SpendFit | None, economics: Economics, count: int) -> tup
     With ``order_value`` in the policy there is one band at that value. Otherwise
     the fitted gamma-gamma population of mean order values is cut into ``count``
     bands of equal share, each represented by its median (its share's midpoint
-    quantile). A customer is put in the band of their own expected order value.
+    quantile). The bands are for display: the stop table shows one table per band.
     """
     if economics.order_value is not None:
         return (SpendBand("all", 0.0, math.inf, economics.order_value),)
@@ -68,9 +71,3 @@ def typical_order_value(spend: SpendFit | None, economics: Economics) -> float:
     if spend is None or not (spend.q > 1):
         raise InputError(NO_ORDER_VALUE)
     return float(spend.population_mean)
-
-
-def band_index(bands: tuple[SpendBand, ...], order_values: np.ndarray) -> np.ndarray:
-    """Which band each expected order value falls in."""
-    edges = np.array([band.low for band in bands[1:]])
-    return np.searchsorted(edges, np.nan_to_num(order_values, nan=bands[0].order_value), side="right")

@@ -162,10 +162,27 @@ class Program:
     after_purchase: list[np.ndarray]
     hold_throughout: list[np.ndarray]
     first_n: tuple[int, ...]
+    after_purchase_slope: list[np.ndarray] | None = None
+    hold_throughout_slope: list[np.ndarray] | None = None
 
     @property
     def rho(self) -> float:
         return float(self.process.rho)
+
+    def slopes(self) -> "Program":
+        """The program of the tables' slopes in the margin (solved with ``slopes=True``).
+
+        Every table is the best plan's value ``m * orders - pieces``; its slope in m
+        is the plan's discounted orders, so the slope tables follow the recursion
+        with margin 1 and piece cost 0 on the chosen plans. Anything the decisions
+        build from the tables, read in this program, is its slope in m.
+        """
+        if self.after_purchase_slope is None:
+            raise ValueError("the program was solved without slopes")
+        return dataclasses.replace(
+            self, margin=1.0, piece_cost=0.0, after_purchase=self.after_purchase_slope, hold_throughout=self.hold_throughout_slope,
+            after_purchase_slope=None, hold_throughout_slope=None,
+        )
 
     def after_purchase_at(self, h: int, b, x, n) -> np.ndarray:
         """``W_h(n, x, b)``."""
@@ -376,8 +393,12 @@ def solve(
     return solve_with(chances(process, piece_cost, discount, horizon, n_max, b_max, n_min, x_max), margin)
 
 
-def solve_with(prepared: Chances, margin: float) -> Program:
-    """:func:`solve` at margin ``margin`` on tables built by :func:`chances` (which may serve several margins)."""
+def solve_with(prepared: Chances, margin: float, slopes: bool = False) -> Program:
+    """:func:`solve` at margin ``margin`` on tables built by :func:`chances` (which may serve several margins).
+
+    With ``slopes`` the program also keeps each table's slope in the margin: the discounted orders of the plan
+    chosen at each state (:meth:`Program.slopes`), found beside the values at about twice the work.
+    """
     process, discount, horizon, n_min = prepared.process, prepared.discount, prepared.horizon, prepared.n_min
     rho = float(process.rho)
     log_moment = prepared.log_moment
@@ -391,6 +412,8 @@ def solve_with(prepared: Chances, margin: float) -> Program:
     band = prepared.n_max - n_min + 2  # the reachable band of n, the same width for every h
     after_purchase = [np.zeros((shape[0], shape[1], band))]
     hold_throughout = [np.zeros((shape[0], shape[1], band))]
+    after_slope = [np.zeros((shape[0], shape[1], band))] if slopes else None
+    hold_slope = [np.zeros((shape[0], shape[1], band))] if slopes else None
     with workers() as pool:
         for h in range(1, horizon):
             now = reach(h)
@@ -414,18 +437,31 @@ def solve_with(prepared: Chances, margin: float) -> Program:
                 part += at(held_silent, 0) * solved(hold_throughout, 1, 0, 1)
                 part *= discount
             hold_throughout.append(held)
+            if slopes:
+                held_slope = np.zeros((shape[0], shape[1], band))
+                if rho > 0:
+                    part = at(held_slope, now.first)
+                    np.add(solved(after_slope, 1, 1), 1.0, out=part)
+                    part *= at(held_buy, 0)
+                    part += at(held_silent, 0) * solved(hold_slope, 1, 0, 1)
+                    part *= discount
+                hold_slope.append(held_slope)
             # A state exists only where x + b <= n <= last, and is reached only where x + b <= x_top + b_max plus one
             # per quarter gone (each quarter adds at most one purchase or one held quarter), one more for the x + 1
             # and b + 1 that later tables read. So a block of b from b0 on needs x only up to the smaller bound less b0.
             edges = np.linspace(0, now.b_last + 1, B_BLOCKS + 1).astype(int)
             reached = x_top + b_max + horizon - h + 1
 
-            def best_plan(rows: tuple[int, int, int]) -> np.ndarray:
-                """W_h on a block of b: the best of the plans J = 0..h, built up over J."""
+            def best_plan(rows: tuple[int, int, int]) -> tuple[np.ndarray, np.ndarray | None]:
+                """W_h on a block of b: the best of the plans J = 0..h, built up over J (and its slope, with slopes)."""
                 chosen = at(held, now.first, rows=rows).copy()  # J = 0: hold throughout
                 after_purchases = np.zeros_like(chosen)  # sum_{i<=J} d^i f_i W_{h-i}(n+i, x+1, b)
                 candidate = np.empty_like(chosen)
                 tail = np.empty_like(chosen)
+                if slopes:
+                    chosen_slope = at(held_slope, now.first, rows=rows).copy()
+                    slope_after_purchases = np.zeros_like(chosen)
+                    candidate_slope = np.empty_like(chosen)
                 for i in range(1, h + 1):
                     np.multiply(at(purchase_after[i], n_min, rows=rows), solved(after_purchase, i, 1, rows=rows), out=candidate)
                     after_purchases += candidate
@@ -433,13 +469,31 @@ def solve_with(prepared: Chances, margin: float) -> Program:
                     if rho > 0 and i < h:
                         np.multiply(at(silent_after[i], n_min, rows=rows), solved(hold_throughout, i, rows=rows), out=tail)
                         candidate += tail
+                    if slopes:
+                        # The same plan's slope: orders_ahead for K_i, the slopes of the tables it reads.
+                        np.multiply(at(purchase_after[i], n_min, rows=rows), solved(after_slope, i, 1, rows=rows), out=candidate_slope)
+                        slope_after_purchases += candidate_slope
+                        np.add(slope_after_purchases, at(prepared.orders_ahead[i], n_min, rows=rows), out=candidate_slope)
+                        if rho > 0 and i < h:
+                            np.multiply(at(silent_after[i], n_min, rows=rows), solved(hold_slope, i, rows=rows), out=tail)
+                            candidate_slope += tail
+                        np.copyto(chosen_slope, candidate_slope, where=candidate > chosen)
                     np.maximum(chosen, candidate, out=chosen)
-                return np.where(np.isfinite(at(log_moment, 0, rows=rows)), chosen, 0.0)
+                exists = np.isfinite(at(log_moment, 0, rows=rows))
+                return np.where(exists, chosen, 0.0), (np.where(exists, chosen_slope, 0.0) if slopes else None)
 
             blocks = [(b0, b1, min(now.x_last, now.last - b0, reached - b0) + 1) for b0, b1 in zip(edges[:-1], edges[1:])]
             blocks = [rows for rows in blocks if rows[1] > rows[0] and rows[2] > 0]
             values = np.zeros((shape[0], shape[1], band))
-            for rows, block in zip(blocks, pool.map(best_plan, blocks)):  # two blocks at a time
+            value_slopes = np.zeros((shape[0], shape[1], band)) if slopes else None
+            for rows, (block, block_slope) in zip(blocks, pool.map(best_plan, blocks)):  # two blocks at a time
                 at(values, now.first, rows=rows)[...] = block
+                if slopes:
+                    at(value_slopes, now.first, rows=rows)[...] = block_slope
             after_purchase.append(values)
-    return Program(process, margin, prepared.piece_cost, discount, horizon, log_moment, prepared.log_alive, after_purchase, hold_throughout, tuple(first_n))
+            if slopes:
+                after_slope.append(value_slopes)
+    return Program(
+        process, margin, prepared.piece_cost, discount, horizon, log_moment, prepared.log_alive, after_purchase, hold_throughout, tuple(first_n),
+        after_slope, hold_slope,
+    )
