@@ -56,6 +56,21 @@ def test_score_writes_one_row_per_customer(demo_dir, tmp_path):
     assert len(lines) - 1 == model["customers"]
 
 
+def test_score_with_a_policy_adds_the_plans_figures_and_says_which_is_which(demo_dir, tmp_path):
+    out = tmp_path / "scores.csv"
+    common = ("score", demo_dir / "model.json", demo_dir / "orders.csv", "--mailings", demo_dir / "mailings.csv", "--policy", POLICY)
+    result = run(*common, "--horizon", 4, "--out", out)
+    assert result.returncode == 0, result.stderr
+    scores = pd.read_csv(out)
+    assert list(scores.columns[-2:]) == ["expected_orders_planned", "dert_planned"]
+    assert scores["expected_orders_planned"].sum() < scores["expected_orders"].sum()
+    text = " ".join(result.stdout.split())
+    assert "assume a piece every quarter" in text and "expected_orders_planned and dert_planned follow the stop rule's own plan" in text
+    # The plan looks horizon_quarters ahead: a longer window is refused in one line.
+    refused = run(*common, "--horizon", 400, "--out", tmp_path / "other.csv")
+    assert refused.returncode == 2 and "--horizon 400" in refused.stderr and "Traceback" not in refused.stderr
+
+
 def test_model_argument_errors_are_one_line(tmp_path, demo_dir):
     bad = tmp_path / "bad.json"
     bad.write_text("{}")

@@ -17,7 +17,7 @@ from lapsewise.budget.values import customer_order_values, state_value_parts, st
 from lapsewise.data.histories import compress
 from lapsewise.data.summary import summarize
 from lapsewise.decide.decisions import Between, decide
-from lapsewise.decide.own_margins import _first_grid, own_margin_values
+from lapsewise.decide.own_margins import margin_grid, own_margin_values
 from lapsewise.decide.program import chances, solve, solve_with
 from lapsewise.files.policy_file import Economics, Policy, Segments, Version
 from lapsewise.model.churn import fit_churn
@@ -139,7 +139,7 @@ def test_without_bounds_the_values_are_chords_and_no_slopes_are_solved():
     policy, states, alive, prepared = _setting(VERSIONS["one"])
     parts = lambda program, rows: state_value_parts(program, policy, states, rows, alive[states.history[rows]])  # noqa: E731
     chords = own_margin_values(prepared, states.margin, parts, grid_margins=5, bounds=False)
-    assert chords.solved == len(_first_grid(states.margin, 5)) and np.isnan(chords.bound).all()
+    assert chords.solved == len(margin_grid(states.margin, 5)) and np.isnan(chords.bound).all()
     bracketed = own_margin_values(prepared, states.margin, parts, grid_margins=5)
     # The chord lies above the middle of the bracket (the value of mailing and of holding are both bracketed, so
     # their difference need not), and both lie within the bracket's half-width of each other.

@@ -214,6 +214,9 @@ def score(
     as_of: Optional[str] = typer.Option(None, "--as-of", help="Last day to use (YYYY-MM-DD); default: the model's as-of date."),
     horizon: int = typer.Option(4, "--horizon", min=1, max=400, help="Quarters ahead for expected purchases."),
     annual_discount_rate: float = typer.Option(0.10, "--annual-discount-rate", min=0.0, max=10.0, help="Annual rate for DERT."),
+    policy_file: Optional[Path] = typer.Option(
+        None, "--policy", help="Policy file (TOML): also give expected orders and DERT under the stop rule's own plan."
+    ),
     columns: dict | None = None,
     force: bool = ForceOption,
 ) -> None:
@@ -225,11 +228,15 @@ def score(
     model = load_model(model_file)
     panel = pipeline.read_panel(orders, mailings, as_of or model.as_of, model.fiscal_year_start, columns)
     scores = score_customers(model, panel, horizon, annual_discount_rate)
+    planned = None
+    if policy_file is not None:
+        planned = pipeline.planned_scores(model, panel, policy_file, horizon, annual_discount_rate)
+        scores = scores.assign(expected_orders_planned=planned.expected_orders, dert_planned=planned.dert)
     save_csv(out, scores, force, nullable=SCORE_NULLABLE)
     console = _console()
     if not panel.mailing_history:
         console.print(render.ALL_MAILED_NOTE)
-    render.print_scores(console, score_totals(scores), horizon, out)
+    render.print_scores(console, score_totals(scores), horizon, out, planned)
     render.print_caution(console)
 
 

@@ -21,6 +21,7 @@ from lapsewise.budget.control_cell import ControlCell, check_precision, draw_con
 from lapsewise.budget.control_reading import CellCounts, ControlReading, cell_counts, read_control_cell
 from lapsewise.budget.integer_program import Plan, make_plan
 from lapsewise.budget.mail_list import mail_list
+from lapsewise.budget.planned import PlannedTotals, planned_totals
 from lapsewise.budget.values import CustomerValues, ValuePrecision, averaged_values, customer_order_values, customer_values, state_values, value_chances, valued_states
 from lapsewise.data.histories import compress
 from lapsewise.data.panel import Panel, panel_from_files
@@ -39,7 +40,7 @@ from lapsewise.model.churn import expand
 from lapsewise.model.fitted import Model, fit_model, load_model
 from lapsewise.model.process import Process
 from lapsewise.model.posterior import posterior
-from lapsewise.model.scores import lapse_curves
+from lapsewise.model.scores import lapse_curves, quarterly_rate
 from lapsewise.model.uncertainty import Draws, model_draws, shifted_models
 
 
@@ -136,6 +137,11 @@ def stop_table(model: Model, policy: Policy, draws: int = 0, seed: int = 0, sens
     if sensitivity:
         point = with_sensitivity(point, [(name, error, table(lower), table(higher)) for name, error, lower, higher in shifted_models(model)])
     return point
+
+
+def planned_scores(model: Model, panel: Panel, policy_file: str | Path, quarters: int, annual_discount_rate: float) -> PlannedTotals:
+    """Expected orders in the next ``quarters`` quarters and DERT (at ``annual_discount_rate``) under the stop rule's plan."""
+    return planned_totals(model, panel, read_policy(policy_file), quarters, quarterly_rate(annual_discount_rate))
 
 
 def simulation(model: Model, policy: Policy, customers: int, quarters: int | None, seed: int) -> Simulation:

@@ -248,20 +248,30 @@ def print_backtest(console: Console, result) -> None:
     console.print(f"The model predicted {result.predicted:,.0f} repeat purchases against {result.actual:,.0f} actual ({gap:+.1%}).")
 
 
-def print_scores(console: Console, totals: dict, horizon: int, out) -> None:
-    """The scores at a glance (:func:`lapsewise.model.scores.score_totals`)."""
+def print_scores(console: Console, totals: dict, horizon: int, out, planned=None) -> None:
+    """The scores at a glance (:func:`lapsewise.model.scores.score_totals`), with the stop rule's plan beside
+    mailing every quarter when ``planned`` (:class:`~lapsewise.budget.planned.PlannedTotals`) is given."""
     table = Table(title="Scores written", title_justify="left")
-    for column in ("Customers", "Mean P(alive) (%)", "Mean P(order next q) (%)", f"Expected orders, next {horizon} q", "Mean DERT (orders)"):
-        table.add_column(column, justify="right")
-    table.add_row(
-        f"{totals['customers']:,}",
-        f"{100 * totals['mean_p_alive']:.1f}",
-        f"{100 * totals['mean_p_buy']:.2f}",
-        f"{totals['expected_orders']:,.0f}",
-        f"{totals['mean_dert']:.3f}",
-    )
+    columns = ["Customers", "Mean P(alive) (%)", "Mean P(order next q) (%)", f"Expected orders, next {horizon} q", "Mean DERT (orders)"]
+    if planned is not None:
+        columns.insert(0, "Mailing")
+    for column in columns:
+        table.add_column(column, justify="left" if column == "Mailing" else "right")
+    common = [f"{totals['customers']:,}", f"{100 * totals['mean_p_alive']:.1f}", f"{100 * totals['mean_p_buy']:.2f}"]
+    every = [f"{totals['expected_orders']:,.0f}", f"{totals['mean_dert']:.3f}"]
+    if planned is None:
+        table.add_row(*common, *every)
+    else:
+        table.add_row("a piece every quarter", *common, *every)
+        table.add_row("the stop rule's plan", *common, f"{totals['expected_orders_planned']:,.0f}", f"{totals['mean_dert_planned']:.3f}")
     console.print(table)
     console.print(f"{totals['likely_alive']:,} of {totals['customers']:,} customers are more likely alive than not; one row per customer is in {out}.")
+    if planned is not None:
+        console.print(
+            f"expected_orders and dert assume a piece every quarter, for every future quarter; expected_orders_planned and dert_planned "
+            f"follow the stop rule's own plan over the policy's {planned.horizon} quarters (no orders counted beyond them), each customer's "
+            f"plan solved at the nearest of {len(planned.margins)} margins per order."
+        )
 
 
 def print_truth_comparison(console: Console, comparison) -> None:

@@ -108,6 +108,10 @@ class Between:
             return getattr(self.programs[1], name)
         raise AttributeError(name)
 
+    def order_weight(self, elapsed: int) -> np.ndarray:
+        """Each row's own margin: every order counts the same, whenever it comes."""
+        return self.margin
+
     def after_purchase_at(self, h: int, b, x, n) -> np.ndarray:
         return self.combine([node.after_purchase_at(h, b, x, n) if node is not None else None for node in self.programs])
 
@@ -179,19 +183,20 @@ BEST_PLAN_ROWS = 8192
 """Rows per block in :func:`best_plan`: a block's states x plans arrays stay in the processor's cache."""
 
 
-def best_plan(program, horizon: int, *parts, first: int = 0) -> np.ndarray:
+def best_plan(program, horizon: int, *parts, first: int = 0, choice: bool = False):
     """The best plan's value, ``max over J >= first`` of the sum over ``parts`` of :func:`stretch_plan_values`.
 
     Each part is ``(n, x, b, alive, total)`` for the same silent customers. The same
     numbers as summing the parts' ``stretch_plan_values`` and taking the maximum
     (the tests compare them), in blocks of rows so that no states x plans array is
     built for all the states at once. ``program`` is a :class:`~lapsewise.decide.program.Program`
-    or a :class:`Between` (each row at its own margin).
+    or a :class:`Between` (each row at its own margin). With ``choice`` (a Program only) it returns the best J too.
     """
     prepared = [(_plan_reader(program, n, x, b, horizon), np.asarray(alive, dtype=float), np.asarray(total, dtype=float)) for n, x, b, alive, total in parts]
     rows = len(prepared[0][1])
     costs = _plan_costs(program, horizon)[first:]
     out = None
+    chosen = np.zeros(rows, dtype=np.int64) if choice else None
     for start in range(0, rows, BEST_PLAN_ROWS):
         block = slice(start, start + BEST_PLAN_ROWS)
         summed = None
@@ -201,7 +206,10 @@ def best_plan(program, horizon: int, *parts, first: int = 0) -> np.ndarray:
         if out is None:  # a Between's bracket adds a first axis
             out = np.empty(summed.shape[:-2] + (rows,))
         out[..., block] = summed.max(axis=-1)
-    return out if out is not None else np.empty(0)
+        if choice:
+            chosen[block] = summed.argmax(axis=-1) + first
+    out = out if out is not None else np.empty(0)
+    return (out, chosen) if choice else out
 
 
 def _plan_costs(program, horizon: int) -> np.ndarray:
@@ -225,7 +233,8 @@ def _plan_reader(program, n, x, b, horizon: int):
 def _plan_values_per_alive(program: Program, n: np.ndarray, x: np.ndarray, b: np.ndarray, horizon: int) -> np.ndarray:
     """``A_J`` for J = 0..horizon at states (n, x, b): each plan's margins, values after a purchase and the pieces
     a purchase saves, for a customer alive through n (the pieces a dead customer also gets are ``costs_J``)."""
-    d, margin, cost = program.discount, program.margin, program.piece_cost
+    d, cost = program.discount, program.piece_cost
+    start = program.horizon - horizon  # quarters from the program's decision to this plan's start
     here = program.log_moment[b, x, n]
     values = np.empty((len(n), horizon + 1))
     values[:, 0] = program.hold_throughout_at(horizon, b, x, n) if horizon < len(program.hold_throughout) else _hold_throughout(program, n, x, b, horizon)
@@ -234,7 +243,7 @@ def _plan_values_per_alive(program: Program, n: np.ndarray, x: np.ndarray, b: np
     for i in range(1, horizon + 1):
         first_purchase = np.exp(program.log_alive[n, i] + program.log_moment[b, x + 1, n + i] - here)  # f_i
         after = program.after_purchase_at(horizon - i, b, x + 1, n + i) if horizon - i < len(program.after_purchase) else 0.0
-        plan += d**i * (first_purchase * (margin + after) + cost * purchased)
+        plan += d**i * (first_purchase * (program.order_weight(start + i) + after) + cost * purchased)
         purchased += first_purchase
         if i < horizon:
             silent_alive = np.exp(program.log_alive[n, i] + program.log_moment[b, x, n + i] - here)  # s_i
@@ -253,7 +262,8 @@ def _hold_throughout(program: Program, n, x, b, horizon: int) -> np.ndarray:
     buy = rho * np.exp(program.log_alive[n, 1] + program.log_moment[b, x + 1, n + 1] - here)
     silent = np.exp(program.log_alive[n, 1] + program.log_moment[b + 1, x, n + 1] - here)
     after = program.after_purchase_at(horizon - 1, b, x + 1, n + 1)
-    return d * (buy * (program.margin + after) + silent * program.hold_throughout_at(horizon - 1, b + 1, x, n + 1))
+    margin = program.order_weight(program.horizon - horizon + 1)
+    return d * (buy * (margin + after) + silent * program.hold_throughout_at(horizon - 1, b + 1, x, n + 1))
 
 
 def decide(program: Program, n, x, b, alive) -> Decisions:
@@ -270,19 +280,56 @@ def decide(program: Program, n, x, b, alive) -> Decisions:
 
 def hold_now_value(program: Program, n, x, b, alive) -> np.ndarray:
     """Value of holding this quarter (an unprompted purchase, chance ``alive * g``, or silence), then the best plan."""
+    return _hold_now(program, n, x, b, alive)[0]
+
+
+def _hold_now(program, n, x, b, alive, weighted: Program | None = None) -> tuple[np.ndarray, np.ndarray | None]:
+    """:func:`hold_now_value`, and with ``weighted`` the weighted orders of the plan it chose (see :func:`planned_orders`)."""
     n, x, b = _states(n, x, b)
     alive = np.asarray(alive, dtype=float)
     horizon = program.horizon
     if horizon == 1:
-        return alive * _hold_throughout(program, n, x, b, 1)
+        return alive * _hold_throughout(program, n, x, b, 1), (alive * _hold_throughout(weighted, n, x, b, 1) if weighted else None)
     d, rho = program.discount, program.rho
     here = program.log_moment[b, x, n]
     silent_alive = alive * np.exp(program.log_alive[n, 1] + program.log_moment[b + 1, x, n + 1] - here)
+    buy = alive * rho * np.exp(program.log_alive[n, 1] + program.log_moment[b, x + 1, n + 1] - here) if rho > 0 else np.zeros_like(alive)
+    later = best_plan(program, horizon - 1, (n + 1, x, b + 1, silent_alive, 1.0 - buy), choice=weighted is not None)
+    orders = None
+    if weighted is not None:
+        later, plan = later
+        orders = d * buy * (weighted.order_weight(1) + weighted.after_purchase_at(horizon - 1, b, x + 1, n + 1))
+        orders = orders + d * silent_alive * _chosen_plan(weighted, n + 1, x, b + 1, horizon - 1, plan)
     if rho == 0:
-        return d * best_plan(program, horizon - 1, (n + 1, x, b + 1, silent_alive, np.ones_like(alive)))
-    buy = alive * rho * np.exp(program.log_alive[n, 1] + program.log_moment[b, x + 1, n + 1] - here)
-    later = best_plan(program, horizon - 1, (n + 1, x, b + 1, silent_alive, 1.0 - buy))
-    return d * buy * (program.margin + program.after_purchase_at(horizon - 1, b, x + 1, n + 1)) + d * later
+        return d * later, orders
+    return d * buy * (program.order_weight(1) + program.after_purchase_at(horizon - 1, b, x + 1, n + 1)) + d * later, orders
+
+
+def planned_orders(program: Program, weighted: Program, n, x, b, alive) -> np.ndarray:
+    """The weighted orders of the program's own plan from silent states (n, x, b), per state.
+
+    The plan is the one :func:`decide` makes: mail this quarter or hold, whichever
+    is worth more, then the plan that choice came with ("mail J quarters, then
+    hold" from now, or from next quarter after holding), and after an order the
+    program's plan from the new state. ``weighted`` is the program's
+    :meth:`~lapsewise.decide.program.Program.slopes` when solved with
+    ``order_weights``: an order e quarters on counts ``d^e u_e``. So with
+    ``u_e = w_e / d^e`` the result is the expected orders weighted by ``w_e``: the
+    expected orders in the next T quarters with ``w_e = 1`` for e <= T, a DERT at
+    another rate with ``w_e`` its discount factors.
+    """
+    n, x, b = _states(n, x, b)
+    alive = np.asarray(alive, dtype=float)
+    mail_value, plan = best_plan(program, program.horizon, (n, x, b, alive, np.ones_like(alive)), first=1, choice=True)
+    mail_orders = alive * _chosen_plan(weighted, n, x, b, program.horizon, plan)
+    hold_value, hold_orders = _hold_now(program, n, x, b, alive, weighted)
+    return np.where(mail_value >= hold_value, mail_orders, hold_orders)
+
+
+def _chosen_plan(weighted: Program, n, x, b, horizon: int, plan: np.ndarray) -> np.ndarray:
+    """Per state, ``A_J`` of the weighted program for its chosen J (weighted orders per unit alive; no pieces)."""
+    per_alive, inverse, _ = _stretch_parts(weighted, n, x, b, horizon)
+    return per_alive[inverse, plan]
 
 
 def decide_within(program: Program, n, x, b, alive, horizon: int) -> Decisions:
@@ -306,7 +353,7 @@ def version_mail_value(program: Program, n, x, b, alive, response: float, piece_
     """
     n, x, b = _states(n, x, b)
     alive = np.asarray(alive, dtype=float)
-    rho, d, margin = program.rho, program.discount, program.margin
+    rho, d, margin = program.rho, program.discount, program.order_weight(1)
     if rho >= 1.0 and response != 1.0:
         raise InputError("with unmailed_response 1 a held customer responds like a mailed one, so versions with response below 1 cannot be valued")
     mix = 1.0 if rho >= 1.0 else (response - rho) / (1.0 - rho)

@@ -141,7 +141,7 @@ def _own_margin_values(prepared, margins, parts, ahead, grid_margins, bounds, re
             values[rows] = mail - hold[:, None]
         return OwnMarginValues(values, np.zeros(len(margins)), tuple(order))
 
-    grid = _first_grid(margins, grid_margins)
+    grid = margin_grid(margins, grid_margins)
     bound = np.full(len(margins), np.nan)
     interval = np.clip(np.searchsorted(grid, margins, side="right") - 1, 0, len(grid) - 2)
     # Depth first, left to right, so that the programs an interval needs are still kept.
@@ -188,7 +188,7 @@ TAIL_SHARE = 0.005
 """The grid's core spans the customers' margins from this quantile to one less it; each tail beyond gets two margins."""
 
 
-def _first_grid(margins: np.ndarray, count: int) -> np.ndarray:
+def margin_grid(margins: np.ndarray, count: int) -> np.ndarray:
     """About ``count`` margins: ``count - 4`` over the core of the customers' margins (the 0.5% to 99.5% quantiles),
     evenly spaced in ``log(m - core_low + scale)`` with scale a 64th of the core's width (about evenly in ratio, and
     evenly in m near the core's low end), and two in each tail: its end and its middle (the geometric middle of a

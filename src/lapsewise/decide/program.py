@@ -164,25 +164,33 @@ class Program:
     first_n: tuple[int, ...]
     after_purchase_slope: list[np.ndarray] | None = None
     hold_throughout_slope: list[np.ndarray] | None = None
+    slope_weights: np.ndarray | None = None
+    order_weights: np.ndarray | None = None
 
     @property
     def rho(self) -> float:
         return float(self.process.rho)
 
     def slopes(self) -> "Program":
-        """The program of the tables' slopes in the margin (solved with ``slopes=True``).
+        """The program of the chosen plans' weighted orders (solved with ``slopes=True`` or ``order_weights``).
 
         Every table is the best plan's value ``m * orders - pieces``; its slope in m
         is the plan's discounted orders, so the slope tables follow the recursion
         with margin 1 and piece cost 0 on the chosen plans. Anything the decisions
-        build from the tables, read in this program, is its slope in m.
+        build from the tables, read in this program, is its slope in m. With
+        ``order_weights`` (kept as ``slope_weights``) the margin of an order e quarters
+        after the decision is ``order_weights[e]`` instead of 1 (:meth:`order_weight`).
         """
         if self.after_purchase_slope is None:
             raise ValueError("the program was solved without slopes")
         return dataclasses.replace(
             self, margin=1.0, piece_cost=0.0, after_purchase=self.after_purchase_slope, hold_throughout=self.hold_throughout_slope,
-            after_purchase_slope=None, hold_throughout_slope=None,
+            after_purchase_slope=None, hold_throughout_slope=None, slope_weights=None, order_weights=self.slope_weights,
         )
+
+    def order_weight(self, elapsed: int) -> float:
+        """The margin of an order ``elapsed`` quarters after the decision (at ``horizon`` quarters left)."""
+        return self.margin if self.order_weights is None else float(self.order_weights[elapsed])
 
     def after_purchase_at(self, h: int, b, x, n) -> np.ndarray:
         """``W_h(n, x, b)``."""
@@ -393,17 +401,30 @@ def solve(
     return solve_with(chances(process, piece_cost, discount, horizon, n_max, b_max, n_min, x_max), margin)
 
 
-def solve_with(prepared: Chances, margin: float, slopes: bool = False) -> Program:
+def solve_with(prepared: Chances, margin: float, slopes: bool = False, order_weights: np.ndarray | None = None) -> Program:
     """:func:`solve` at margin ``margin`` on tables built by :func:`chances` (which may serve several margins).
 
     With ``slopes`` the program also keeps each table's slope in the margin: the discounted orders of the plan
     chosen at each state (:meth:`Program.slopes`), found beside the values at about twice the work.
+
+    ``order_weights`` (``u_e`` for e = 0..horizon) keeps instead the chosen plans' weighted orders: an order e
+    quarters after the decision at ``horizon`` quarters left counts ``d^e u_e``. With h quarters left a table's
+    state lies ``e0 = horizon - h`` quarters after the decision, so its orders i quarters on count
+    ``u_{e0+i}``, and the tables hold the weighted orders discounted to their own quarter
+    (``sum_i d^i f_i (u_{e0+i} + table_{h-i}) + d^J s_J hold_{h-J}`` for the chosen J). ``u_e = w_e / d^e``
+    counts each order e quarters on with weight w_e (all ones: the slopes).
     """
     process, discount, horizon, n_min = prepared.process, prepared.discount, prepared.horizon, prepared.n_min
     rho = float(process.rho)
     log_moment = prepared.log_moment
     shape = log_moment.shape
     purchase_after, silent_after = prepared.purchase_after, prepared.silent_after
+    if order_weights is not None:
+        slopes = True
+        order_weights = np.asarray(order_weights, dtype=float)
+        if order_weights.shape != (horizon + 1,):
+            raise ValueError(f"order_weights needs {horizon + 1} entries (quarters 0 to {horizon} after the decision)")
+    uniform = order_weights is None
     known_part = [None] + [margin * orders - pieces for orders, pieces in zip(prepared.orders_ahead[1:], prepared.pieces_ahead[1:])]  # K_i
     held_buy, held_silent = prepared.held_buy, prepared.held_silent
     reach = prepared.reach
@@ -437,11 +458,12 @@ def solve_with(prepared: Chances, margin: float, slopes: bool = False) -> Progra
                 part += at(held_silent, 0) * solved(hold_throughout, 1, 0, 1)
                 part *= discount
             hold_throughout.append(held)
+            elapsed = horizon - h  # quarters from the decision to a state with h quarters left
             if slopes:
                 held_slope = np.zeros((shape[0], shape[1], band))
                 if rho > 0:
                     part = at(held_slope, now.first)
-                    np.add(solved(after_slope, 1, 1), 1.0, out=part)
+                    np.add(solved(after_slope, 1, 1), 1.0 if uniform else order_weights[elapsed + 1], out=part)
                     part *= at(held_buy, 0)
                     part += at(held_silent, 0) * solved(hold_slope, 1, 0, 1)
                     part *= discount
@@ -462,6 +484,7 @@ def solve_with(prepared: Chances, margin: float, slopes: bool = False) -> Progra
                     chosen_slope = at(held_slope, now.first, rows=rows).copy()
                     slope_after_purchases = np.zeros_like(chosen)
                     candidate_slope = np.empty_like(chosen)
+                    weighted_orders = None if uniform else np.zeros_like(chosen)  # sum_{l<=i} d^l f_l u_{e0+l}
                 for i in range(1, h + 1):
                     np.multiply(at(purchase_after[i], n_min, rows=rows), solved(after_purchase, i, 1, rows=rows), out=candidate)
                     after_purchases += candidate
@@ -473,7 +496,11 @@ def solve_with(prepared: Chances, margin: float, slopes: bool = False) -> Progra
                         # The same plan's slope: orders_ahead for K_i, the slopes of the tables it reads.
                         np.multiply(at(purchase_after[i], n_min, rows=rows), solved(after_slope, i, 1, rows=rows), out=candidate_slope)
                         slope_after_purchases += candidate_slope
-                        np.add(slope_after_purchases, at(prepared.orders_ahead[i], n_min, rows=rows), out=candidate_slope)
+                        if uniform:
+                            np.add(slope_after_purchases, at(prepared.orders_ahead[i], n_min, rows=rows), out=candidate_slope)
+                        else:
+                            weighted_orders += at(purchase_after[i], n_min, rows=rows) * order_weights[elapsed + i]
+                            np.add(slope_after_purchases, weighted_orders, out=candidate_slope)
                         if rho > 0 and i < h:
                             np.multiply(at(silent_after[i], n_min, rows=rows), solved(hold_slope, i, rows=rows), out=tail)
                             candidate_slope += tail
@@ -495,5 +522,5 @@ def solve_with(prepared: Chances, margin: float, slopes: bool = False) -> Progra
                 after_slope.append(value_slopes)
     return Program(
         process, margin, prepared.piece_cost, discount, horizon, log_moment, prepared.log_alive, after_purchase, hold_throughout, tuple(first_n),
-        after_slope, hold_slope,
+        after_slope, hold_slope, order_weights,
     )

@@ -132,3 +132,38 @@ class PlainProgram:
             for J in range(h)
         )
         return value + self.d * best_later
+
+    # ------------------------------------------------------------ orders under the plan
+
+    def planned_orders(self, h: int, n: int, x: int, b: int, alive: float, weights) -> float:
+        """Expected orders under the plan the program makes at a silent state, an order e quarters on counting
+        ``weights[e]`` (undiscounted; e = 1..h): mail now or hold as the values say, then the plan chosen with it."""
+        mail_plans = [alive * (self.plan(J, h, n, x, b) + self._pieces(J)) - self._pieces(J) for J in range(1, h + 1)]
+        mail_value = max(mail_plans)
+        mail_orders = alive * self._plan_orders(mail_plans.index(mail_value) + 1, h, n, x, b, weights, 0)
+        buy = alive * self.held_purchase(n, x, b)
+        silent = alive * self.held_silence(n, x, b)
+        later = [silent * (self.plan(J, h - 1, n + 1, x, b + 1) + self._pieces(J)) - (1.0 - buy) * self._pieces(J) for J in range(h)]
+        hold_value = self.d * buy * (self.margin + self.after_purchase(h - 1, n + 1, x + 1, b)) + self.d * max(later)
+        hold_orders = buy * (weights[1] + self._after_orders(h - 1, n + 1, x + 1, b, weights, 1))
+        hold_orders += silent * self._plan_orders(later.index(max(later)), h - 1, n + 1, x, b + 1, weights, 1)
+        return mail_orders if mail_value >= hold_value else hold_orders
+
+    def _plan_orders(self, J: int, h: int, n: int, x: int, b: int, weights, start: int) -> float:
+        """Weighted orders of "mail J quarters, then hold" from a customer alive in state (n, x, b), ``start`` quarters on."""
+        total = sum(self.first_purchase(i, n, x, b) * (weights[start + i] + self._after_orders(h - i, n + i, x + 1, b, weights, start + i)) for i in range(1, J + 1))
+        return total + self.still_silent(J, n, x, b) * self._hold_orders(h - J, n + J, x, b, weights, start + J)
+
+    def _after_orders(self, h: int, n: int, x: int, b: int, weights, start: int) -> float:
+        """Weighted orders after a purchase, under the best plan there (the first of equal ones)."""
+        if h == 0:
+            return 0.0
+        plans = [self.plan(J, h, n, x, b) for J in range(h + 1)]
+        return self._plan_orders(plans.index(max(plans)), h, n, x, b, weights, start)
+
+    def _hold_orders(self, h: int, n: int, x: int, b: int, weights, start: int) -> float:
+        """Weighted orders while held throughout (unprompted orders, then the best plan after each)."""
+        if h == 0:
+            return 0.0
+        bought = self.held_purchase(n, x, b) * (weights[start + 1] + self._after_orders(h - 1, n + 1, x + 1, b, weights, start + 1))
+        return bought + self.held_silence(n, x, b) * self._hold_orders(h - 1, n + 1, x, b + 1, weights, start + 1)

@@ -109,8 +109,8 @@ def lapse_curves(model: Model, summary: CustomerSummary, max_silent: int = 12, b
 
 def score_totals(scores: pd.DataFrame) -> dict[str, float]:
     """The scores at a glance: customers, mean P(alive) and P(order next quarter), expected orders, mean DERT,
-    and how many customers are more likely alive than not."""
-    return {
+    how many customers are more likely alive than not, and the planned figures when the scores have them."""
+    totals = {
         "customers": len(scores),
         "mean_p_alive": float(scores["p_alive"].mean()),
         "mean_p_buy": float(scores["p_buy"].mean()),
@@ -118,3 +118,7 @@ def score_totals(scores: pd.DataFrame) -> dict[str, float]:
         "mean_dert": float(scores["dert"].mean()),
         "likely_alive": int((scores["p_alive"] >= 0.5).sum()),
     }
+    if "expected_orders_planned" in scores:
+        totals["expected_orders_planned"] = float(scores["expected_orders_planned"].sum())
+        totals["mean_dert_planned"] = float(scores["dert_planned"].mean())
+    return totals
