@@ -202,8 +202,9 @@ def value_customers(
             point, spread = averaged_values(point, drawn)
         elif draws:
             # Each draw's difference from the estimates' values, both on the draws' coarser grid of margins.
-            coarse = _customer_state_values(model, policy, histories, summary, pool, budget_price, expansion, grid_margins=DRAW_GRID_MARGINS)
-            drawn = [point + (_customer_state_values(fitted, policy, histories, summary, pool, budget_price, expansion, grid_margins=DRAW_GRID_MARGINS) - coarse) for fitted in draws.models]
+            coarse = {"grid_margins": DRAW_GRID_MARGINS, "bounds": False}
+            estimates = _customer_state_values(model, policy, histories, summary, pool, budget_price, expansion, **coarse)
+            drawn = [point + (_customer_state_values(fitted, policy, histories, summary, pool, budget_price, expansion, **coarse) - estimates) for fitted in draws.models]
             point, spread = averaged_values(point, drawn)
     precision = ValuePrecision.of(valued, states.inverse, certify, DRAW_GRID_MARGINS if draws and not certify else None)
     return customer_values(panel.customer_ids, summary, policy, histories, post, point, suppressed, attribute, spread, precision)
@@ -231,9 +232,9 @@ def check_draws_memory(draws: int, customers: int, versions: int) -> None:
         )
 
 
-DRAW_GRID_MARGINS = 9
-"""Margins each draw of the parameters is solved at: a draw's values enter only as its difference from the estimates'
-values on the same grid (:func:`value_customers`), in which much of a coarser grid's error cancels."""
+DRAW_GRID_MARGINS = 7
+"""Margins each draw of the parameters is solved at (chords, no bounds): a draw's values enter only as its difference
+from the estimates' values read the same way (:func:`value_customers`), in which much of a coarser grid's error cancels."""
 
 
 def _state_values(model: Model, policy: Policy, histories, summary: CustomerSummary, pool, budget_price: float, expansion=None, **grid):
