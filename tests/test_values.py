@@ -183,3 +183,14 @@ def test_values_over_draws_are_close_to_the_draws_solved_at_each_customers_own_m
     error = np.abs(averaged.values[customers, 0] - expected)
     assert (error <= np.maximum(0.02, 0.02 * np.abs(expected))).all(), error.max()
     assert averaged.precision.draw_margins == pipeline.DRAW_GRID_MARGINS
+
+
+def test_a_grid_whose_programs_do_not_fit_in_memory_is_refused_in_one_line(monkeypatch):
+    # The secants read four programs at once; with room for fewer the values are refused, naming what to change.
+    from lapsewise.decide import own_margins
+    from lapsewise.errors import InputError
+
+    policy, states, alive, prepared = _setting(VERSIONS["one"])
+    monkeypatch.setattr(own_margins, "available_memory", lambda: 1000)
+    with pytest.raises(InputError, match="reads 4 stop-rule programs at once.*lower horizon_quarters"):
+        state_values(prepared, policy, states, lambda: alive)

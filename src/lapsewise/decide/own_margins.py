@@ -45,6 +45,8 @@ import numpy as np
 
 from lapsewise.decide.decisions import Between
 from lapsewise.decide.program import Chances, Program, solve_with
+from lapsewise.errors import InputError
+from lapsewise.machine import available_memory, gigabytes
 
 ABSOLUTE_TOLERANCE = 0.01
 """Currency units: a value of mailing is certified when its bounds are this close (or RELATIVE_TOLERANCE of it)."""
@@ -113,9 +115,12 @@ def _own_margin_values(prepared, margins, parts, ahead, grid_margins, bounds, re
     cache: OrderedDict[float, Program] = OrderedDict()
     coming: dict[float, Future] = {}
     order: list[float] = []
+    # An interval reads four programs at once with the secants, two otherwise; one more is solved ahead if it fits.
+    at_once = 4 if bounds and not refine else 2
+    room = {"ahead": False, "kept": at_once}
 
     def solve_ahead(margin: float) -> None:
-        if margin not in cache and margin not in coming:
+        if room["ahead"] and margin not in cache and margin not in coming:
             coming[margin] = ahead.submit(solve_with, prepared, margin, refine)
 
     def program_at(margin: float) -> Program:
@@ -123,9 +128,11 @@ def _own_margin_values(prepared, margins, parts, ahead, grid_margins, bounds, re
             cache.move_to_end(margin)
             return cache[margin]
         program = coming.pop(margin).result() if margin in coming else solve_with(prepared, margin, slopes=refine)
+        if not order:
+            room["kept"], room["ahead"] = _room(program, at_once)
         order.append(margin)
         cache[margin] = program
-        if len(cache) > KEPT_PROGRAMS:
+        if len(cache) > room["kept"]:
             cache.popitem(last=False)
         return program
 
@@ -186,6 +193,22 @@ def _own_margin_values(prepared, margins, parts, ahead, grid_margins, bounds, re
 
 TAIL_SHARE = 0.005
 """The grid's core spans the customers' margins from this quantile to one less it; each tail beyond gets two margins."""
+
+
+def _room(program: Program, at_once: int) -> tuple[int, bool]:
+    """After the first program: how many programs to keep (up to :data:`KEPT_PROGRAMS`) and whether one more may be
+    solved ahead, in the free memory; a grid whose ``at_once`` programs would not fit is refused."""
+    tables = program.after_purchase + program.hold_throughout + (program.after_purchase_slope or []) + (program.hold_throughout_slope or [])
+    size = sum(table.nbytes for table in tables)
+    free = available_memory()
+    if (at_once - 1) * size > free:
+        raise InputError(
+            f"valuing each customer at their own order value reads {at_once} stop-rule programs at once, {gigabytes(size)} each, and "
+            f"{gigabytes(free)} is free beside the first; lower horizon_quarters in the policy, use a shorter history (--as-of), "
+            "or run on a larger machine"
+        )
+    kept = max(at_once, min(KEPT_PROGRAMS, int(free // size) + 1))
+    return kept, kept * size <= free
 
 
 def margin_grid(margins: np.ndarray, count: int) -> np.ndarray:
