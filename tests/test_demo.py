@@ -18,6 +18,7 @@ def test_demo_output_sections(tmp_path):
     assert result.returncode == 0, result.stderr
     for text in ("customers", "Hidden-churn model", "true settings", "Backtest", "personal data"):
         assert text in result.stdout
+    assert "at each customer's own order value" in " ".join(result.stdout.split())
 
 
 def test_demo_is_deterministic(tmp_path):

@@ -105,6 +105,7 @@ def run_demo(console: Console, folder: Path, customers: int, quarters: int, seed
     console.rule(f"This quarter's plan at a sample budget of {DEMO_BUDGET:,.0f}")
     values = pipeline.value_customers(model, panel, policy, draws=model_draws(model, DEMO_DRAWS, seed))
     plan = pipeline.plan(values, policy, DEMO_BUDGET, report.FRONTIER_POINTS)
+    render.print_value_precision(console, values.precision)
     render.print_plan(console, plan, panel, values)
     rows = pipeline.mail_list_rows(values, plan)
     save_csv(paths["mail_list"], rows, force)
