@@ -25,6 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from lapsewise.data.codes import integer_codes
 from lapsewise.decide.program import Program
 from lapsewise.errors import InputError
 
@@ -173,10 +174,11 @@ def stretch_plan_values(program: Program, n, x, b, alive, total, horizon: int) -
 def _stretch_parts(program: Program, n, x, b, horizon: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """``A_J`` per distinct state, each state's row in it, and ``costs_J`` (:func:`stretch_plan_values`)."""
     n, x, b = _states(n, x, b)
-    keys = (b * program.log_moment.shape[1] + x) * program.log_moment.shape[2] + n
-    _, first, inverse = np.unique(keys, return_index=True, return_inverse=True)
-    per_alive = _plan_values_per_alive(program, n[first], x[first], b[first], horizon)
-    return per_alive, inverse.ravel(), _plan_costs(program, horizon)
+    depth, columns, rows = program.log_moment.shape
+    distinct, inverse = integer_codes((b * columns + x) * rows + n, depth * columns * rows)
+    # The distinct keys decode to their states: no sort, no first index.
+    per_alive = _plan_values_per_alive(program, distinct % rows, distinct // rows % columns, distinct // (rows * columns), horizon)
+    return per_alive, inverse, _plan_costs(program, horizon)
 
 
 BEST_PLAN_ROWS = 8192
