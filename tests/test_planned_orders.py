@@ -117,3 +117,29 @@ def test_a_fixed_order_value_plans_at_its_own_margin():
     counted = solve_with(prepared, policy.economics.margin(70.0), order_weights=weights / policy.economics.discount ** np.arange(horizon + 1))
     direct = planned_orders(counted, counted.slopes(), histories.n, histories.x, histories.unmailed_quarters, alive)
     assert_allclose(planned.expected_orders, direct[histories.inverse], rtol=1e-12)
+
+
+def test_in_a_seasonal_world_the_plans_orders_carry_the_programs_average_quarter():
+    # Out of the program's world: customers drawn with seasons 1 / 0.5 / 0.375 / 0.625 and mailing aimed at the
+    # peak. The program plans every quarter as an average one (p scaled by the mean multiplier), so under a plan
+    # that mails throughout its orders over a full year are not the seasonal posterior's mail-every-quarter ones.
+    # Measured with seed 4: the total 3.1% high, the median customer 5.8% off, the worst 32%. With the same data read
+    # by a model without seasons the two agree exactly, so the gap is the program's average quarter alone.
+    import dataclasses
+
+    from builders import MODEL, POLICY, SEASONAL_TRUTH, seasonal_panel
+    from lapsewise.budget.planned import planned_totals
+    from lapsewise.model.scores import score_customers
+
+    truth = SEASONAL_TRUTH
+    panel = seasonal_panel(3000, 4)
+    policy = dataclasses.replace(POLICY, economics=dataclasses.replace(POLICY.economics, order_value=1e5, horizon_quarters=8))
+    gaps = {}
+    for seasons in (truth["seasons"], None):
+        churn = dataclasses.replace(MODEL.churn, **{k: truth[k] for k in ("alpha", "beta", "gamma", "delta", "rho")}, seasons=seasons)
+        model = dataclasses.replace(MODEL, churn=churn)
+        every = score_customers(model, panel, 4, 0.10)["expected_orders"].to_numpy()
+        planned = planned_totals(model, panel, policy, 4, 1.10**0.25 - 1).expected_orders
+        gaps[seasons is not None] = (planned.sum() / every.sum() - 1.0, np.median(np.abs(planned - every) / every))
+    assert abs(gaps[False][0]) < 1e-9 and gaps[False][1] < 1e-9
+    assert 0.01 < abs(gaps[True][0]) < 0.06 and 0.02 < gaps[True][1] < 0.12, gaps
