@@ -22,7 +22,7 @@ from lapsewise.budget.control_reading import CellCounts, ControlReading, cell_co
 from lapsewise.budget.integer_program import Plan, make_plan
 from lapsewise.budget.mail_list import mail_list
 from lapsewise.budget.planned import PlannedTotals, planned_totals
-from lapsewise.budget.values import CustomerValues, ValuePrecision, averaged_values, customer_order_values, customer_values, state_values, value_chances, valued_states
+from lapsewise.budget.values import CustomerValues, ValuePrecision, averaged_values, customer_values, margin_states, state_values, value_chances
 from lapsewise.data.histories import compress
 from lapsewise.data.panel import Panel, panel_from_files
 from lapsewise.data.summary import CustomerSummary, summarize
@@ -245,8 +245,7 @@ def _state_values(model: Model, policy: Policy, histories, summary: CustomerSumm
     economics = policy.economics
     process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
     posterior_job = pool.submit(posterior, process, histories, expansion)
-    typical_order_value(model.spend, economics)  # refuses a model without a usable order-value model
-    states = valued_states(histories, economics.margin(customer_order_values(model.spend, policy, summary)))
+    states = margin_states(model.spend, policy, histories, summary)
     shared = value_chances(process, policy, states, budget_price)
     valued = state_values(shared, policy, states, lambda: posterior_job.result().alive_now, **grid)
     return states, valued, posterior_job.result()

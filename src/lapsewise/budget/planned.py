@@ -22,12 +22,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from lapsewise.budget.values import customer_order_values, value_chances, valued_states
+from lapsewise.budget.values import margin_states, value_chances
 from lapsewise.data.histories import compress
 from lapsewise.data.panel import Panel
 from lapsewise.data.summary import summarize
 from lapsewise.decide.decisions import planned_orders
-from lapsewise.decide.order_values import typical_order_value
 from lapsewise.decide.own_margins import GRID_MARGINS, margin_grid
 from lapsewise.decide.program import check_unmailed_purchases, decision_process, solve_with
 from lapsewise.errors import InputError
@@ -58,12 +57,11 @@ def planned_totals(model: Model, panel: Panel, policy: Policy, quarters: int, qu
             f"--horizon {quarters}: the stop rule's plan looks {horizon} quarters ahead (horizon_quarters in {policy.source}); "
             f"use --horizon {horizon} or fewer, or a longer horizon_quarters"
         )
-    typical_order_value(model.spend, economics)  # refuses a model without a usable order-value model
     process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
     histories = compress(panel)
     check_unmailed_purchases(model.churn, economics.unmailed_response, histories, policy.source)
     alive = posterior(process, histories).alive_now
-    states = valued_states(histories, economics.margin(customer_order_values(model.spend, policy, summarize(panel))))
+    states = margin_states(model.spend, policy, histories, summarize(panel))
     prepared = value_chances(process, policy, states)
     distinct = np.unique(states.margin)
     grid = distinct if len(distinct) <= GRID_MARGINS else margin_grid(states.margin, GRID_MARGINS)

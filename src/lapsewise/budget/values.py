@@ -22,6 +22,7 @@ from lapsewise.budget.segments import segment_labels
 from lapsewise.data.histories import Histories
 from lapsewise.data.summary import CustomerSummary
 from lapsewise.decide.decisions import hold_now_value, version_mail_value
+from lapsewise.decide.order_values import typical_order_value
 from lapsewise.decide.own_margins import OwnMarginValues, own_margin_values
 from lapsewise.decide.program import Chances, chances
 from lapsewise.files.policy_file import Policy
@@ -80,9 +81,11 @@ def reference_piece_cost(policy: Policy) -> float:
 
 
 def customer_order_values(spend: SpendFit | None, policy: Policy, summary: CustomerSummary) -> np.ndarray:
-    """Each customer's expected order value: the policy's fixed one, or the spend model's given their history."""
+    """Each customer's expected order value: the policy's fixed one, or the spend model's given their history
+    (a model without a usable order-value model is refused)."""
     if policy.economics.order_value is not None:
         return np.full(len(summary.x), policy.economics.order_value)
+    typical_order_value(spend, policy.economics)
     return expected_order_value(spend, summary.x, summary.mean_repeat_value)
 
 
@@ -121,6 +124,11 @@ def valued_states(histories: Histories, margins: np.ndarray) -> ValuedStates:
         b=histories.unmailed_quarters[history],
         inverse=inverse,
     )
+
+
+def margin_states(spend: SpendFit | None, policy: Policy, histories: Histories, summary: CustomerSummary) -> ValuedStates:
+    """The distinct (history, margin) states of the customers, each at the margin of their own expected order value."""
+    return valued_states(histories, policy.economics.margin(customer_order_values(spend, policy, summary)))
 
 
 def value_chances(process: Process, policy: Policy, states: ValuedStates, budget_price: float = 0.0) -> Chances:
