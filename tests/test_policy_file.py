@@ -169,8 +169,68 @@ def test_any_policy_file_is_read_whole_or_refused_in_one_line(tmp_path, edits):
     except InputError as exc:
         assert str(exc).startswith(str(path)) and "\n" not in str(exc)
         return
-    numbers = [value for value in vars(policy.economics).values() if value is not None]
+    numbers = [value for key, value in vars(policy.economics).items() if value is not None and key != "quarters"]
+    numbers += [value for pairs in policy.economics.quarters for _, value in pairs]
     numbers += [value for version in policy.versions for value in (version.piece_cost, version.response, version.setup_cost, version.min_quantity)]
     numbers += list(policy.segments.min_share.values()) + list(policy.segments.max_share.values())
     assert all(math.isfinite(value) and value >= 0 for value in numbers)
     assert 1 <= policy.economics.horizon_quarters <= 80 and 0 <= policy.economics.gross_margin <= 1
+
+
+SEASONAL = ECONOMICS + """
+[economics.quarter_4]
+piece_cost = 2.10
+gross_margin = 0.38
+
+[[versions]]
+name = "full"
+piece_cost = 1.60
+
+[versions.quarter_4]
+piece_cost = 2.40
+
+[[versions]]
+name = "postcard"
+piece_cost = 0.40
+response = 0.45
+"""
+
+
+def test_a_quarter_of_the_year_overrides_its_costs_and_margin(tmp_path):
+    policy = load_policy(write(tmp_path, SEASONAL))
+    economics = policy.economics
+    assert economics.seasonal
+    assert economics.in_quarter(3).piece_cost == 2.10 and economics.in_quarter(3).gross_margin == 0.38
+    assert economics.in_quarter(3).order_cost == 4.00  # not overridden
+    assert economics.in_quarter(0).piece_cost == 0.90 and economics.in_quarter(7).piece_cost == 2.10  # modulo 4
+    full, postcard = policy.versions
+    assert [full.piece_cost_in(q) for q in range(4)] == [1.60, 1.60, 1.60, 2.40]
+    assert [postcard.piece_cost_in(q) for q in range(4)] == [0.40] * 4
+
+
+def test_without_versions_the_standard_piece_takes_the_quarters_piece_cost(tmp_path):
+    policy = load_policy(write(tmp_path, ECONOMICS + "[economics.quarter_2]\npiece_cost = 1.25\n"))
+    (standard,) = policy.versions
+    assert [standard.piece_cost_in(q) for q in range(4)] == [0.90, 1.25, 0.90, 0.90]
+
+
+def test_a_flag_holds_in_every_quarter(tmp_path):
+    policy = load_policy(write(tmp_path, SEASONAL), {"piece_cost": 1.00})
+    assert [policy.economics.in_quarter(q).piece_cost for q in range(4)] == [1.00] * 4
+    assert policy.economics.in_quarter(3).gross_margin == 0.38  # the quarter's other overrides stay
+
+
+@pytest.mark.parametrize(
+    "table, named",
+    [
+        ("[economics.quarter_4]\nhorizon_quarters = 8\n", "unknown key 'horizon_quarters' in [quarter_4]"),
+        ("[economics.quarter_4]\ngross_margin = 1.5\n", "quarter_4.gross_margin = 1.5 is above 1"),
+        ("[economics.quarter_4]\npiece_cost = -1\n", "quarter_4.piece_cost = -1 is below 0"),
+        ("[economics]\nquarter_4 = 2.1\n", "quarter_4 must be a table"),
+        ("[economics.quarter_5]\npiece_cost = 1.0\n", "unknown key 'quarter_5' in [economics]"),
+    ],
+)
+def test_bad_quarter_overrides_are_named(tmp_path, table, named):
+    text = ECONOMICS + table if not table.startswith("[economics]\n") else ECONOMICS.replace("[economics]\n", table)
+    with pytest.raises(InputError, match=named.replace("[", r"\[").replace("]", r"\]").replace(".", r"\.")):
+        load_policy(write(tmp_path, text))

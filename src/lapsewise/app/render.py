@@ -432,10 +432,18 @@ def _stop_range_text(low: int, high: int) -> str:
     return low_text if low == high else f"{low_text}-{high_text}"
 
 
+def economics_json(economics) -> dict:
+    """The economics as JSON: the policy's keys, and the quarters' overrides (``"quarters": {"quarter_4": {...}}``) when there are any."""
+    data = {k: v for k, v in dataclasses.asdict(economics).items() if k != "quarters"}
+    if economics.seasonal:
+        data["quarters"] = {f"quarter_{q + 1}": dict(pairs) for q, pairs in enumerate(economics.quarters) if pairs}
+    return data
+
+
 def stop_table_json(table, model) -> dict:
     economics = table.economics
     return {
-        "economics": dataclasses.asdict(economics),
+        "economics": economics_json(economics),
         "unmailed_response_used": table.process.rho,
         "mailing_history": model.mailing_history,
         "spend_bands": [

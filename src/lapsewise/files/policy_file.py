@@ -1,7 +1,12 @@
 """The policy file: the economics of a mailing, the segments of the budget plan and the versions of the piece.
 
 A policy file is TOML with three parts, ``[economics]``, ``[segments]`` and
-``[[versions]]`` (see ``policies/`` for commented examples). :func:`load_policy`
+``[[versions]]`` (see ``policies/`` for commented examples). A quarter of the
+(fiscal) year may change any cost or margin key for itself: a table
+``[economics.quarter_4]`` (quarters 1 to 4 of the fiscal year, as in the model
+file's ``seasons``) overrides ``gross_margin``, ``order_cost``, ``piece_cost``
+or ``order_value`` in that quarter, and ``[versions.quarter_4]`` under a
+``[[versions]]`` entry its ``piece_cost`` (``policies/high-cost-season.toml``). :func:`load_policy`
 reads it, applies command-line overrides of ``[economics]`` keys, and checks
 every key once, here at the edge: unknown keys, missing keys and impossible
 values raise :class:`~lapsewise.errors.InputError` naming the key.
@@ -9,6 +14,7 @@ values raise :class:`~lapsewise.errors.InputError` naming the key.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import tomllib
 from dataclasses import dataclass, field
@@ -28,6 +34,9 @@ ECONOMICS_KEYS = {
     "recurring_budget": "optional: true when the budget binds every quarter, so later pieces cost their price plus the budget's shadow price",
 }
 OPTIONAL_ECONOMICS = ("order_value", "unmailed_response", "recurring_budget")
+QUARTER_KEYS = ("gross_margin", "order_cost", "piece_cost", "order_value")
+"""The keys a quarter of the year may override: its costs and its margin."""
+QUARTER_TABLES = tuple(f"quarter_{q}" for q in range(1, 5))
 VERSION_KEYS = ("name", "piece_cost", "response", "setup_cost", "min_quantity")
 SEGMENT_KEYS = ("frequency_bands", "silent_bands", "spend_bands", "min_share", "max_share")
 MAX_HORIZON = 80
@@ -52,6 +61,17 @@ class Economics:
     order_value: float | None = None
     unmailed_response: float | None = None
     recurring_budget: bool = False
+    quarters: tuple[tuple[tuple[str, float], ...], ...] = ((), (), (), ())
+    """Per quarter of the fiscal year (0-3), the (key, value) pairs that quarter overrides."""
+
+    @property
+    def seasonal(self) -> bool:
+        """True when some quarter of the year overrides a cost or the margin."""
+        return any(self.quarters)
+
+    def in_quarter(self, quarter: int) -> "Economics":
+        """The economics of a quarter of the fiscal year (0-3, taken modulo 4): its overrides applied."""
+        return dataclasses.replace(self, quarters=((), (), (), ()), **dict(self.quarters[quarter % 4]))
 
     @property
     def discount(self) -> float:
@@ -72,6 +92,13 @@ class Version:
     response: float = 1.0
     setup_cost: float = 0.0
     min_quantity: int = 0
+    quarter_piece_costs: tuple[float | None, float | None, float | None, float | None] = (None, None, None, None)
+    """Per quarter of the fiscal year (0-3), the piece cost that quarter overrides (None: the year-round one)."""
+
+    def piece_cost_in(self, quarter: int) -> float:
+        """The piece cost in a quarter of the fiscal year (0-3, taken modulo 4)."""
+        cost = self.quarter_piece_costs[quarter % 4]
+        return self.piece_cost if cost is None else cost
 
 
 @dataclass(frozen=True)
@@ -118,7 +145,9 @@ def _table(source: str, key: str, value, example: str) -> dict:
     return value
 
 
-def _economics(source: str, raw: dict) -> Economics:
+def _economics(source: str, raw: dict, flags: tuple[str, ...] = ()) -> Economics:
+    """The ``[economics]`` table; ``flags`` names the keys a command-line flag set, which hold in every quarter."""
+    quarter_tables = {k: raw.pop(k) for k in list(raw) if k in QUARTER_TABLES}
     unknown = [k for k in raw if k not in ECONOMICS_KEYS]
     if unknown:
         raise InputError(f"{source}: unknown key '{unknown[0]}' in [economics]; known keys: {', '.join(ECONOMICS_KEYS)}")
@@ -143,12 +172,30 @@ def _economics(source: str, raw: dict) -> Economics:
         values["recurring_budget"] = raw["recurring_budget"]
     if raw.get("unmailed_response") is not None:
         values["unmailed_response"] = _number(source, "unmailed_response", raw["unmailed_response"], 0.0, 1.0)
+    values["quarters"] = tuple(
+        _quarter_overrides(source, name, quarter_tables.get(name), QUARTER_KEYS, flags) for name in QUARTER_TABLES
+    )
     return Economics(**values)
+
+
+QUARTER_LIMITS = {"gross_margin": (0.0, 1.0), "order_cost": (0.0, MAX_COST), "piece_cost": (0.0, MAX_COST), "order_value": (0.0, MAX_VALUE)}
+
+
+def _quarter_overrides(source: str, where: str, raw, keys: tuple[str, ...], flags: tuple[str, ...] = ()) -> tuple[tuple[str, float], ...]:
+    """A quarter's table of overrides, checked; keys a command-line flag set are dropped (the flag holds all year)."""
+    if raw is None:
+        return ()
+    raw = _table(source, where, raw, "piece_cost = 2.10")
+    unknown = [k for k in raw if k not in keys]
+    if unknown:
+        raise InputError(f"{source}: unknown key '{unknown[0]}' in [{where}]; a quarter may override {', '.join(keys)}")
+    return tuple((key, _number(source, f"{where}.{key}", raw[key], *QUARTER_LIMITS[key])) for key in keys if key in raw and key not in flags)
 
 
 def _versions(source: str, raw, economics: Economics) -> tuple[Version, ...]:
     if not raw:
-        return (Version(name="standard", piece_cost=economics.piece_cost),)
+        costs = tuple(dict(economics.quarters[q]).get("piece_cost") for q in range(4))
+        return (Version(name="standard", piece_cost=economics.piece_cost, quarter_piece_costs=costs),)
     if not isinstance(raw, list):
         raise InputError(f"{source}: versions must be [[versions]] tables, one per version of the piece, not {_shown(raw)}")
     versions = []
@@ -156,7 +203,7 @@ def _versions(source: str, raw, economics: Economics) -> tuple[Version, ...]:
         where = f"[[versions]] number {position}"
         if not isinstance(entry, dict):
             raise InputError(f"{source}: {where} is not a table of keys")
-        unknown = [k for k in entry if k not in VERSION_KEYS]
+        unknown = [k for k in entry if k not in VERSION_KEYS + QUARTER_TABLES]
         if unknown:
             raise InputError(f"{source}: unknown key '{unknown[0]}' in {where}; known keys: {', '.join(VERSION_KEYS)}")
         for key in ("name", "piece_cost"):
@@ -174,6 +221,10 @@ def _versions(source: str, raw, economics: Economics) -> tuple[Version, ...]:
                 response=_number(source, f"{name}.response", entry.get("response", 1.0), 0.0, 1.0),
                 setup_cost=_number(source, f"{name}.setup_cost", entry.get("setup_cost", 0.0), 0.0, MAX_VALUE),
                 min_quantity=_number(source, f"{name}.min_quantity", entry.get("min_quantity", 0), 0, MAX_QUANTITY, integer=True),
+                quarter_piece_costs=tuple(
+                    dict(_quarter_overrides(source, f"{name}.{quarter}", entry.get(quarter), ("piece_cost",))).get("piece_cost")
+                    for quarter in QUARTER_TABLES
+                ),
             )
         )
     names = [v.name for v in versions]
@@ -245,10 +296,10 @@ def load_policy(path: str | Path, overrides: dict | None = None) -> Policy:
     if unknown:
         raise InputError(f"{source}: unknown section or key '{unknown[0]}'; a policy file has [economics], [segments] and [[versions]]")
     economics_raw = dict(_table(source, "economics", raw.get("economics", {}), "[economics] with gross_margin = 0.45"))
-    for key, value in (overrides or {}).items():
-        if value is not None:
-            economics_raw[key] = value
-    economics = _economics(source, economics_raw)
+    flags = tuple(key for key, value in (overrides or {}).items() if value is not None)
+    for key in flags:
+        economics_raw[key] = overrides[key]
+    economics = _economics(source, economics_raw, flags)
     versions = _versions(source, raw.get("versions", []), economics)
     segments = _segments(source, raw.get("segments", {}))
     return Policy(economics=economics, versions=versions, segments=segments, source=source)
