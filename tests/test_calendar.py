@@ -151,7 +151,7 @@ def test_it_holds_now_to_mail_before_the_peak():
     process = Process(0.8, 3.0, 0.5, 4.0, 0.5, seasons)
     calendar = C.Calendar(seasons, (20.0,) * 4, (C.Choice("full", 1.0, (1.5,) * 4),))
     horizon = 12
-    program = C.solve_calendar(process, calendar, DISCOUNT, horizon + 3, horizon + 3, n_max=8, b_max=2, x_max=4, keep=(horizon - 1, horizon, horizon + 1, horizon + 2))
+    program = C.solve_calendar(process, calendar, DISCOUNT, horizon + 3, horizon + 3, n_max=12, b_max=12, x_max=4, keep=(horizon - 1, horizon, horizon + 1, horizon + 2))
     for last in range(4):
         belief = C.Belief.from_history(program, [2], [1], [[seasons[(last - 1) % 4]]], horizon + 12)
         plan = C.plan_along_silence(program, belief, (last + 1) % 4, horizon, 8)

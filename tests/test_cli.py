@@ -95,6 +95,41 @@ def test_stop_table_json_lists_every_state(demo_dir):
     assert data["economics"]["horizon_quarters"] == 8
 
 
+HIGH_COST_SEASON = POLICY.parent / "high-cost-season.toml"
+
+
+def test_stop_table_with_a_dear_quarter_and_versions_plans_on_the_calendar(demo_dir):
+    # The demo's fitted seasons are within two standard errors of 1 (it is drawn without seasons), so the calendar
+    # here is the policy's: quarter 4 dearer and thinner, three versions of the piece.
+    result = run("stop-table", demo_dir / "model.json", "--policy", HIGH_COST_SEASON, "--horizon-quarters", 8, "--plug-in", "--json")
+    assert result.returncode == 0, result.stderr
+    data = json.loads(result.stdout)
+    assert data["planned_with"] == "calendar"
+    assert data["economics"]["quarters"] == {"quarter_4": {"gross_margin": 0.42, "order_cost": 5.5, "piece_cost": 1.6}}
+    rows = data["rows"]
+    assert len(rows) == 4 * 3 * (1 + 8 * 9 // 2)  # a row per quarter of the last order
+    names = {"hold", "full", "slim", "postcard"}
+    for row in rows:
+        assert row["last_purchase_season"] in (1, 2, 3, 4) and len(row["actions"]) == 9 and set(row["actions"]) <= names
+        pieces = [k for k, a in enumerate(row["actions"]) if a != "hold"]
+        expected = (None if pieces[-1] == 8 else pieces[-1] + 1) if pieces else 0
+        assert row["stop_after"] == expected
+    assert any(a != "full" and a != "hold" for row in rows for a in row["actions"])  # some plan uses a cheaper version
+    text = run("stop-table", demo_dir / "model.json", "--policy", HIGH_COST_SEASON, "--horizon-quarters", 8, "--plug-in")
+    assert text.returncode == 0, text.stderr
+    flat = " ".join(text.stdout.split())
+    assert "Choices each quarter: hold or full, slim, postcard" in flat and "against one piece and every quarter alike" in flat
+    assert "the policy's own quarters: Q4 gross_margin 0.42, order_cost 5.5, piece_cost 1.6" in flat
+
+
+def test_a_bad_quarter_table_exits_2_naming_it(demo_dir, tmp_path):
+    policy = tmp_path / "policy.toml"
+    policy.write_text(HIGH_COST_SEASON.read_text().replace("[economics.quarter_4]        # the holiday quarter", "[economics.quarter_4]\nhorizon_quarters = 4"))
+    result = run("stop-table", demo_dir / "model.json", "--policy", policy, "--plug-in")
+    assert result.returncode == 2 and "Traceback" not in result.stderr
+    assert "unknown key 'horizon_quarters' in [quarter_4]" in result.stderr and len(result.stderr.strip().splitlines()) == 1
+
+
 def test_stop_table_ranges_over_draws_are_seeded_and_in_the_json(demo_dir):
     args = ("stop-table", demo_dir / "model.json", "--policy", POLICY, "--horizon-quarters", 6, "--draws", 6, "--seed", 4, "--json")
     first, again = run(*args), run(*args)

@@ -58,21 +58,31 @@ def test_money_shows_missing_values_as_a_dash():
     assert render.money(None) == "-" and render.money(float("nan")) == "-" and render.money(1234.5) == "1,234.50"
 
 
-def test_a_seasonal_model_says_the_stop_rule_plans_an_average_quarter():
+def test_a_seasonal_model_is_planned_on_the_calendar_only_where_the_data_support_its_seasons():
     import dataclasses
 
     from lapsewise.decide.program import decision_process
 
-    seasonal = dataclasses.replace(MODEL, churn=dataclasses.replace(MODEL.churn, seasons=(1.0, 0.5, 0.4, 0.7)))
     economics = Economics(0.45, 4.0, 0.9, 0.10, 8)
-    table = pipeline.stop_table(seasonal, Policy(economics, (Version("full", 0.9),), Segments(), "test"))
-    text = " ".join(recorded(render.print_stop_table, table, seasonal).split())
-    assert "plans every quarter as an average one (multiplier 0.65)" in text
-    assert "stop-table" not in text and "The model has seasons (1.00, 0.50, 0.40, 0.70" in text
+    policy = Policy(economics, (Version("full", 0.9),), Segments(), "test")
+    loose = dataclasses.replace(
+        MODEL, churn=dataclasses.replace(MODEL.churn, seasons=(1.0, 0.5, 0.4, 0.7), std_errors={f"season_{q}": 0.4 for q in range(1, 5)})
+    )
+    table = pipeline.stop_table(loose, policy)
+    text = " ".join(recorded(render.print_stop_table, table, loose).split())
+    assert not table.calendar
+    assert "all within two standard errors of 1, so the stop rule plans every quarter as an average one (multiplier 0.65)" in text
     # The process it plans with has the mean p of an average quarter: alpha / (alpha + beta') = 0.65 alpha / (alpha + beta).
     plain = decision_process(MODEL.churn)
-    averaged = decision_process(seasonal.churn)
+    averaged = decision_process(loose.churn)
     assert abs(averaged.mean_p - 0.65 * plain.mean_p) < 1e-12 and averaged.alpha == plain.alpha
     assert table.process.beta == averaged.beta
+    # Seasons the data support (here no standard errors to say otherwise): the calendar program, a row per quarter of the last order.
+    firm = dataclasses.replace(MODEL, churn=dataclasses.replace(MODEL.churn, seasons=(1.0, 0.5, 0.4, 0.7)))
+    table = pipeline.stop_table(firm, policy)
+    text = " ".join(recorded(render.print_stop_table, table, firm).split())
+    assert table.calendar and table.seasonal
+    assert "Sales by quarter of the year: Q1 1.00, Q2 0.50, Q3 0.40, Q4 0.70 (the model's seasons)" in text
+    assert "against one piece and every quarter alike" in text and "Last order in" in text
     # Without seasons nothing is said.
-    assert "The model has seasons" not in " ".join(recorded(render.print_stop_table, pipeline.stop_table(MODEL, Policy(economics, (Version("full", 0.9),), Segments(), "test")), MODEL).split())
+    assert "seasons" not in " ".join(recorded(render.print_stop_table, pipeline.stop_table(MODEL, policy), MODEL).split())

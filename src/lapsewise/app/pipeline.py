@@ -125,17 +125,18 @@ def stop_table(model: Model, policy: Policy, draws: int = 0, seed: int = 0, sens
     economics = policy.economics
     size = program_bytes(economics.horizon_quarters, 2 * economics.horizon_quarters, 0, 0, economics.horizon_quarters)
 
-    def table(fitted: Model) -> StopTable:
+    def table(fitted: Model, layout: StopTable | None = None) -> StopTable:
         return build_stop_table(
-            fitted.churn, fitted.spend, economics, policy.segments.spend_bands, each=side_by_side_if_they_fit([size]), rho_estimable=model.rho_estimable, policy_source=policy.source
+            fitted.churn, fitted.spend, economics, policy.segments.spend_bands, each=side_by_side_if_they_fit([size]), rho_estimable=model.rho_estimable, policy_source=policy.source,
+            versions=policy.versions, calendar=None if layout is None else layout.calendar, seasonal_rows=None if layout is None else layout.seasonal,
         )
 
     point = table(model)
     if draws:
         drawn = model_draws(model, draws, seed)
-        point = with_ranges(point, [table(fitted) for fitted in drawn.models], tuple(drawn.notes()))
+        point = with_ranges(point, [table(fitted, point) for fitted in drawn.models], tuple(drawn.notes()))
     if sensitivity:
-        point = with_sensitivity(point, [(name, error, table(lower), table(higher)) for name, error, lower, higher in shifted_models(model)])
+        point = with_sensitivity(point, [(name, error, table(lower, point), table(higher, point)) for name, error, lower, higher in shifted_models(model)])
     return point
 
 

@@ -311,7 +311,88 @@ def _percent(value: float) -> str:
     return "<1" if value < 0.005 else f"{100 * value:.0f}"
 
 
+def plan_text(actions, horizon: int) -> str:
+    """A plan for the silent quarters in our compact form: runs of one choice, "full ×3 · postcard ×4 · stop"."""
+    runs: list[list] = []
+    for action in actions:
+        if runs and runs[-1][0] == action:
+            runs[-1][1] += 1
+        else:
+            runs.append([action, 1])
+    if runs and runs[-1][0] == "hold":
+        runs[-1] = ["stop", 0]
+    parts = [name if count == 0 else f"{name} ×{count}" for name, count in runs]
+    if runs and runs[-1][0] != "stop":
+        parts.append(f"to the {horizon}-quarter horizon")
+    return " · ".join(parts)
+
+
+SEASON_NAMES = ("Q1", "Q2", "Q3", "Q4")
+"""Quarters of the fiscal year, as the tables name them."""
+
+
+def print_calendar_stop_table(console: Console, table, model) -> None:
+    """The calendar program's stop table: per band, the plan after the last order for the shown rows (and each
+    quarter of the year of that order, with seasons), its stop point beside the breakeven rule's, and one line
+    on what the calendar and the versions changed against one piece and no seasons."""
+    from lapsewise.decide.stop_table import calendar_changes
+
+    economics = table.economics
+    horizon = economics.horizon_quarters
+    shown = [(x, t_x) for x, t_x in stop_table_rows_shown(table, horizon) if x in (0, 1, 2, 4, 8)]
+    console.print(
+        f"Choices each quarter: hold or {', '.join(table.choices[1:])}; {economics.annual_discount_rate:.0%} a year, each decision looking "
+        f"{horizon} quarters ahead{' (to the same quarter of the year: up to 3 more)' if table.seasonal else ''}; "
+        f"a held customer orders at {table.process.rho:.2f} times the mailed rate."
+    )
+    if table.seasonal:
+        overrides = "; ".join(f"{SEASON_NAMES[q]} {', '.join(f'{k} {v:g}' for k, v in pairs)}" for q, pairs in enumerate(economics.quarters) if pairs)
+        if table.process.seasonal:
+            sales = f"Sales by quarter of the year: {', '.join(f'{SEASON_NAMES[q]} {s:.2f}' for q, s in enumerate(table.process.multipliers))} (the model's seasons)"
+        elif model.churn.process.seasonal:
+            sales = "Sales alike in every quarter (the model's seasons are all within two standard errors of 1)"
+        else:
+            sales = "Sales alike in every quarter (the model has no seasons)"
+        console.print(sales + (f"; the policy's own quarters: {overrides}." if overrides else "."))
+    rows = table.rows
+    changes = {c.band: c for c in calendar_changes(table)}
+    for band in table.bands:
+        grid = Table(title=f"'{band.label}' spend (order value {money(band.order_value)}): the plan for the silent quarters after the last order", title_justify="left")
+        headings = ["x, t_x"] + (["Last order in"] if table.seasonal else []) + ["Plan", "Stop after", "Breakeven rule"]
+        headings += [f"Range over {table.draws} draws"] if table.draws else []
+        for column in headings:
+            grid.add_column(column, justify="left" if column in ("x, t_x", "Plan", "Last order in") else "right")
+        for x, t_x in shown:
+            mine = rows[(rows["spend_band"] == band.label) & (rows["frequency"] == x) & (rows["last_purchase_quarter"] == t_x)]
+            for row in mine.itertuples():
+                line = [f"{x}, {t_x}"] + ([SEASON_NAMES[int(row.last_purchase_season) - 1]] if table.seasonal else [])
+                line += [plan_text(row.actions, horizon), _stop_text(int(row.stop_after), horizon), _stop_text(int(row.breakeven_stop_after), horizon)]
+                line += [_stop_range_text(int(row.stop_after_low), int(row.stop_after_high))] if table.draws else []
+                grid.add_row(*line)
+        console.print(grid)
+        change = changes.get(band.label)
+        if change is not None:
+            shift = f" (by {abs(change.mean_shift):.1f} quarters on average)" if change.later + change.earlier else ""
+            console.print(
+                f"'{band.label}': against one piece and every quarter alike, {change.later} of {change.plans} plans stop later and "
+                f"{change.earlier} earlier{shift}; {change.step_down} step down to a cheaper version before they stop; "
+                f"{change.hold_between} hold in some quarter and mail again later."
+            )
+    console.print(
+        "x = repeat purchases, t_x = quarter of the last one. A plan lists the choice for each silent quarter from the next one on "
+        "(×n = for n quarters); it is followed while the customer stays silent and starts again after an order. Stop after = silent "
+        "quarters after which no piece is planned. Breakeven rule (common practice): mail the standard piece while P(order next quarter) "
+        "x that quarter's margin covers its piece cost."
+    )
+    print_draw_notes(console, table.notes)
+
+
 def print_stop_table(console: Console, table, model) -> None:
+    if table.calendar:
+        print_calendar_stop_table(console, table, model)
+        if table.sensitivity is not None:
+            print_stop_sensitivity(console, table.sensitivity)
+        return
     economics = table.economics
     horizon = economics.horizon_quarters
     shown = stop_table_rows_shown(table, horizon)
@@ -324,8 +405,9 @@ def print_stop_table(console: Console, table, model) -> None:
     if model.churn.process.seasonal:
         seasons = model.churn.seasons
         console.print(
-            f"The model has seasons ({', '.join(f'{s:.2f}' for s in seasons)} by quarter of the year); the stop rule does not follow "
-            f"the calendar yet and plans every quarter as an average one (multiplier {sum(seasons) / 4:.2f})."
+            f"The model's seasons ({', '.join(f'{s:.2f}' for s in seasons)} by quarter of the year) are all within two standard errors "
+            f"of 1, so the stop rule plans every quarter as an average one (multiplier {sum(seasons) / 4:.2f}); with seasons the data "
+            "support, or quarters that differ in the policy, it follows the calendar."
         )
     cells = table.cells.set_index(["spend_band", "frequency", "last_purchase_quarter", "silent_quarters"])
     rows = table.rows.set_index(["spend_band", "frequency", "last_purchase_quarter"])
@@ -455,8 +537,10 @@ def stop_table_json(table, model) -> dict:
                 "order_value": float(r.order_value),
                 "frequency": int(r.frequency),
                 "last_purchase_quarter": int(r.last_purchase_quarter),
+                "last_purchase_season": int(r.last_purchase_season) if table.seasonal else None,
                 "stop_after": None if r.stop_after < 0 else int(r.stop_after),
                 "breakeven_stop_after": None if r.breakeven_stop_after < 0 else int(r.breakeven_stop_after),
+                "actions": list(r.actions),
                 **(
                     {
                         "stop_after_low": None if r.stop_after_low < 0 else int(r.stop_after_low),
@@ -469,6 +553,7 @@ def stop_table_json(table, model) -> dict:
             }
             for r in table.rows.itertuples()
         ],
+        "planned_with": "calendar" if table.calendar else "single piece",
         "draws": table.draws,
         "sensitivity": None if table.sensitivity is None else [
             {k: (round(float(v), 6) if k == "std_error" else v) for k, v in row.items()} for row in table.sensitivity.to_dict(orient="records")

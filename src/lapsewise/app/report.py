@@ -354,7 +354,7 @@ def _stop_text(stop_after: int) -> str:
 
 
 def stop_section(results: ReportResults) -> str:
-    table = results.stop_table
+    table = results.stop_table.in_season(1)
     economics = table.economics
     horizon = economics.horizon_quarters
     shown = stop_table_rows_shown(table, horizon)
@@ -380,6 +380,9 @@ def stop_section(results: ReportResults) -> str:
         f"{economics.annual_discount_rate:.0%} a year, each decision looking {horizon} quarters ahead; a held customer orders at "
         f"{table.process.rho:.2f} times the mailed rate. The framed cell is the stop point; dotted cells are not mailed. "
         "x = repeat purchases, t_x = quarter of the last one."
+        + (" Planned on the calendar: shown for customers whose last order fell in quarter 1 of the fiscal year; "
+           "lapsewise stop-table shows every quarter and the versions each plan uses." if table.seasonal else
+           " Planned with the policy's versions: lapsewise stop-table shows which each plan uses." if table.calendar else "")
     )
     return _section("stop", stop_figure(table), reading, beside, note)
 

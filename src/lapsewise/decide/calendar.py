@@ -122,6 +122,37 @@ class Calendar:
         """Holding first, then the versions."""
         return (Choice("hold", rho, (0.0, 0.0, 0.0, 0.0)),) + self.versions
 
+    @property
+    def seasonal(self) -> bool:
+        """True when the quarters of the year differ (in sales, margin or a piece's cost)."""
+        costs = [v.piece_cost for v in self.versions]
+        return len(set(self.seasons)) > 1 or len(set(self.margins)) > 1 or any(len(set(c)) > 1 for c in costs)
+
+
+def needs_calendar(process: Process, economics, versions) -> bool:
+    """Whether the calendar program is needed: seasons in the model, quarters that differ in the policy, or a
+    choice of pieces (several versions, or one that sells less than the full piece). Otherwise the single-piece
+    program (:mod:`lapsewise.decide.program`) gives the same answer, exactly and faster."""
+    return (
+        process.seasonal or economics.seasonal or len(versions) > 1
+        or any(v.response != 1.0 or any(c is not None for c in v.quarter_piece_costs) for v in versions)
+    )
+
+
+def calendar_for(process: Process, economics, versions, order_value: float) -> Calendar:
+    """The calendar of a policy (its economics and versions) for customers of one order value.
+
+    A quarter's margin is ``gross_margin * order_value - order_cost`` with that quarter's overrides (its own
+    ``order_value`` replacing the customers' when it sets one); each version's piece cost is its own in that quarter.
+    """
+    margins = []
+    for quarter in range(4):
+        economics_then = economics.in_quarter(quarter)
+        value = economics_then.order_value if "order_value" in dict(economics.quarters[quarter]) else order_value
+        margins.append(economics_then.margin(value))
+    choices = tuple(Choice(v.name, v.response, tuple(v.piece_cost_in(q) for q in range(4))) for v in versions)
+    return Calendar(tuple(float(s) for s in process.multipliers), tuple(margins), choices)
+
 
 def learning_process(process: Process) -> Process:
     """The process the program plans against: the model's, rho a number, its seasons in the calendar instead."""
@@ -152,6 +183,8 @@ class CalendarProgram:
     log_alive: np.ndarray
     tables: dict
     grid: tuple = GRID
+    b_max: int | None = None
+    """The largest b solved for at the decision layers (a belief spread further is folded back onto it)."""
 
     @property
     def choices(self) -> tuple[Choice, ...]:
@@ -161,8 +194,15 @@ class CalendarProgram:
         """The quarter of the year decided with h quarters left."""
         return (self.end - h) % 4
 
+    def b_reach(self, h: int) -> int | None:
+        """The largest b solved for with h quarters left."""
+        return None if self.b_max is None else self.b_max + self.layers - max(h, 1)
+
     def layer_for(self, quarter_of_year, horizon: int) -> np.ndarray:
-        """The layer, from ``horizon`` to ``horizon + 3``, that decides a quarter of this quarter of the year."""
+        """The layer, from ``horizon`` to ``horizon + 3``, that decides a quarter of this quarter of the year
+        (``horizon`` itself when every quarter is alike)."""
+        if not self.calendar.seasonal:
+            return np.full(np.shape(quarter_of_year), horizon)
         return horizon + (self.end - horizon - np.asarray(quarter_of_year)) % 4
 
     def after_purchase_at(self, h: int, b, x, n) -> np.ndarray:
@@ -287,7 +327,7 @@ def solve_calendar(
             previous = table
             if h in keep:
                 kept[h] = (table[0].copy(), table[1].copy())
-    return CalendarProgram(learning, calendar, discount, layers, end, log_moment, log_alive, kept, tuple(grid))
+    return CalendarProgram(learning, calendar, discount, layers, end, log_moment, log_alive, kept, tuple(grid), b_max)
 
 
 def _choice_chances(choice: Choice, season: float, survive, mean_p, mailed_silent, basis: float):
@@ -417,7 +457,7 @@ class Belief:
             moments = np.exp(program.log_moment[j, x[row], n[row]])
             weights[row, : len(poly)] = poly * moments
         weights /= weights.sum(axis=1, keepdims=True)
-        return cls(n, x, weights, np.ones(len(n)) if alive is None else np.asarray(alive, dtype=float))
+        return cls(n, x, _folded(weights, program.b_reach(program.layers)), np.ones(len(n)) if alive is None else np.asarray(alive, dtype=float))
 
     def _spread(self):
         rows, columns = np.nonzero(self.weights != 0)
@@ -435,10 +475,11 @@ def belief_values(program: CalendarProgram, h: int, belief: Belief) -> np.ndarra
     return values * belief.alive[:, None]
 
 
-def silent_step(program: CalendarProgram, h: int, belief: Belief, chosen: np.ndarray, bought: bool = False) -> tuple[Belief, np.ndarray]:
+def silent_step(program: CalendarProgram, h: int, belief: Belief, chosen: np.ndarray, bought: bool = False, next_layer: int | None = None) -> tuple[Belief, np.ndarray]:
     """The belief one quarter on, for customers who stay silent under the chosen choice (an index per row), and
     each row's chance of an order in the quarter (before the silence). With ``bought``, the belief one quarter on
-    for those who order instead: alive, one purchase more, b weighted by each state's chance of the order."""
+    for those who order instead: alive, one purchase more, b weighted by each state's chance of the order.
+    ``next_layer`` (default h - 1) is the layer that will read the belief: its b reaches ``b_max + layers - next_layer``."""
     rows, b, weight = belief._spread()
     n, x = belief.n[rows], belief.x[rows]
     survive, mean_p, mailed_silent, _ = program.chances_at(b, x, n)
@@ -468,7 +509,18 @@ def silent_step(program: CalendarProgram, h: int, belief: Belief, chosen: np.nda
     with np.errstate(divide="ignore", invalid="ignore"):
         weights = np.where(stay_row[:, None] > 0, weights / stay_row[:, None], belief.weights)
         alive = np.where(stay_row > 0, belief.alive * stay_row / (1.0 - belief.alive * buy_row), 0.0)
-    return Belief(belief.n + 1, belief.x, weights, alive), belief.alive * buy_row
+    return Belief(belief.n + 1, belief.x, _folded(weights, program.b_reach(h - 1 if next_layer is None else next_layer)), alive), belief.alive * buy_row
+
+
+def _folded(weights: np.ndarray, b_max: int | None) -> np.ndarray:
+    """The belief's weight beyond ``b_max`` moved onto b_max, the largest b the decision layers were solved for
+    (an approximation only for beliefs spread that far: the tail of a long run of slow-season silences)."""
+    if b_max is None or weights.shape[1] <= b_max + 1:
+        return weights
+    weights = weights.copy()
+    weights[:, b_max] += weights[:, b_max + 1 :].sum(axis=1)
+    weights[:, b_max + 1 :] = 0.0
+    return weights
 
 
 @dataclass(frozen=True)
@@ -491,7 +543,8 @@ def plan_along_silence(program: CalendarProgram, belief: Belief, quarter_of_year
     quarters ahead (to ``horizon + 3``, so that every decision looks ahead to the same quarter of the year).
 
     ``quarter_of_year`` (per row) is the quarter of the year of the first quarter decided. The program must have
-    been solved with ``horizon + 3`` layers and have kept layers ``horizon - 1`` to ``horizon + 2``.
+    been solved with ``horizon + 3`` layers and have kept layers ``horizon - 1`` to ``horizon + 2`` (when every
+    quarter is alike: ``horizon`` layers, keeping ``horizon - 1``).
     """
     rows = len(belief.n)
     quarter = np.broadcast_to(np.asarray(quarter_of_year, dtype=np.int64), (rows,))
@@ -514,7 +567,7 @@ def plan_along_silence(program: CalendarProgram, belief: Belief, quarter_of_year
             mine = np.flatnonzero(layers == layer)
             part = Belief(belief.n[mine], belief.x[mine], belief.weights[mine], belief.alive[mine])
             p_buy[mine, step] = silent_step(program, int(layer), part, full[mine])[1]
-            moved, _ = silent_step(program, int(layer), part, chosen[mine, step])
+            moved, _ = silent_step(program, int(layer), part, chosen[mine, step], next_layer=program.layers)
             if following is belief:
                 following = Belief(belief.n + 1, belief.x.copy(), belief.weights.copy(), belief.alive.copy())
             following.weights[mine], following.alive[mine] = moved.weights, moved.alive

@@ -81,21 +81,14 @@ from lapsewise.model.moments import log_alive_ahead, log_moment_grid
 from lapsewise.model.process import Process
 
 
-def decision_process(fit: ChurnFit, unmailed_response: float | None = None, *, rho_estimable: bool = True, policy_source: str = "the policy") -> Process:
-    """The fitted process as the program plans against it: rho is a number, and every quarter is alike.
+def planning_process(fit: ChurnFit, unmailed_response: float | None = None, *, rho_estimable: bool = True, policy_source: str = "the policy") -> Process:
+    """The fitted process as the programs plan against it: rho is a number, the seasons kept.
 
     ``unmailed_response`` (the policy's) overrides rho; without it and without a
     mailing history a held customer is assumed not to buy (rho 0). A model fitted on
     a mailings file that mailed every customer every quarter has no rho
     (``rho_estimable`` False): nothing showed how a held customer orders, so the
     policy must say (``policy_source`` names it in the refusal).
-
-    The program does not yet follow the calendar. With seasons it plans with the
-    purchase probability of an average quarter: ``s_bar p`` with ``s_bar`` the mean
-    multiplier, approximated by ``Beta(alpha, beta')`` with the same mean,
-    ``beta' = (alpha + beta) / s_bar - alpha`` (the same spread of p across
-    customers, shifted to the average quarter). An approximation: a quarter of
-    the year's own multiplier is not used.
     """
     if not rho_estimable and fit.rho is None and unmailed_response is None:
         raise InputError(
@@ -103,11 +96,39 @@ def decision_process(fit: ChurnFit, unmailed_response: float | None = None, *, r
             "so rho (the response without a piece) could not be estimated; set it (0 to 1) under [economics] or pass --unmailed-response"
         )
     rho = unmailed_response if unmailed_response is not None else (fit.rho if fit.rho is not None else 0.0)
+    return dataclasses.replace(fit.process, rho=float(rho))
+
+
+SEASON_SUPPORT = 2.0
+"""Standard errors by which some quarter's multiplier must differ from 1 for the calendar program to follow the seasons."""
+
+
+def seasons_supported(fit: ChurnFit) -> bool:
+    """Whether the data support the model's seasons: some quarter's multiplier is more than two standard errors
+    from 1 (a Wald check per quarter; with no standard errors, whenever the model has seasons)."""
+    if fit.seasons is None or all(s == 1.0 for s in fit.seasons):
+        return False
+    errors = [fit.std_errors.get(f"season_{q + 1}") for q in range(4)]
+    if all(e is None for e in errors):
+        return True
+    return any(e is not None and e > 0 and abs(1.0 - s) > SEASON_SUPPORT * e for s, e in zip(fit.seasons, errors))
+
+
+def decision_process(fit: ChurnFit, unmailed_response: float | None = None, *, rho_estimable: bool = True, policy_source: str = "the policy") -> Process:
+    """:func:`planning_process` with every quarter alike, as the single-piece program plans.
+
+    With seasons it plans with the purchase probability of an average quarter: ``s_bar p``
+    with ``s_bar`` the mean multiplier, approximated by ``Beta(alpha, beta')`` with the same mean,
+    ``beta' = (alpha + beta) / s_bar - alpha`` (the same spread of p across customers,
+    shifted to the average quarter). An approximation: the calendar program
+    (:mod:`lapsewise.decide.calendar`) follows the quarters instead.
+    """
+    process = planning_process(fit, unmailed_response, rho_estimable=rho_estimable, policy_source=policy_source)
     beta = fit.beta
-    if fit.process.seasonal:
+    if process.seasonal:
         mean_season = sum(fit.seasons) / 4.0
         beta = (fit.alpha + fit.beta) / mean_season - fit.alpha
-    return Process(fit.alpha, beta, fit.gamma, fit.delta, float(rho))
+    return Process(fit.alpha, beta, fit.gamma, fit.delta, process.rho)
 
 
 def check_unmailed_purchases(fit: ChurnFit, unmailed_response: float | None, histories: Histories, policy_source: str) -> None:

@@ -5,6 +5,14 @@ mailed for k silent quarters since is in program state ``(n, x, b) =
 (t_x + k, x, 0)`` with the posterior's chance of being alive. The table solves
 the program once per spend band and reads off, for each (x, t_x), the first k
 at which holding beats mailing.
+
+When the quarters differ (seasons in the model, seasonal costs in the policy) or
+the policy offers versions of the piece, the calendar program
+(:mod:`lapsewise.decide.calendar`) plans instead, and each row follows its plan
+through the silent quarters: ``actions`` names the choice for k = 0, 1, 2, ...
+(a version, or "hold"), ``stop_after`` is the number of silent quarters after
+which no further piece is planned, and with seasons there is a row per quarter
+of the year of the last order (``last_purchase_season``, 1-4).
 """
 
 from __future__ import annotations
@@ -17,10 +25,11 @@ import numpy as np
 import pandas as pd
 
 from lapsewise.data.histories import mailed_silent_histories
+from lapsewise.decide import calendar as cal
 from lapsewise.decide.decisions import Decisions, decide
 from lapsewise.decide.order_values import SpendBand, spend_bands
-from lapsewise.decide.program import chances, decision_process, solve_with
-from lapsewise.files.policy_file import Economics
+from lapsewise.decide.program import chances, decision_process, planning_process, seasons_supported, solve_with
+from lapsewise.files.policy_file import Economics, Version
 from lapsewise.model.churn import ChurnFit
 from lapsewise.model.posterior import posterior
 from lapsewise.model.process import Process
@@ -48,10 +57,26 @@ class StopTable:
     draws: int = 0
     sensitivity: pd.DataFrame | None = None
     notes: tuple[str, ...] = ()
+    calendar: bool = False
+    seasonal: bool = False
+    blind: "StopTable | None" = None
+    """With the calendar program: the single-piece, season-blind table, for the comparison the output reads off."""
+    choices: tuple[str, ...] = ("hold", "piece")
+    """The names ``actions`` use: holding, then the versions of the piece (the first is the standard one)."""
 
     @property
     def stop_points(self) -> np.ndarray:
         return self.rows["stop_after"].to_numpy()
+
+    def in_season(self, season: int) -> "StopTable":
+        """The rows and cells of customers whose last order fell in this quarter of the year (1-4); the whole
+        table when it has no seasons. Each (band, x, t_x) then appears once, as in a season-blind table."""
+        if not self.seasonal:
+            return self
+        return dataclasses.replace(
+            self, rows=self.rows[self.rows["last_purchase_season"] == season].reset_index(drop=True),
+            cells=self.cells[self.cells["last_purchase_season"] == season].reset_index(drop=True),
+        )
 
 
 def all_states(horizon: int) -> tuple[np.ndarray, np.ndarray]:
@@ -63,13 +88,31 @@ def all_states(horizon: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def build_stop_table(
-    churn: ChurnFit, spend: SpendFit | None, economics: Economics, band_count: int = 3, each: Callable = map, rho_estimable: bool = True, policy_source: str = "the policy"
+    churn: ChurnFit, spend: SpendFit | None, economics: Economics, band_count: int = 3, each: Callable = map, rho_estimable: bool = True, policy_source: str = "the policy",
+    versions: tuple[Version, ...] | None = None, calendar: bool | None = None, seasonal_rows: bool | None = None,
 ) -> StopTable:
     """Solve the program for each spend band and read off the stop point of every (x, t_x).
 
     ``each`` maps a function over the bands (the pipeline passes one that runs two at a time);
     ``rho_estimable`` and ``policy_source`` are :func:`~lapsewise.decide.program.decision_process`'s.
+    With ``versions`` (the policy's) the calendar program plans when it is needed
+    (:func:`~lapsewise.decide.calendar.needs_calendar`; ``calendar`` forces the choice), beside the single-piece,
+    season-blind table it is read against; ``seasonal_rows`` forces a row per quarter of the year of the last
+    order, or none (the tables of parameter draws take the estimates' layout).
     """
+    blind = _single_piece_table(churn, spend, economics, band_count, each, rho_estimable, policy_source)
+    planning = planning_process(churn, economics.unmailed_response, rho_estimable=rho_estimable, policy_source=policy_source)
+    if not seasons_supported(churn):
+        planning = planning.without_seasons()
+    if calendar is None:
+        calendar = versions is not None and cal.needs_calendar(planning, economics, versions)
+    if not calendar:
+        return blind
+    return _calendar_table(planning, blind, versions, each, seasonal_rows)
+
+
+def _single_piece_table(churn, spend, economics, band_count, each, rho_estimable, policy_source) -> StopTable:
+    """The single-piece program's table: every quarter alike, the standard piece (``piece_cost``) or holding."""
     process = decision_process(churn, economics.unmailed_response, rho_estimable=rho_estimable, policy_source=policy_source)
     horizon = economics.horizon_quarters
     bands = spend_bands(spend, economics, band_count)
@@ -103,6 +146,7 @@ def build_stop_table(
                     "last_purchase_quarter": t_rows,
                     "stop_after": _first_false(mail),
                     "breakeven_stop_after": _first_false(breakeven),
+                    "actions": [tuple(PIECE if m else HOLD for m in line) for line in mail],
                 }
             )
         )
@@ -121,6 +165,86 @@ def build_stop_table(
             )
         )
     return StopTable(economics, process, bands, pd.concat(row_frames, ignore_index=True), pd.concat(cell_frames, ignore_index=True))
+
+
+PIECE = "piece"
+"""The single-piece table's name for mailing the standard piece in ``actions``."""
+HOLD = "hold"
+
+
+def _calendar_table(process: Process, blind: StopTable, versions: tuple[Version, ...], each: Callable, seasonal_rows: bool | None = None) -> StopTable:
+    """The calendar program's table: per band, each (x, t_x) (and quarter of the year of the last order, with
+    seasons) followed through its silent quarters by the plan the program makes there."""
+    economics, horizon = blind.economics, blind.economics.horizon_quarters
+    x_rows, t_rows = all_states(horizon)
+    first = cal.calendar_for(process, economics, versions, blind.bands[0].order_value)
+    seasonal = first.seasonal if seasonal_rows is None else seasonal_rows
+    seasons = (0, 1, 2, 3) if seasonal else (0,)
+    x = np.tile(x_rows, len(seasons))
+    t_x = np.tile(t_rows, len(seasons))
+    last = np.repeat(np.asarray(seasons), len(x_rows))  # quarter of the year (0-3) of the last order
+    steps = horizon + 1
+
+    def band_plan(band: SpendBand) -> tuple[cal.CalendarProgram, cal.SilentPlan]:
+        calendar = cal.calendar_for(process, economics, versions, band.order_value)
+        layers = horizon + 3 if calendar.seasonal else horizon
+        keep = tuple(range(horizon - 1, layers)) if calendar.seasonal else (horizon - 1,)
+        program = cal.solve_calendar(process, calendar, economics.discount, layers, layers, n_max=2 * horizon, b_max=horizon, x_max=horizon, keep=keep)
+        # Before the last order: t_x - x silent quarters, all mailed with the full piece, then the x orders.
+        first_quarter = (last - t_x) % 4
+        silent = [[calendar.seasons[(f + i) % 4] for i in range(1, t - xx + 1)] for f, t, xx in zip(first_quarter, t_x, x)]
+        belief = cal.Belief.from_history(program, t_x, x, silent, width=horizon + steps + 1)
+        return program, cal.plan_along_silence(program, belief, (last + 1) % 4, horizon, steps)
+
+    names = ("hold",) + tuple(v.name for v in versions)
+    row_frames, cell_frames = [], []
+    for band, (program, plan) in zip(blind.bands, each(band_plan, blind.bands)):
+        mail = plan.chosen > 0
+        best_piece = plan.values[:, :, 1:].max(axis=2)
+        quarter = (last[:, None] + 1 + np.arange(steps)[None, :]) % 4
+        margins, costs = np.asarray(program.calendar.margins)[quarter], np.asarray(program.calendar.versions[0].piece_cost)[quarter]
+        breakeven = plan.p_buy * margins >= costs
+        row_frames.append(
+            pd.DataFrame(
+                {
+                    "spend_band": band.label,
+                    "order_value": band.order_value,
+                    "frequency": x,
+                    "last_purchase_quarter": t_x,
+                    "last_purchase_season": last + 1 if seasonal else 0,
+                    "stop_after": _after_last(mail),
+                    "breakeven_stop_after": _first_false(breakeven),
+                    "actions": [tuple(names[c] for c in line) for line in plan.chosen],
+                }
+            )
+        )
+        cell_frames.append(
+            pd.DataFrame(
+                {
+                    "spend_band": band.label,
+                    "frequency": np.repeat(x, steps),
+                    "last_purchase_quarter": np.repeat(t_x, steps),
+                    "last_purchase_season": np.repeat(last + 1 if seasonal else np.zeros_like(last), steps),
+                    "silent_quarters": np.tile(np.arange(steps), len(x)),
+                    "p_alive": plan.alive.ravel(),
+                    "p_buy": plan.p_buy.ravel(),
+                    "mail": mail.ravel(),
+                    "value_of_mailing": (best_piece - plan.values[:, :, 0]).ravel(),
+                    "action": np.asarray(names, dtype=object)[plan.chosen.ravel()],
+                }
+            )
+        )
+    return dataclasses.replace(
+        blind, process=process, rows=pd.concat(row_frames, ignore_index=True), cells=pd.concat(cell_frames, ignore_index=True),
+        calendar=True, seasonal=seasonal, blind=blind, choices=names,
+    )
+
+
+def _after_last(flags: np.ndarray) -> np.ndarray:
+    """Per row, the index after the last True (0 when none; -1 when the last entry is True: mailed throughout)."""
+    reversed_first = flags[:, ::-1].argmax(axis=1)
+    after = flags.shape[1] - reversed_first
+    return np.where(~flags.any(axis=1), 0, np.where(flags[:, -1], -1, after))
 
 
 def _first_false(flags: np.ndarray) -> np.ndarray:
@@ -167,3 +291,46 @@ def with_sensitivity(point: StopTable, shifted: list[tuple[str, float, StopTable
         for name, error, lower, higher in shifted
     ]
     return dataclasses.replace(point, sensitivity=pd.DataFrame(rows, columns=["parameter", "std_error", "moved_lower", "moved_higher", "stop_points"]))
+
+
+@dataclass(frozen=True)
+class CalendarChanges:
+    """What the calendar and the versions changed in one band, against the single-piece, season-blind table:
+    of ``plans`` rows, how many stop ``later`` and ``earlier`` (and by how many quarters on average), how many
+    ``step_down`` to another version before they stop, and how many ``hold_between`` (hold, then mail again)."""
+
+    band: str
+    plans: int
+    later: int
+    earlier: int
+    mean_shift: float
+    step_down: int
+    hold_between: int
+
+
+def calendar_changes(table: StopTable) -> list[CalendarChanges]:
+    """Per band, :class:`CalendarChanges` of a calendar table against its season-blind single-piece table."""
+    if not table.calendar or table.blind is None:
+        return []
+    horizon = table.economics.horizon_quarters
+    blind = table.blind.rows.set_index(["spend_band", "frequency", "last_purchase_quarter"])["stop_after"]
+    out = []
+    for band in table.bands:
+        rows = table.rows[table.rows["spend_band"] == band.label]
+        mine = rows["stop_after"].to_numpy()
+        theirs = blind.loc[[(band.label, x, t) for x, t in zip(rows["frequency"], rows["last_purchase_quarter"])]].to_numpy()
+        mine_end, theirs_end = np.where(mine < 0, horizon + 1, mine), np.where(theirs < 0, horizon + 1, theirs)
+        standard = table.choices[1]
+        step_down = hold_between = 0
+        for actions, stop in zip(rows["actions"], mine_end):
+            planned = actions[: min(stop, len(actions))]
+            step_down += any(a not in (HOLD, standard) for a in planned)
+            hold_between += HOLD in planned
+        moved = mine_end != theirs_end
+        out.append(
+            CalendarChanges(
+                band.label, len(rows), int((mine_end > theirs_end).sum()), int((mine_end < theirs_end).sum()),
+                float(np.mean(mine_end[moved] - theirs_end[moved])) if moved.any() else 0.0, int(step_down), int(hold_between),
+            )
+        )
+    return out
