@@ -33,7 +33,7 @@ def test_customer_values_side_by_side_equal_the_stages_in_turn():
 def test_stop_table_and_plan_side_by_side_equal_them_in_turn():
     economics = Economics(0.45, 4.0, 0.9, 0.10, 6)
     together = pipeline.stop_table(MODEL, Policy(economics, POLICY.versions, Segments(), "test"))
-    in_turn = build_stop_table(MODEL.churn, SPEND, economics, 3, each=map)
+    in_turn = build_stop_table(MODEL.churn, SPEND, economics, 3, each=map, versions=POLICY.versions)
     pd.testing.assert_frame_equal(together.rows, in_turn.rows)
     values = pipeline.value_customers(MODEL, small_panel(), POLICY)
     side_by_side, one_by_one = pipeline.plan(values, POLICY, 60.0), make_plan(values, POLICY, 60.0)

@@ -146,9 +146,10 @@ ForceOption = typer.Option(False, "--force", help="Overwrite the output file if 
 JsonOption = typer.Option(False, "--json", help="Print machine-readable JSON instead of tables.")
 DEFAULT_DRAWS = 20
 DEFAULT_DRAW_SEED = 1
-_DRAWS = ("draws", int, typer.Option(
-    DEFAULT_DRAWS, "--draws", min=0, max=1000,
-    help="Draws of the parameters from the fit's standard errors (normal on log and logit scales); 0 uses the estimates alone.",
+_DRAWS = ("draws", Optional[int], typer.Option(
+    None, "--draws", min=0, max=1000,
+    help=f"Draws of the parameters from the fit's standard errors (normal on log and logit scales); 0 uses the estimates alone. Default {DEFAULT_DRAWS} "
+    "(stop-table: none when it plans on the calendar, where each draw solves that program again).",
 ))
 _DRAW_SEED = ("draw_seed", int, typer.Option(DEFAULT_DRAW_SEED, "--seed", min=0, max=2**32 - 1, help="Seed of the parameter draws (0 to 4294967295)."))
 _PLUG_IN = ("plug_in", bool, typer.Option(False, "--plug-in", help="Decide at the parameter estimates alone (no draws): faster, blind to how sure they are."))
@@ -157,9 +158,11 @@ parameter_draws_seeded_by_default = option_group("drawing", [_DRAWS, _PLUG_IN])
 """For a command whose --seed means something else: the draws take the default seed (mail-list's, by default)."""
 
 
-def _drawn(drawing: dict) -> tuple[int, int]:
-    """(draws, seed) from a command's draw options: none with --plug-in; the default seed where the command has no --seed for them."""
-    return (0 if drawing["plug_in"] else drawing["draws"]), drawing.get("draw_seed", DEFAULT_DRAW_SEED)
+def _drawn(drawing: dict, default: int | None = DEFAULT_DRAWS) -> tuple[int | None, int]:
+    """(draws, seed) from a command's draw options: none with --plug-in, ``default`` when --draws is not given; the
+    default seed where the command has no --seed for them."""
+    draws = default if drawing["draws"] is None else drawing["draws"]
+    return (0 if drawing["plug_in"] else draws), drawing.get("draw_seed", DEFAULT_DRAW_SEED)
 
 
 NoSeasonsOption = typer.Option(False, "--no-seasons", help="Fit the model without multipliers by quarter of the year.")
@@ -291,13 +294,13 @@ def stop_table(
     """When to stop mailing a silent customer: the optimal stop point beside the breakeven rule's, with its range over draws of the parameters."""
     from lapsewise.model.fitted import load_model
 
-    draws, seed = _drawn(drawing)
+    draws, seed = _drawn(drawing, default=None)
     model = load_model(model_file)
     policy = pipeline.read_policy(policy_file, overrides)
     console = _console(json_output)
     with render.progress(console, 1, not json_output) as step:
         with step("Solving the stop-rule program" + (f" at the estimates and {draws} draws of the parameters" if draws else "")):
-            table = pipeline.stop_table(model, policy, draws, seed, sensitivity)
+            table = pipeline.stop_table(model, policy, draws, seed, sensitivity, default_draws=DEFAULT_DRAWS)
     if json_output:
         typer.echo(dumps_stable(render.stop_table_json(table, model)), nl=False)
         return

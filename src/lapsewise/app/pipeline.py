@@ -10,6 +10,7 @@ them together.
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Callable
@@ -29,6 +30,7 @@ from lapsewise.data.summary import CustomerSummary, summarize
 from lapsewise.data.suppression import Suppression, match_suppression
 from lapsewise.decide.order_values import typical_order_value
 from lapsewise.decide.program import check_unmailed_purchases, decision_process, program_bytes, workers
+from lapsewise.decide.calendar import calendar_bytes
 from lapsewise.decide.stop_table import StopTable, build_stop_table, with_ranges, with_sensitivity
 from lapsewise.errors import InputError
 from lapsewise.machine import available_memory, gigabytes
@@ -115,15 +117,17 @@ def fit(panel: Panel, seasons: bool = True) -> Fitted:
 # ---------------------------------------------------------------- decisions
 
 
-def stop_table(model: Model, policy: Policy, draws: int = 0, seed: int = 0, sensitivity: bool = False) -> StopTable:
+def stop_table(model: Model, policy: Policy, draws: int | None = 0, seed: int = 0, sensitivity: bool = False, default_draws: int = 0) -> StopTable:
     """The stop table, the spend bands' programs two at a time when memory allows.
 
     With ``draws``, the range of each stop point over that many draws of the parameters
     (:func:`~lapsewise.model.uncertainty.model_draws`, seeded); with ``sensitivity``, how many stop points move
-    when each parameter is two standard errors lower or higher.
+    when each parameter is two standard errors lower or higher. ``draws`` None takes ``default_draws``, or none
+    when the table plans on the calendar (each draw solves the calendar program again), and says so.
     """
     economics = policy.economics
-    size = program_bytes(economics.horizon_quarters, 2 * economics.horizon_quarters, 0, 0, economics.horizon_quarters)
+    horizon = economics.horizon_quarters
+    size = max(program_bytes(horizon, 2 * horizon, 0, 0, horizon), calendar_bytes(horizon + 3, 2 * horizon, horizon, horizon, 4))
 
     def table(fitted: Model, layout: StopTable | None = None) -> StopTable:
         return build_stop_table(
@@ -131,7 +135,16 @@ def stop_table(model: Model, policy: Policy, draws: int = 0, seed: int = 0, sens
             versions=policy.versions, calendar=None if layout is None else layout.calendar, seasonal_rows=None if layout is None else layout.seasonal,
         )
 
+    started = time.perf_counter()
     point = table(model)
+    if draws is None:
+        draws = 0 if point.calendar else default_draws
+        if point.calendar and default_draws:
+            took = time.perf_counter() - started
+            point = replace(point, notes=point.notes + (
+                f"no ranges over parameter draws by default when planning on the calendar: each draw solves the calendar program "
+                f"again (this table took {took:.0f} s); pass --draws {default_draws} for them",
+            ))
     if draws:
         drawn = model_draws(model, draws, seed)
         point = with_ranges(point, [table(fitted, point) for fitted in drawn.models], tuple(drawn.notes()))

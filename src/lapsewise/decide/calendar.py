@@ -81,7 +81,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from lapsewise.decide.program import B_BLOCKS, workers
+from lapsewise.decide.program import B_BLOCKS, check_program_memory, workers
 from lapsewise.model.moments import log_alive_ahead, log_moment_grid
 from lapsewise.model.process import Process
 
@@ -248,6 +248,14 @@ class CalendarProgram:
         return self.discount * np.where(exists[..., None], g, 0.0), self.discount * np.where(exists[..., None], c, 0.0)
 
 
+def calendar_bytes(layers: int, n_max: int, b_max: int, x_max: int, kept: int, points: int = len(GRID), itemsize: int = 4) -> int:
+    """The memory :func:`solve_calendar` takes, in bytes: two pairs of tables that take turns, a pair per kept
+    layer, and the moment grid (each block's working arrays are small beside them)."""
+    n_grid, b_grid, x_grid = n_max + layers + 1, b_max + layers + 1, x_max + layers + 1
+    table = (b_grid + 2) * (x_grid + 2) * (n_grid + 2) * (points + READ - 1) * itemsize
+    return 2 * table * (2 + kept) + 8 * (b_grid + 2) * (x_grid + 3) * (n_grid + 3)
+
+
 def solve_calendar(
     process: Process, calendar: Calendar, discount: float, layers: int, end: int, n_max: int, b_max: int, x_max: int, n_min: int = 0,
     keep=(), grid=GRID, precision=np.float32,
@@ -263,6 +271,7 @@ def solve_calendar(
     within 1e-4 of double precision in the tests; :class:`lapsewise.decide.reference.PlainCalendar` computes the
     same tables state by state (and equals the double-precision solve to 1e-9).
     """
+    check_program_memory(calendar_bytes(layers, n_max, b_max, x_max, len(keep), len(grid), np.dtype(precision).itemsize), layers, n_max)
     learning = learning_process(process)
     basis = held_basis(learning, calendar)
     n_grid, b_grid, x_grid = n_max + layers + 1, b_max + layers + 1, x_max + layers + 1
@@ -274,7 +283,7 @@ def solve_calendar(
     # slice. Two pairs of tables take turns: each layer overwrites every state it reaches and reads only those the
     # layer before reached.
     shape = (b_grid + 2, x_grid + 2, n_grid + 2, k_count + READ - 1)
-    tables = [(np.zeros(shape, precision), np.zeros(shape, precision)) for _ in range(2)]
+    spare = [(np.zeros(shape, precision), np.zeros(shape, precision)) for _ in range(2)]
     choices = calendar.choices(float(learning.rho))
     previous = None
     kept = {}
@@ -284,7 +293,8 @@ def solve_calendar(
             sb, sx, n0, sn = b_max + gone + 1, x_max + gone + 1, n_min + gone, n_max + gone + 1
             q = (end - h) % 4
             season = float(calendar.seasons[q])
-            table = tables[h % 2]
+            # A kept layer gets tables of its own; the others take turns with the two spare pairs.
+            table = (np.zeros(shape, precision), np.zeros(shape, precision)) if h in keep else spare[h % 2]
 
             def block(rows: tuple[int, int, int, int]) -> None:
                 b0, b1, na, nb = rows
@@ -302,31 +312,34 @@ def solve_calendar(
                     "mailed": (lambda t: t[b0:b1, :x1, na + 1 : nb + 1]),
                     "held": (lambda t: t[b0 + 1 : b1 + 1, :x1, na + 1 : nb + 1]),
                 }
-                best_value = best_g = best_c = None
-                for choice in choices:
+                work = Scratch.of(mean_p.shape + (k_count,), precision)
+                best_g, best_c = table[0][b0:b1, :x1, na:nb, :k_count], table[1][b0:b1, :x1, na:nb, :k_count]
+                for index, choice in enumerate(choices):
                     g, c = _line_of_choice(
-                        choice, q, season, calendar.margins[q], survive, mean_p, mailed_silent, after, r, previous, nexts, None, basis
+                        choice, q, season, calendar.margins[q], survive, mean_p, mailed_silent, after, r, previous, nexts, None, basis, work
                     )
-                    value = g - r * c
-                    if best_value is None:
-                        best_value, best_g, best_c = value, g, c
+                    np.multiply(r, c, out=work.choice_value)
+                    np.subtract(g, work.choice_value, out=work.choice_value)  # the choice's value at each grid point
+                    if index == 0:
+                        best_g[...], best_c[...] = g, c
+                        work.chosen[...] = work.choice_value
                     else:
-                        better = value > best_value
-                        np.copyto(best_value, value, where=better)
-                        np.copyto(best_g, g, where=better)
-                        np.copyto(best_c, c, where=better)
-                np.multiply(best_g, discount, out=table[0][b0:b1, :x1, na:nb, :k_count])
-                np.multiply(best_c, discount, out=table[1][b0:b1, :x1, na:nb, :k_count])
+                        np.greater(work.choice_value, work.chosen, out=work.better)
+                        np.copyto(work.chosen, work.choice_value, where=work.better)
+                        np.copyto(best_g, g, where=work.better)
+                        np.copyto(best_c, c, where=work.better)
+                best_g *= discount
+                best_c *= discount
                 for part in table:
                     part[b0:b1, :x1, na:nb, k_count:] = part[b0:b1, :x1, na:nb, k_count - 1 : k_count]
 
-            b_edges = np.linspace(0, sb, min(B_BLOCKS, sb) + 1).astype(int)
-            n_edges = np.linspace(n0, sn, min(N_BLOCKS, sn - n0) + 1).astype(int)
+            b_edges = np.linspace(0, sb, min(B_BLOCKS * 2, sb) + 1).astype(int)
+            n_edges = np.linspace(n0, sn, min(N_BLOCKS * 2, sn - n0) + 1).astype(int)
             blocks = [(b0, b1, na, nb) for b0, b1 in zip(b_edges[:-1], b_edges[1:]) for na, nb in zip(n_edges[:-1], n_edges[1:])]
             list(pool.map(block, [rows for rows in blocks if rows[1] > rows[0] and rows[3] > rows[2] and min(sx, rows[3] - rows[0]) > 0]))
             previous = table
             if h in keep:
-                kept[h] = (table[0].copy(), table[1].copy())
+                kept[h] = table
     return CalendarProgram(learning, calendar, discount, layers, end, log_moment, log_alive, kept, tuple(grid), b_max)
 
 
@@ -358,41 +371,85 @@ def mixing(multiplier: float, basis: float) -> float:
     return 1.0 if basis >= 1.0 else (multiplier - basis) / (1.0 - basis)
 
 
-def _line_of_choice(choice: Choice, q: int, season: float, margin: float, survive, mean_p, mailed_silent, after, r, previous, nexts, columns, basis: float):
+@dataclass
+class Scratch:
+    """Working arrays of one block of states (shape S + (K,)), reused by every choice so that no large temporary is
+    made: the solve's inner loop is memory-bound."""
+
+    later: np.ndarray
+    value: np.ndarray
+    best: np.ndarray
+    best_c: np.ndarray
+    product: np.ndarray
+    line_g: np.ndarray
+    line_c: np.ndarray
+    choice_value: np.ndarray
+    chosen: np.ndarray
+    better: np.ndarray
+
+    @classmethod
+    def of(cls, shape: tuple, dtype) -> "Scratch":
+        arrays = [np.empty(shape, dtype) for _ in range(9)]
+        return cls(*arrays, np.empty(shape, bool))
+
+
+def _line_of_choice(
+    choice: Choice, q: int, season: float, margin: float, survive, mean_p, mailed_silent, after, r, previous, nexts, columns, basis: float,
+    work: Scratch | None = None,
+):
     """The line (G, C) per unit alive, before discounting, of one choice at states (shape S) and points r (S + (K,)).
 
     The state's chances are ``survive`` (S(n, 1)), ``mean_p`` (E[p]) and ``mailed_silent`` (E[1 - p]); ``after``
     is the value right after a purchase next quarter. ``nexts[name](table)`` reads the next quarter's kept lines
     of the mailed-like or the held-like state; ``columns`` (None on the grid's own points, see
-    :func:`_best_of_window`) says which of them are compared.
+    :func:`_best_of_window`) says which of them are compared. With ``work`` (the solve's) the result is written
+    into its arrays, which the next call overwrites.
     """
     buy, stay, share, lam = _choice_chances(choice, season, survive, mean_p, mailed_silent, basis)
     piece = choice.piece_cost[q]
     base = (buy * (margin + after) - piece)[..., None]
     if previous is None:
         shape = np.broadcast_shapes(base.shape, np.shape(r))
-        return np.broadcast_to(base, shape).copy(), np.full(shape, piece)
+        if work is None:
+            return np.broadcast_to(base, shape).copy(), np.full(shape, piece)
+        work.line_g[...] = base
+        work.line_c[...] = piece
+        return work.line_g, work.line_c
     dead = (1.0 - stay - buy)[..., None]
     with np.errstate(divide="ignore"):
         inverse = np.where(stay > 1.0 / FAR, 1.0 / np.maximum(stay, 1.0 / FAR), FAR)[..., None]
-    later_r = (r + dead) * inverse
+    if work is None:
+        later_r = (r + dead) * inverse
+    else:
+        later_r = np.add(r, dead, out=work.later)
+        later_r *= inverse
     # The next states' lines, the silent belief's parts mixed (one plan valued on the mix).
-    g_next = c_next = 0.0
-    for name, weight in (("mailed", share), ("held", 1.0 - share)):
-        if (name == "mailed" and lam == 0) or (name == "held" and lam == 1):
-            continue
-        g_part, c_part = nexts[name](previous[0]), nexts[name](previous[1])
-        if lam in (0.0, 1.0):
-            g_next, c_next = g_part, c_part
-        else:
-            g_next = g_next + weight[..., None] * g_part
-            c_next = c_next + weight[..., None] * c_part
-    g_later, c_later = _best_of_window(g_next, c_next, later_r, columns)
+    parts = [(weight, nexts[name]) for name, weight in (("mailed", share), ("held", 1.0 - share))
+             if not ((name == "mailed" and lam == 0) or (name == "held" and lam == 1))]
+    if len(parts) == 1:
+        g_next, c_next = parts[0][1](previous[0]), parts[0][1](previous[1])
+    else:
+        (weight, mailed), (_, held) = parts
+        weight = weight[..., None].astype(previous[0].dtype)
+        g_next = mailed(previous[0]) - held(previous[0])  # held + w (mailed - held)
+        g_next *= weight
+        g_next += held(previous[0])
+        c_next = mailed(previous[1]) - held(previous[1])
+        c_next *= weight
+        c_next += held(previous[1])
+    g_later, c_later = _best_of_window(g_next, c_next, later_r, columns, work)
     # stay * (G' - r' C') with r' = (r + 1 - stay - buy) / stay is (stay G' - dead C') - r C'.
-    return base + stay[..., None] * g_later - dead * c_later, piece + c_later
+    if work is None:
+        return base + stay[..., None] * g_later - dead * c_later, piece + c_later
+    np.multiply(g_later, stay[..., None], out=work.line_g)
+    work.line_g += base
+    np.multiply(c_later, dead, out=work.product)
+    work.line_g -= work.product
+    np.add(c_later, piece, out=work.line_c)
+    return work.line_g, work.line_c
 
 
-def _best_of_window(lines_g: np.ndarray, lines_c: np.ndarray, r: np.ndarray, columns) -> tuple[np.ndarray, np.ndarray]:
+def _best_of_window(lines_g: np.ndarray, lines_c: np.ndarray, r: np.ndarray, columns, work: Scratch | None = None) -> tuple[np.ndarray, np.ndarray]:
     """The best, at the points r (shape S + (K,)), of the lines ``G - r C`` kept in the next states (S + (columns,)).
 
     A plan is valued on the silent belief's mix as one plan: the line kept at the same grid point in each part
@@ -402,18 +459,33 @@ def _best_of_window(lines_g: np.ndarray, lines_c: np.ndarray, r: np.ndarray, col
     """
     k_count = r.shape[-1]
     windows = [slice(offset, offset + k_count) for offset in range(READ)] if columns is None else [slice(k, k + 1) for k in columns]
-    best = best_c = None
-    for window in windows:
+    if work is None:
+        best = best_c = None
+        for window in windows:
+            g, c = lines_g[..., window], lines_c[..., window]
+            value = g - r * c
+            if best is None:
+                best, best_c = value, np.broadcast_to(c, value.shape).copy()
+            else:
+                better = value > best
+                np.copyto(best, value, where=better)
+                np.copyto(best_c, c, where=better)
+        best += r * best_c
+        return best, best_c
+    for index, window in enumerate(windows):
         g, c = lines_g[..., window], lines_c[..., window]
-        value = g - r * c
-        if best is None:
-            best, best_c = value, np.broadcast_to(c, value.shape).copy()
+        target = work.best if index == 0 else work.value
+        np.multiply(r, c, out=target)
+        np.subtract(g, target, out=target)
+        if index == 0:
+            work.best_c[...] = c
         else:
-            better = value > best
-            np.copyto(best, value, where=better)
-            np.copyto(best_c, c, where=better)
-    best += r * best_c
-    return best, best_c
+            np.greater(work.value, work.best, out=work.better)
+            np.copyto(work.best, work.value, where=work.better)
+            np.copyto(work.best_c, c, where=work.better)
+    np.multiply(r, work.best_c, out=work.value)
+    np.add(work.best, work.value, out=work.best)
+    return work.best, work.best_c
 
 
 # ---------------------------------------------------------------- the program's belief along a silent stretch
