@@ -29,7 +29,7 @@ from lapsewise.data.panel import Panel, panel_from_files
 from lapsewise.data.summary import CustomerSummary, summarize
 from lapsewise.data.suppression import Suppression, match_suppression
 from lapsewise.decide.order_values import typical_order_value
-from lapsewise.decide.program import check_unmailed_purchases, decision_process, program_bytes, workers
+from lapsewise.decide.program import check_unmailed_purchases, decision_process, planning_process, program_bytes, seasons_supported, workers
 from lapsewise.decide.calendar import calendar_bytes
 from lapsewise.decide.stop_table import StopTable, build_stop_table, with_ranges, with_sensitivity
 from lapsewise.errors import InputError
@@ -162,13 +162,20 @@ def simulation(model: Model, policy: Policy, customers: int, quarters: int | Non
     """The optimal policy against the rules of thumb on new customers drawn from the model.
 
     With seasons the customers follow them on the calendar from the quarter after the as-of quarter, while the
-    program plans an average quarter (:func:`~lapsewise.decide.program.decision_process`)."""
+    single-piece program plans an average quarter (:func:`~lapsewise.decide.program.decision_process`); when the
+    calendar program is needed (seasons the data support, quarters that differ in the policy, versions), it is the
+    optimal policy and the single-piece program runs beside it."""
     economics = policy.economics
     process = decision_process(model.churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
     order_value = typical_order_value(model.spend, economics)
     churn = model.churn
     world = Process(churn.alpha, churn.beta, churn.gamma, churn.delta, process.rho, churn.seasons) if churn.process.seasonal else None
-    return simulate_policies(process, economics, order_value, customers, quarters or economics.horizon_quarters, seed, world, model.end_quarter + 1)
+    planning = planning_process(churn, economics.unmailed_response, rho_estimable=model.rho_estimable, policy_source=policy.source)
+    if not seasons_supported(churn):
+        planning = planning.without_seasons()
+    return simulate_policies(
+        process, economics, order_value, customers, quarters or economics.horizon_quarters, seed, world, model.end_quarter + 1, policy.versions, planning
+    )
 
 
 # ---------------------------------------------------------------- values, plan and mail list

@@ -13,8 +13,13 @@ quarter i is discounted by ``d ** i``, as in the program.
 
 The simulated customers may live in another world than the one the policies
 plan in: with a seasonal model they follow the model's seasons on the calendar
-(``world``), while the program plans every quarter as an average one, so the
-comparison shows what planning without the calendar costs.
+(``world``), while the single-piece program plans every quarter as an average
+one, so the comparison shows what planning without the calendar costs. When the
+policy needs the calendar program (seasons the data support, quarters that
+differ in the policy, versions of the piece), "optimal" is that program's policy,
+choosing a version or holding each quarter, and the single-piece program runs
+beside it as "single piece"; every policy then pays each quarter's own piece
+costs and earns its own margin (the rules mail the first version).
 """
 
 from __future__ import annotations
@@ -25,6 +30,7 @@ import numpy as np
 import pandas as pd
 
 from lapsewise.data.histories import compress_arrays, history_arrays
+from lapsewise.decide import calendar as cal
 from lapsewise.decide.decisions import decide_within
 from lapsewise.decide.program import Program, program_bytes, solve
 from lapsewise.evaluate.simulator import MailingRule, SoFar, TabledUniforms, Traits, draw_traits, every_quarter, run_process
@@ -35,6 +41,8 @@ from lapsewise.model.posterior import posterior
 from lapsewise.model.process import Process
 
 STOP_AFTER = (1, 2, 3, 4, 6, 8, 12)
+SINGLE_PIECE = "single piece"
+"""The single-piece, season-blind program's policy, beside the calendar program's "optimal"."""
 
 
 @dataclass(frozen=True)
@@ -52,8 +60,9 @@ class Simulation:
 
     @property
     def best_rule(self) -> pd.Series:
-        """The row of the best policy other than the optimal one (the best rule of thumb)."""
+        """The row of the best rule of thumb (a policy other than the optimal one and the single-piece program)."""
         others = self.summary.iloc[1:]
+        others = others[others["policy"] != SINGLE_PIECE]
         return others.loc[others["mean_profit"].idxmax()]
 
     def to_dict(self) -> dict:
@@ -72,12 +81,47 @@ class Simulation:
         }
 
 
-def policy_names() -> list[str]:
-    return ["optimal"] + [f"stop after {k}" for k in STOP_AFTER] + ["breakeven", "always mail"]
+def policy_names(calendar: bool = False) -> list[str]:
+    return ["optimal"] + ([SINGLE_PIECE] if calendar else []) + [f"stop after {k}" for k in STOP_AFTER] + ["breakeven", "always mail"]
+
+
+def calendar_rule(program: cal.CalendarProgram, quarters: int, horizon: int, calendar_start: int, rolling: bool) -> MailingRule:
+    """The calendar program's policy: each quarter the best choice (0 hold, i the i-th version) at the program's
+    belief about each customer, which it carries from quarter to quarter (after an order, or after silence under
+    the choice it made). Over a window up to the horizon it decides with the quarters left in the window; over a
+    longer one each decision looks ``horizon`` quarters ahead (to the same quarter of the year)."""
+    state = {}
+
+    def layer(quarter: int) -> int:
+        if rolling:
+            return int(program.layer_for((calendar_start + quarter) % 4, horizon))
+        return quarters - quarter + 1
+
+    def rule(seen: SoFar) -> np.ndarray:
+        customers = seen.purchased.shape[0]
+        if seen.quarter == 1:
+            state["belief"] = cal.Belief.after_purchase(np.zeros(customers, dtype=np.int64), np.zeros(customers, dtype=np.int64), np.zeros(customers, dtype=np.int64), width=(program.b_max or 0) + 2)
+        else:
+            before = seen.quarter - 1
+            belief, chosen = state["belief"], state["chosen"]
+            bought = seen.purchased[:, before].astype(bool)
+            following = cal.Belief(belief.n + 1, belief.x.copy(), belief.weights.copy(), belief.alive.copy())
+            for mask, ordered in ((bought, True), (~bought, False)):
+                rows = np.flatnonzero(mask)
+                if len(rows):
+                    part = cal.Belief(belief.n[rows], belief.x[rows], belief.weights[rows], belief.alive[rows])
+                    moved, _ = cal.silent_step(program, layer(before), part, chosen[rows], bought=ordered, next_layer=layer(seen.quarter))
+                    following.x[rows], following.weights[rows], following.alive[rows] = moved.x, moved.weights, moved.alive
+            state["belief"] = following
+        values = cal.belief_values(program, layer(seen.quarter), state["belief"])
+        state["chosen"] = values.argmax(axis=1)
+        return state["chosen"]
+
+    return rule
 
 
 def policy_rule(name: str, process: Process, program: Program, economics: Economics, margin: float, quarters: int) -> MailingRule:
-    """The mailing rule of a named policy: the program's, a rule of thumb, or always mail."""
+    """The mailing rule of a named policy: the single-piece program's, a rule of thumb, or always mail."""
     if name == "always mail":
         return every_quarter
     if name.startswith("stop after "):
@@ -100,18 +144,25 @@ def policy_rule(name: str, process: Process, program: Program, economics: Econom
 
 def run_policy(
     name: str, process: Process, program: Program, economics: Economics, margin: float, traits: Traits, uniforms: TabledUniforms, quarters: int,
-    world: Process | None = None, calendar_start: int = 0,
+    world: Process | None = None, calendar_start: int = 0, calendar: cal.Calendar | None = None, rule: MailingRule | None = None,
 ) -> dict:
     """Simulate one policy over all customers; returns per-customer discounted profit, pieces and orders.
 
     The policy plans with ``process``; the customers behave as ``world`` says (default the same), quarter 0 being
-    the absolute quarter ``calendar_start`` (for the seasons)."""
-    rule = policy_rule(name, process, program, economics, margin, quarters)
-    result = run_process(world or process, traits, quarters + 1, rule, uniforms, calendar_start=calendar_start)
+    the absolute quarter ``calendar_start`` (for the seasons). With ``calendar`` each quarter has its own margin and
+    each version its own piece cost there (a rule that mails sends the first version); ``rule`` replaces the named one."""
+    rule = rule or policy_rule(name, process, program, economics, margin, quarters)
+    responses = None if calendar is None else np.array([v.response for v in calendar.versions])
+    result = run_process(world or process, traits, quarters + 1, rule, uniforms, calendar_start=calendar_start, responses=responses)
     profit = np.zeros(traits.customers)
     d = economics.discount
     for quarter in range(1, quarters + 1):
-        profit += d**quarter * (margin * result.purchased[:, quarter] - economics.piece_cost * result.mailed[:, quarter])
+        if calendar is None:
+            profit += d**quarter * (margin * result.purchased[:, quarter] - economics.piece_cost * result.mailed[:, quarter])
+        else:
+            q = (calendar_start + quarter) % 4
+            costs = np.array([0.0] + [v.piece_cost[q] for v in calendar.versions])
+            profit += d**quarter * (calendar.margins[q] * result.purchased[:, quarter] - costs[result.chosen[:, quarter]])
     return {"profit": profit, "pieces": result.mailed.sum(axis=1), "orders": result.purchased[:, 1:].sum(axis=1)}
 
 
@@ -132,12 +183,15 @@ def check_simulation_memory(customers: int, quarters: int, program: int = 0) -> 
 
 
 def simulate_policies(
-    process: Process, economics: Economics, order_value: float, customers: int, quarters: int, seed: int, world: Process | None = None, calendar_start: int = 0
+    process: Process, economics: Economics, order_value: float, customers: int, quarters: int, seed: int, world: Process | None = None, calendar_start: int = 0,
+    versions=None, planning: Process | None = None,
 ) -> Simulation:
     """Run every policy on the same simulated customers and compare them with the optimal one.
 
     The policies plan with ``process``; the customers are drawn from and behave as ``world`` (default ``process``),
-    their quarter 0 being the absolute quarter ``calendar_start``.
+    their quarter 0 being the absolute quarter ``calendar_start``. With ``versions`` (the policy's) and ``planning``
+    (the process with its seasons, :func:`~lapsewise.decide.program.planning_process`), when the calendar program is
+    needed it is "optimal" and the single-piece program runs beside it (see the module docstring).
 
     With ``quarters`` up to the horizon, "optimal" is the program's policy for
     exactly that many quarters (the best any policy can do over the simulated
@@ -162,10 +216,25 @@ def simulate_policies(
     if not rolling:
         start = decide_within(program, np.array([0]), np.array([0]), np.array([0]), np.array([1.0]), horizon)
         program_value = float(start.value[0])
+    calendar = rules = None
+    if versions is not None and planning is not None and cal.needs_calendar(planning, economics, versions):
+        calendar = cal.calendar_for(planning, economics, versions, order_value)
+        layers = economics.horizon_quarters + 3 if rolling and calendar.seasonal else horizon
+        keep = tuple(range(1, layers + 1)) if not rolling else tuple(range(economics.horizon_quarters - 1, layers))
+        reach = {"n_max": quarters, "b_max": quarters, "x_max": quarters}
+        program_calendar = cal.solve_calendar(planning, calendar, economics.discount, layers, calendar_start + quarters + 1 if not rolling else layers, keep=keep, **reach)
+        rules = {"optimal": calendar_rule(program_calendar, quarters, economics.horizon_quarters, calendar_start, rolling)}
+        if not rolling:
+            start = cal.Belief.after_purchase(np.array([0]), np.array([0]), np.array([0]), width=quarters + 2)
+            program_value = float(cal.belief_values(program_calendar, quarters, start)[0].max())
     rng = np.random.default_rng(seed)
     traits = draw_traits(world or process, customers, rng)
     uniforms = TabledUniforms.draw(rng, customers, quarters)
-    results = {name: run_policy(name, process, program, economics, margin, traits, uniforms, quarters, world, calendar_start) for name in policy_names()}
+    results = {}
+    for name in policy_names(calendar is not None):
+        named = "optimal" if name == SINGLE_PIECE else name
+        rule = (rules or {}).get(name)
+        results[name] = run_policy(named, process, program, economics, margin, traits, uniforms, quarters, world, calendar_start, calendar, rule)
     best = results["optimal"]["profit"]
     rows = []
     for name, result in results.items():

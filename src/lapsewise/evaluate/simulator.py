@@ -6,9 +6,11 @@ and stepped quarter by quarter (:func:`run_process`). A customer enters in quart
 to ``last``. In each quarter in play:
 
 1. an alive customer leaves for good with probability theta;
-2. the mailing rule decides who is mailed, from what the firm has seen so far;
+2. the mailing rule decides who is mailed, from what the firm has seen so far
+   (and, with versions of the piece, which version: a choice index, 0 holding);
 3. an alive customer buys with probability s_q p when mailed and rho s_q p when
-   not, s_q the process's multiplier for the quarter of the year (1 without seasons).
+   not, s_q the process's multiplier for the quarter of the year (1 without seasons);
+   a version multiplies the mailed chance by its response.
 
 The random numbers behind the leaving and the buying come from a
 :class:`StreamedUniforms` (drawn quarter by quarter from one generator, which a
@@ -125,6 +127,8 @@ class Simulated:
     purchased: np.ndarray
     mailed: np.ndarray
     alive: np.ndarray
+    chosen: np.ndarray | None = None
+    """With versions: the choice per customer and quarter (0 held, i the i-th version)."""
 
 
 def run_process(
@@ -137,6 +141,7 @@ def run_process(
     last: np.ndarray | None = None,
     rng: np.random.Generator | None = None,
     calendar_start: int = 0,
+    responses: np.ndarray | None = None,
 ) -> Simulated:
     """Step the customers through quarters ``1 .. quarters - 1``.
 
@@ -144,6 +149,8 @@ def run_process(
     quarter they are observed in (default ``quarters - 1``); ``rng`` is the
     generator a randomised mailing rule draws from; ``calendar_start`` the absolute
     quarter of column 0, whose ``% 4`` is its quarter of the year (for the seasons).
+    With ``responses`` (one per version of the piece) the rule may name a choice per
+    customer (0 hold, i the i-th version) instead of mail or not (mail: the first version).
     """
     customers = traits.customers
     first = np.zeros(customers, dtype=np.int64) if first is None else np.asarray(first)
@@ -154,13 +161,19 @@ def run_process(
     purchased[np.arange(customers), first] = 1
     alive = np.ones(customers, dtype=bool)
     last_purchase = first.copy()
+    multiplier = np.concatenate([[rho], [1.0] if responses is None else np.asarray(responses, dtype=float)])
+    chosen = np.zeros((customers, quarters), dtype=np.int8) if responses is not None else None
     for quarter in range(1, quarters):
         in_play = (first < quarter) & (quarter <= last)
         alive &= ~(in_play & (uniforms.leave(quarter) < traits.theta))
-        mail = rule(SoFar(quarter, in_play, last_purchase, purchased, mailed, rng)) & in_play
-        chance = traits.p * (process.season(calendar_start + quarter) * np.where(mail, 1.0, rho))
+        decision = np.asarray(rule(SoFar(quarter, in_play, last_purchase, purchased, mailed, rng)))
+        choice = np.where(in_play, decision.astype(np.int8), 0)
+        mail = choice > 0
+        chance = traits.p * (process.season(calendar_start + quarter) * multiplier[choice])
         bought = in_play & alive & (uniforms.buy(quarter) < chance)
         purchased[:, quarter] |= bought  # keeps the first purchases of customers entering this quarter
         mailed[:, quarter] = mail
+        if chosen is not None:
+            chosen[:, quarter] = choice
         last_purchase = np.where(bought, quarter, last_purchase)
-    return Simulated(purchased, mailed, alive)
+    return Simulated(purchased, mailed, alive, chosen)
