@@ -100,7 +100,8 @@ def calendar_rule(program: cal.CalendarProgram, quarters: int, horizon: int, cal
     def rule(seen: SoFar) -> np.ndarray:
         customers = seen.purchased.shape[0]
         if seen.quarter == 1:
-            state["belief"] = cal.Belief.after_purchase(np.zeros(customers, dtype=np.int64), np.zeros(customers, dtype=np.int64), np.zeros(customers, dtype=np.int64), width=(program.b_max or 0) + 2)
+            start = np.zeros(customers, dtype=np.int64)
+            state["belief"] = cal.Belief.after_purchase(start, start, start, width=quarters + 2)
         else:
             before = seen.quarter - 1
             belief, chosen = state["belief"], state["chosen"]
@@ -221,7 +222,9 @@ def simulate_policies(
         calendar = cal.calendar_for(planning, economics, versions, order_value)
         layers = economics.horizon_quarters + 3 if rolling and calendar.seasonal else horizon
         keep = tuple(range(1, layers + 1)) if not rolling else tuple(range(economics.horizon_quarters - 1, layers))
-        reach = {"n_max": quarters, "b_max": quarters, "x_max": quarters}
+        # Over the window every customer starts at the root (n = x = b = 0) with the window ahead, and the solve reaches
+        # one quarter on per layer below it; a rolling decision needs every state up to the window's end at the top.
+        reach = {"n_max": quarters, "b_max": quarters, "x_max": quarters} if rolling else {"n_max": 0, "b_max": 0, "x_max": 0}
         program_calendar = cal.solve_calendar(planning, calendar, economics.discount, layers, calendar_start + quarters + 1 if not rolling else layers, keep=keep, **reach)
         rules = {"optimal": calendar_rule(program_calendar, quarters, economics.horizon_quarters, calendar_start, rolling)}
         if not rolling:
