@@ -122,6 +122,18 @@ def test_stop_table_with_a_dear_quarter_and_versions_plans_on_the_calendar(demo_
     assert "the policy's own quarters: Q4 gross_margin 0.42, order_cost 5.5, piece_cost 1.6" in flat
 
 
+def test_calendar_stop_table_draws_only_when_asked_and_then_each_row_has_its_range(demo_dir):
+    quiet = json.loads(run("stop-table", demo_dir / "model.json", "--policy", HIGH_COST_SEASON, "--horizon-quarters", 6, "--json").stdout)
+    assert quiet["planned_with"] == "calendar" and quiet["draws"] == 0  # no draws by default on the calendar
+    text = " ".join(run("stop-table", demo_dir / "model.json", "--policy", HIGH_COST_SEASON, "--horizon-quarters", 6).stdout.split())
+    assert "no ranges over parameter draws by default when planning on the calendar" in text and "pass --draws 20 for them" in text
+    drawn = json.loads(run("stop-table", demo_dir / "model.json", "--policy", HIGH_COST_SEASON, "--horizon-quarters", 6, "--draws", 3, "--json").stdout)
+    assert drawn["draws"] == 3 and len(drawn["rows"]) == len(quiet["rows"])
+    late = lambda v: 10**6 if v is None else v  # noqa: E731
+    for row in drawn["rows"]:
+        assert 0.0 <= row["agreement"] <= 1.0 and late(row["stop_after_low"]) <= late(row["stop_after_high"])
+
+
 def test_a_bad_quarter_table_exits_2_naming_it(demo_dir, tmp_path):
     policy = tmp_path / "policy.toml"
     policy.write_text(HIGH_COST_SEASON.read_text().replace("[economics.quarter_4]        # the holiday quarter", "[economics.quarter_4]\nhorizon_quarters = 4"))
