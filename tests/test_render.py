@@ -71,7 +71,7 @@ def test_a_seasonal_model_is_planned_on_the_calendar_only_where_the_data_support
     table = pipeline.stop_table(loose, policy)
     text = " ".join(recorded(render.print_stop_table, table, loose).split())
     assert not table.calendar
-    assert "all within two standard errors of 1, so the stop rule plans every quarter as an average one (multiplier 0.65)" in text
+    assert "all within 5% or two standard errors of 1, so the stop rule plans every quarter as an average one (multiplier 0.65)" in text
     # The process it plans with has the mean p of an average quarter: alpha / (alpha + beta') = 0.65 alpha / (alpha + beta).
     plain = decision_process(MODEL.churn)
     averaged = decision_process(loose.churn)

@@ -122,3 +122,6 @@ def test_supported_seasons_give_a_row_per_quarter_of_the_last_order():
     # Seasons within two standard errors of 1 are not followed: the single-piece table.
     loose = build_stop_table(dataclasses.replace(SEASONAL_FIT, std_errors={f"season_{q}": 0.5 for q in range(1, 5)}), None, FLAT, versions=STANDARD)
     assert not loose.calendar
+    # Nor seasons within 5% of 1, however sure (a million customers' standard errors are a few thousandths).
+    flat = build_stop_table(dataclasses.replace(SEASONAL_FIT, seasons=(1.0, 0.97, 0.96, 0.98), std_errors={f"season_{q}": 0.001 for q in range(1, 5)}), None, FLAT, versions=STANDARD)
+    assert not flat.calendar

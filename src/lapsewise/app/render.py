@@ -350,7 +350,7 @@ def print_calendar_stop_table(console: Console, table, model) -> None:
         if table.process.seasonal:
             sales = f"Sales by quarter of the year: {', '.join(f'{SEASON_NAMES[q]} {s:.2f}' for q, s in enumerate(table.process.multipliers))} (the model's seasons)"
         elif model.churn.process.seasonal:
-            sales = "Sales alike in every quarter (the model's seasons are all within two standard errors of 1)"
+            sales = "Sales alike in every quarter (no season of the model's is both 5% from 1 and more than two standard errors from it)"
         else:
             sales = "Sales alike in every quarter (the model has no seasons)"
         console.print(sales + (f"; the policy's own quarters: {overrides}." if overrides else "."))
@@ -405,7 +405,7 @@ def print_stop_table(console: Console, table, model) -> None:
     if model.churn.process.seasonal:
         seasons = model.churn.seasons
         console.print(
-            f"The model's seasons ({', '.join(f'{s:.2f}' for s in seasons)} by quarter of the year) are all within two standard errors "
+            f"The model's seasons ({', '.join(f'{s:.2f}' for s in seasons)} by quarter of the year) are all within 5% or two standard errors "
             f"of 1, so the stop rule plans every quarter as an average one (multiplier {sum(seasons) / 4:.2f}); with seasons the data "
             "support, or quarters that differ in the policy, it follows the calendar."
         )

@@ -101,17 +101,21 @@ def planning_process(fit: ChurnFit, unmailed_response: float | None = None, *, r
 
 SEASON_SUPPORT = 2.0
 """Standard errors by which some quarter's multiplier must differ from 1 for the calendar program to follow the seasons."""
+SEASON_MATTERS = 0.05
+"""And by how much at least: a quarter 5% slower than the peak. At a million customers the standard errors are a few
+thousandths, and seasons that flat would cost the calendar program's time for nothing a mail plan would notice."""
 
 
 def seasons_supported(fit: ChurnFit) -> bool:
-    """Whether the data support the model's seasons: some quarter's multiplier is more than two standard errors
-    from 1 (a Wald check per quarter; with no standard errors, whenever the model has seasons)."""
-    if fit.seasons is None or all(s == 1.0 for s in fit.seasons):
+    """Whether the model's seasons are worth following: some quarter's multiplier is at least 5% from 1 and more
+    than two standard errors from it (a Wald check per quarter; with no standard errors, the 5% alone)."""
+    if fit.seasons is None:
         return False
     errors = [fit.std_errors.get(f"season_{q + 1}") for q in range(4)]
-    if all(e is None for e in errors):
-        return True
-    return any(e is not None and e > 0 and abs(1.0 - s) > SEASON_SUPPORT * e for s, e in zip(fit.seasons, errors))
+    return any(
+        abs(1.0 - s) >= SEASON_MATTERS and (e is None or abs(1.0 - s) > SEASON_SUPPORT * e)
+        for s, e in zip(fit.seasons, errors)
+    )
 
 
 def decision_process(fit: ChurnFit, unmailed_response: float | None = None, *, rho_estimable: bool = True, policy_source: str = "the policy") -> Process:
