@@ -238,13 +238,16 @@ class CalendarProgram:
             "mailed": (lambda t: t[b, x, n + 1, :k_table]),
             "held": (lambda t: t[b + 1, x, n + 1, :k_table]),
         }
-        lines = [
-            _line_of_choice(choice, q, self.season(h), self.calendar.margins[q], survive, mean_p, mailed_silent, after,
-                            np.asarray(r, dtype=float)[..., None], previous, nexts, range(k_table), held_basis(self.process, self.calendar))
-            for choice in self.choices
-        ]
-        g = np.stack([line[0][..., 0] for line in lines], axis=-1)
-        c = np.stack([line[1][..., 0] for line in lines], axis=-1)
+        points = np.asarray(r, dtype=float)[..., None]
+        work = Scratch.of(points.shape, float)
+        g = np.empty(points.shape[:-1] + (len(self.choices),))
+        c = np.empty_like(g)
+        for index, choice in enumerate(self.choices):
+            line_g, line_c = _line_of_choice(
+                choice, q, self.season(h), self.calendar.margins[q], survive, mean_p, mailed_silent, after, points, previous, nexts,
+                range(k_table), held_basis(self.process, self.calendar), work,
+            )
+            g[..., index], c[..., index] = line_g[..., 0], line_c[..., 0]
         return self.discount * np.where(exists[..., None], g, 0.0), self.discount * np.where(exists[..., None], c, 0.0)
 
 
@@ -374,7 +377,7 @@ def mixing(multiplier: float, basis: float) -> float:
 @dataclass
 class Scratch:
     """Working arrays of one block of states (shape S + (K,)), reused by every choice so that no large temporary is
-    made: the solve's inner loop is memory-bound."""
+    made: the solve's inner loop is memory-bound (a customer's own point is a block with K = 1)."""
 
     later: np.ndarray
     value: np.ndarray
@@ -395,34 +398,28 @@ class Scratch:
 
 def _line_of_choice(
     choice: Choice, q: int, season: float, margin: float, survive, mean_p, mailed_silent, after, r, previous, nexts, columns, basis: float,
-    work: Scratch | None = None,
+    work: Scratch,
 ):
     """The line (G, C) per unit alive, before discounting, of one choice at states (shape S) and points r (S + (K,)).
 
     The state's chances are ``survive`` (S(n, 1)), ``mean_p`` (E[p]) and ``mailed_silent`` (E[1 - p]); ``after``
     is the value right after a purchase next quarter. ``nexts[name](table)`` reads the next quarter's kept lines
     of the mailed-like or the held-like state; ``columns`` (None on the grid's own points, see
-    :func:`_best_of_window`) says which of them are compared. With ``work`` (the solve's) the result is written
-    into its arrays, which the next call overwrites.
+    :func:`_best_of_window`) says which of them are compared. The result is written into ``work``'s arrays, which
+    the next call overwrites.
     """
     buy, stay, share, lam = _choice_chances(choice, season, survive, mean_p, mailed_silent, basis)
     piece = choice.piece_cost[q]
     base = (buy * (margin + after) - piece)[..., None]
     if previous is None:
-        shape = np.broadcast_shapes(base.shape, np.shape(r))
-        if work is None:
-            return np.broadcast_to(base, shape).copy(), np.full(shape, piece)
         work.line_g[...] = base
         work.line_c[...] = piece
         return work.line_g, work.line_c
     dead = (1.0 - stay - buy)[..., None]
     with np.errstate(divide="ignore"):
         inverse = np.where(stay > 1.0 / FAR, 1.0 / np.maximum(stay, 1.0 / FAR), FAR)[..., None]
-    if work is None:
-        later_r = (r + dead) * inverse
-    else:
-        later_r = np.add(r, dead, out=work.later)
-        later_r *= inverse
+    later_r = np.add(r, dead, out=work.later)
+    later_r *= inverse
     # The next states' lines, the silent belief's parts mixed (one plan valued on the mix).
     parts = [(weight, nexts[name]) for name, weight in (("mailed", share), ("held", 1.0 - share))
              if not ((name == "mailed" and lam == 0) or (name == "held" and lam == 1))]
@@ -439,8 +436,6 @@ def _line_of_choice(
         c_next += held(previous[1])
     g_later, c_later = _best_of_window(g_next, c_next, later_r, columns, work)
     # stay * (G' - r' C') with r' = (r + 1 - stay - buy) / stay is (stay G' - dead C') - r C'.
-    if work is None:
-        return base + stay[..., None] * g_later - dead * c_later, piece + c_later
     np.multiply(g_later, stay[..., None], out=work.line_g)
     work.line_g += base
     np.multiply(c_later, dead, out=work.product)
@@ -449,7 +444,7 @@ def _line_of_choice(
     return work.line_g, work.line_c
 
 
-def _best_of_window(lines_g: np.ndarray, lines_c: np.ndarray, r: np.ndarray, columns, work: Scratch | None = None) -> tuple[np.ndarray, np.ndarray]:
+def _best_of_window(lines_g: np.ndarray, lines_c: np.ndarray, r: np.ndarray, columns, work: Scratch) -> tuple[np.ndarray, np.ndarray]:
     """The best, at the points r (shape S + (K,)), of the lines ``G - r C`` kept in the next states (S + (columns,)).
 
     A plan is valued on the silent belief's mix as one plan: the line kept at the same grid point in each part
@@ -459,19 +454,6 @@ def _best_of_window(lines_g: np.ndarray, lines_c: np.ndarray, r: np.ndarray, col
     """
     k_count = r.shape[-1]
     windows = [slice(offset, offset + k_count) for offset in range(READ)] if columns is None else [slice(k, k + 1) for k in columns]
-    if work is None:
-        best = best_c = None
-        for window in windows:
-            g, c = lines_g[..., window], lines_c[..., window]
-            value = g - r * c
-            if best is None:
-                best, best_c = value, np.broadcast_to(c, value.shape).copy()
-            else:
-                better = value > best
-                np.copyto(best, value, where=better)
-                np.copyto(best_c, c, where=better)
-        best += r * best_c
-        return best, best_c
     for index, window in enumerate(windows):
         g, c = lines_g[..., window], lines_c[..., window]
         target = work.best if index == 0 else work.value
@@ -540,10 +522,10 @@ def belief_values(program: CalendarProgram, h: int, belief: Belief) -> np.ndarra
     """Per row, the value of each choice now (columns: hold, then the versions) and the program after it, per customer."""
     rows, b, weight = belief._spread()
     with np.errstate(divide="ignore"):
-        r = np.where(belief.alive > 0, 1.0 / belief.alive - 1.0, FAR)
-    g, c = program.choice_lines(h, b, belief.x[rows], belief.n[rows], np.minimum(r[rows], FAR))
+        r = np.minimum(np.where(belief.alive > 0, 1.0 / belief.alive - 1.0, FAR), FAR)[rows]
+    g, c = program.choice_lines(h, b, belief.x[rows], belief.n[rows], r)
     values = np.zeros((len(belief.n), g.shape[-1]))
-    np.add.at(values, rows, weight[:, None] * (g - np.minimum(r[rows], FAR)[:, None] * c))
+    np.add.at(values, rows, weight[:, None] * (g - r[:, None] * c))
     return values * belief.alive[:, None]
 
 

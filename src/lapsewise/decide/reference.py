@@ -309,12 +309,12 @@ def exact_calendar_values(process: Process, calendar, discount: float, history, 
             silent = alive_mass * survive * (1.0 - chance)
             died = float(alive_mass.sum()) * (1.0 - survive)
             bought = float(buy.sum())
-            total = -choice.piece_cost[q] * (float(alive_mass.sum()) + dead_mass) + bought * calendar.margins[q]
+            earned = -choice.piece_cost[q] * (float(alive_mass.sum()) + dead_mass) + bought * calendar.margins[q]
             if h > 1:
                 if bought > 0:
-                    total += value(buy, 0.0, quarters + 1, h - 1, path + ((index, True),))
-                total += value(silent, dead_mass + died, quarters + 1, h - 1, path + ((index, False),))
-            totals.append(discount * total)
+                    earned += value(buy, 0.0, quarters + 1, h - 1, path + ((index, True),))
+                earned += value(silent, dead_mass + died, quarters + 1, h - 1, path + ((index, False),))
+            totals.append(discount * earned)
         return max(totals)
 
     return value(alive, dead, n, horizon, ())

@@ -196,7 +196,7 @@ def _calendar_table(process: Process, blind: StopTable, versions: tuple[Version,
         belief = cal.Belief.from_history(program, t_x, x, silent, width=horizon + steps + 1)
         return program, cal.plan_along_silence(program, belief, (last + 1) % 4, horizon, steps)
 
-    names = ("hold",) + tuple(v.name for v in versions)
+    names = (HOLD,) + tuple(v.name for v in versions)
     row_frames, cell_frames = [], []
     for band, (program, plan) in zip(blind.bands, each(band_plan, blind.bands)):
         mail = plan.chosen > 0

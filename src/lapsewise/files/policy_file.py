@@ -46,6 +46,8 @@ MAX_COST = 1e9
 MAX_VALUE = 1e12
 """The largest order value or setup cost taken (as for amounts in the orders file)."""
 MAX_QUANTITY = 1_000_000_000
+AMOUNT_LIMITS = {"gross_margin": (0.0, 1.0), "order_cost": (0.0, MAX_COST), "piece_cost": (0.0, MAX_COST), "order_value": (0.0, MAX_VALUE)}
+"""The range of each cost or margin key, year-round and in a quarter of its own."""
 MAX_BANDS = 20
 
 
@@ -155,9 +157,7 @@ def _economics(source: str, raw: dict, flags: tuple[str, ...] = ()) -> Economics
     if missing:
         raise InputError(f"{source}: [economics] is missing '{missing[0]}' ({ECONOMICS_KEYS[missing[0]]}); add it or pass --{missing[0].replace('_', '-')}")
     values = {
-        "gross_margin": _number(source, "gross_margin", raw["gross_margin"], 0.0, 1.0),
-        "order_cost": _number(source, "order_cost", raw["order_cost"], 0.0, MAX_COST),
-        "piece_cost": _number(source, "piece_cost", raw["piece_cost"], 0.0, MAX_COST),
+        **{key: _number(source, key, raw[key], *AMOUNT_LIMITS[key]) for key in ("gross_margin", "order_cost", "piece_cost")},
         "annual_discount_rate": _number(source, "annual_discount_rate", raw["annual_discount_rate"], 0.0, 10.0),
         "horizon_quarters": _number(
             source, "horizon_quarters", raw["horizon_quarters"], 1, MAX_HORIZON, integer=True,
@@ -165,7 +165,7 @@ def _economics(source: str, raw: dict, flags: tuple[str, ...] = ()) -> Economics
         ),
     }
     if raw.get("order_value") is not None:
-        values["order_value"] = _number(source, "order_value", raw["order_value"], 0.0, MAX_VALUE)
+        values["order_value"] = _number(source, "order_value", raw["order_value"], *AMOUNT_LIMITS["order_value"])
     if raw.get("recurring_budget") is not None:
         if not isinstance(raw["recurring_budget"], bool):
             raise InputError(f"{source}: recurring_budget = {_shown(raw['recurring_budget'])} is not true or false; write recurring_budget = true")
@@ -178,9 +178,6 @@ def _economics(source: str, raw: dict, flags: tuple[str, ...] = ()) -> Economics
     return Economics(**values)
 
 
-QUARTER_LIMITS = {"gross_margin": (0.0, 1.0), "order_cost": (0.0, MAX_COST), "piece_cost": (0.0, MAX_COST), "order_value": (0.0, MAX_VALUE)}
-
-
 def _quarter_overrides(source: str, where: str, raw, keys: tuple[str, ...], flags: tuple[str, ...] = ()) -> tuple[tuple[str, float], ...]:
     """A quarter's table of overrides, checked; keys a command-line flag set are dropped (the flag holds all year)."""
     if raw is None:
@@ -189,7 +186,7 @@ def _quarter_overrides(source: str, where: str, raw, keys: tuple[str, ...], flag
     unknown = [k for k in raw if k not in keys]
     if unknown:
         raise InputError(f"{source}: unknown key '{unknown[0]}' in [{where}]; a quarter may override {', '.join(keys)}")
-    return tuple((key, _number(source, f"{where}.{key}", raw[key], *QUARTER_LIMITS[key])) for key in keys if key in raw and key not in flags)
+    return tuple((key, _number(source, f"{where}.{key}", raw[key], *AMOUNT_LIMITS[key])) for key in keys if key in raw and key not in flags)
 
 
 def _versions(source: str, raw, economics: Economics) -> tuple[Version, ...]:
